@@ -1,0 +1,319 @@
+"""Train one reference model on CPU: ``attnpos train SCHEME --out DIR [--minutes M] [--context N] [--seed S] [--steps N]``.
+
+Until the command line wires it in, ``python -m attnpos.reference.train SCHEME --out DIR ...`` does the same.
+
+What a run does:
+
+* generates the corpus (``corpus.py``), holds out every 20th document for validation;
+* builds the untrained model for the scheme (``models.build_model``, initialised from ``--seed``);
+* trains with AdamW, linear warm-up then cosine decay, batches of ``--batch`` windows of ``--context`` tokens;
+  each window is ``<bos>`` followed by corpus bytes, starting at a document start half of the time (so the
+  fixed-width headers sit at fixed slots) and anywhere in the text otherwise. Documents are separated by
+  ``<eos>``; ``<eos>`` is never a prediction target, so every loss is a loss per byte, in nats;
+* stops after ``--steps`` updates; without ``--steps`` it times the first updates and plans as many as fit in
+  ``--minutes``. ``--minutes`` is also a hard cap. Given the seed and the step count, the run is deterministic
+  (one ``torch.Generator`` draws every batch; the planned step count is recorded so ``--steps`` replays it);
+* saves the model (safetensors) and the byte tokenizer into ``--out``, with ``attnpos_scheme``,
+  ``attnpos_training_length`` and an ``attnpos_training`` record in ``config.json``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import os
+import platform
+import shlex
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from ..errors import AttnposError
+from . import corpus as corpus_mod
+from .models import DEFAULT_CONTEXT, SCHEMES, build_model, count_parameters, freeze_sinusoidal
+from .tokenizer import BOS_ID, EOS_ID, build_tokenizer
+
+VAL_WINDOWS = 96
+VAL_SEED = 7  # the validation windows are the same for every scheme and every training seed
+DOC_START_SHARE = 0.5
+
+
+# ----------------------------------------------------------------------------------------------- data
+class ByteStream:
+    """Documents as one token array (bytes, ``<eos>`` between documents) plus the document start offsets."""
+
+    def __init__(self, docs: list[str]):
+        parts, starts, pos = [], [], 0
+        for d in docs:
+            b = np.frombuffer(d.encode("utf-8"), dtype=np.uint8).astype(np.int64)
+            starts.append(pos)
+            parts.append(b)
+            parts.append(np.array([EOS_ID], dtype=np.int64))
+            pos += len(b) + 1
+        self.tokens = torch.from_numpy(np.concatenate(parts))
+        self.starts = torch.tensor(starts, dtype=torch.long)
+
+    def __len__(self) -> int:
+        return int(self.tokens.numel())
+
+    def windows(self, n: int, context: int, gen: torch.Generator) -> tuple[torch.Tensor, torch.Tensor]:
+        """``n`` windows of ``context`` tokens (``<bos>`` + context-1 corpus tokens) and their labels."""
+        span = context - 1
+        limit = len(self) - span
+        if limit <= 0:
+            raise AttnposError(f"the corpus ({len(self)} tokens) is shorter than one training window ({context})")
+        at_start = torch.rand(n, generator=gen) < DOC_START_SHARE
+        doc_pick = self.starts[torch.randint(len(self.starts), (n,), generator=gen)].clamp(max=limit - 1)
+        anywhere = torch.randint(limit, (n,), generator=gen)
+        offsets = torch.where(at_start, doc_pick, anywhere)
+        idx = offsets[:, None] + torch.arange(span)[None, :]
+        body = self.tokens[idx]
+        ids = torch.cat([torch.full((n, 1), BOS_ID, dtype=torch.long), body], dim=1)
+        labels = ids.clone()
+        labels[labels == EOS_ID] = -100  # the loss stays a loss per byte
+        return ids, labels
+
+
+def per_byte_loss(model, ids: torch.Tensor, labels: torch.Tensor, batch: int = 32) -> float:
+    """Mean next-byte cross-entropy (nats) over all byte targets, evaluated in chunks without gradients."""
+    total, count = 0.0, 0
+    was_training = model.training
+    model.eval()
+    with torch.no_grad():
+        for k in range(0, ids.shape[0], batch):
+            x, y = ids[k:k + batch], labels[k:k + batch]
+            logits = model(input_ids=x, use_cache=False).logits[:, :-1].float()
+            tgt = y[:, 1:]
+            loss = torch.nn.functional.cross_entropy(
+                logits.reshape(-1, logits.shape[-1]), tgt.reshape(-1), ignore_index=-100, reduction="sum"
+            )
+            total += float(loss)
+            count += int((tgt != -100).sum())
+    model.train(was_training)
+    return total / max(count, 1)
+
+
+def _lr_at(step: int, total: int, peak: float, warmup: int) -> float:
+    if step < warmup:
+        return peak * (step + 1) / warmup
+    progress = (step - warmup) / max(1, total - warmup)
+    return peak * (0.1 + 0.9 * 0.5 * (1.0 + math.cos(math.pi * min(1.0, progress))))
+
+
+def _versions() -> dict:
+    import tokenizers
+    import transformers
+
+    return {
+        "python": platform.python_version(),
+        "torch": torch.__version__,
+        "transformers": transformers.__version__,
+        "tokenizers": tokenizers.__version__,
+        "numpy": np.__version__,
+    }
+
+
+def _command(args) -> str:
+    parts = ["attnpos", "train", args.scheme, "--out", str(args.out), "--context", str(args.context),
+             "--seed", str(args.seed)]
+    if args.steps is not None:
+        parts += ["--steps", str(args.steps)]
+    if args.minutes is not None:
+        parts += ["--minutes", f"{args.minutes:g}"]
+    if args.batch != 32:
+        parts += ["--batch", str(args.batch)]
+    if args.lr != 3e-3:
+        parts += ["--lr", f"{args.lr:g}"]
+    return shlex.join(parts)
+
+
+# ----------------------------------------------------------------------------------------------- training
+def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CONTEXT, seed: int = 0,
+          steps: int | None = None, minutes: float | None = 4.5, batch: int = 32, lr: float = 3e-3,
+          warmup: int = 40, threads: int = 2, corpus_bytes: int | None = None, val_windows: int = VAL_WINDOWS,
+          progress: bool = True, command: str | None = None, n_layers: int = 4, hidden: int = 128, heads: int = 4):
+    """Train a reference model; save it to ``out`` (if given) and return ``(model, record)``."""
+    if scheme not in SCHEMES:
+        raise AttnposError(f"unknown position scheme {scheme!r}; choose one of: {', '.join(SCHEMES)}")
+    if steps is None and minutes is None:
+        raise AttnposError("give --steps or --minutes (or both) so the run knows when to stop")
+    if steps is not None and steps < 1:
+        raise AttnposError(f"--steps must be at least 1, got {steps}")
+    if minutes is not None and minutes <= 0:
+        raise AttnposError(f"--minutes must be positive, got {minutes}")
+    torch.set_num_threads(max(1, int(threads)))
+    t_start = time.perf_counter()
+
+    docs = corpus_mod.generate_documents(corpus_mod.CORPUS_SEED,
+                                         corpus_bytes if corpus_bytes else corpus_mod.TARGET_BYTES)
+    sha = corpus_mod.corpus_sha256(docs)
+    train_docs, val_docs = corpus_mod.split_documents(docs)
+    entropy = corpus_mod.unigram_entropy(train_docs)
+    train_stream, val_stream = ByteStream(train_docs), ByteStream(val_docs)
+    val_ids, val_labels = val_stream.windows(val_windows, context, torch.Generator().manual_seed(VAL_SEED))
+
+    model = build_model(scheme, context=context, seed=seed, n_layers=n_layers, hidden=hidden, heads=heads)
+    if scheme == "sinusoidal":
+        freeze_sinusoidal(model)
+    params = [p for p in model.parameters() if p.requires_grad]
+    decay = [p for p in params if p.dim() >= 2]
+    no_decay = [p for p in params if p.dim() < 2]
+    opt = torch.optim.AdamW([{"params": decay, "weight_decay": 0.01}, {"params": no_decay, "weight_decay": 0.0}],
+                            lr=lr, betas=(0.9, 0.95), eps=1e-8)
+    gen = torch.Generator().manual_seed(int(seed))
+    torch.manual_seed(int(seed))
+
+    val_initial = per_byte_loss(model, val_ids, val_labels)
+    model.train()
+    deadline = t_start + minutes * 60.0 if minutes is not None else math.inf
+    planned = steps
+    plan_note = "fixed by --steps"
+    probe_steps = 8
+    recent: list[float] = []
+    history = []
+    stopped_early = False
+    step = 0
+    try:
+        from tqdm.auto import tqdm
+    except ImportError:  # pragma: no cover - tqdm is a dependency
+        tqdm = None
+    bar = tqdm(total=planned, desc=f"train {scheme}", unit="step", disable=not progress) if tqdm else None
+    t_loop = time.perf_counter()
+    while planned is None or step < planned:
+        if planned is None and step == probe_steps:
+            # plan the rest from the measured speed, keeping ~8% of the budget for evaluation and saving
+            per_step = (time.perf_counter() - t_loop) / probe_steps
+            budget = deadline - time.perf_counter() - 0.08 * minutes * 60.0
+            planned = max(step + 1, step + int(budget / per_step))
+            plan_note = f"planned from {per_step:.3f} s/step over the first {probe_steps} steps"
+            if bar is not None:
+                bar.total = planned
+                bar.refresh()
+        if time.perf_counter() > deadline:
+            stopped_early = True
+            break
+        total_for_lr = planned if planned is not None else 10**9
+        for group in opt.param_groups:
+            group["lr"] = _lr_at(step, total_for_lr, lr, warmup)
+        ids, labels = train_stream.windows(batch, context, gen)
+        loss = model(input_ids=ids, labels=labels, use_cache=False).loss
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        torch.nn.utils.clip_grad_norm_(params, 1.0)
+        opt.step()
+        value = float(loss.detach())
+        recent.append(value)
+        if len(recent) > 50:
+            recent.pop(0)
+        step += 1
+        if step % 100 == 0:
+            history.append([step, round(sum(recent) / len(recent), 4)])
+        if bar is not None:
+            bar.update(1)
+            if step % 10 == 0:
+                bar.set_postfix(loss=f"{sum(recent) / len(recent):.3f}")
+    if bar is not None:
+        bar.close()
+    train_seconds = time.perf_counter() - t_loop
+    model.eval()
+    val_final = per_byte_loss(model, val_ids, val_labels)
+    train_final = sum(recent) / len(recent) if recent else float("nan")
+
+    record = {
+        "scheme": scheme,
+        "steps": step,
+        "planned_steps": planned,
+        "step_plan": plan_note,
+        "stopped_early_at_time_cap": stopped_early,
+        "minutes": round((time.perf_counter() - t_start) / 60.0, 3),
+        "train_loop_minutes": round(train_seconds / 60.0, 3),
+        "train_loss_per_byte": round(train_final, 5),
+        "val_loss_per_byte": round(val_final, 5),
+        "val_loss_per_byte_untrained": round(val_initial, 5),
+        "unigram_entropy_per_byte": round(entropy, 5),
+        "loss_unit": "nats per byte (train loss: mean of the last 50 batches; val: fixed held-out windows)",
+        "train_loss_history": history,
+        "batch": batch,
+        "context": context,
+        "lr": lr,
+        "warmup": warmup,
+        "schedule": "AdamW(0.9, 0.95, wd 0.01 on matrices), linear warm-up then cosine to 10% of peak",
+        "threads": int(threads),
+        "seed": int(seed),
+        "parameters": count_parameters(model),
+        "corpus_sha256": sha,
+        "corpus_documents": len(docs),
+        "corpus_bytes": len(corpus_mod.corpus_text(docs).encode("utf-8")),
+        "val_documents": len(val_docs),
+        "val_windows": val_windows,
+        "versions": _versions(),
+        "command": command or "",
+    }
+    model.config.attnpos_training = record
+    if out is not None:
+        save(model, out)
+    return model, record
+
+
+def save(model, out: str | os.PathLike) -> Path:
+    """Save model (safetensors) + byte tokenizer into ``out``."""
+    out = Path(out)
+    out.mkdir(parents=True, exist_ok=True)
+    model.save_pretrained(out)
+    if not (out / "model.safetensors").exists():  # pragma: no cover - transformers 5 always writes safetensors
+        raise AttnposError(f"saving to {out} did not produce model.safetensors")
+    limit = None
+    if getattr(model.config, "model_type", "") == "gpt2":
+        limit = model.config.n_positions
+    build_tokenizer(model_max_length=limit).save_pretrained(out)
+    return out
+
+
+# ----------------------------------------------------------------------------------------------- CLI
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("scheme", choices=SCHEMES, help="position scheme of the model to train")
+    parser.add_argument("--out", required=True, help="folder to save the trained model and tokenizer into")
+    parser.add_argument("--minutes", type=float, default=None,
+                        help="time budget in minutes (default 4.5 when --steps is not given); always a hard cap")
+    parser.add_argument("--context", type=int, default=DEFAULT_CONTEXT,
+                        help=f"training context length in tokens (default {DEFAULT_CONTEXT})")
+    parser.add_argument("--seed", type=int, default=0, help="seed for initialisation and batches (default 0)")
+    parser.add_argument("--steps", type=int, default=None,
+                        help="number of updates (default: as many as fit in --minutes, measured at the start)")
+    parser.add_argument("--batch", type=int, default=32, help="windows per batch (default 32)")
+    parser.add_argument("--lr", type=float, default=3e-3, help="peak learning rate (default 3e-3)")
+    parser.add_argument("--threads", type=int, default=2, help="torch CPU threads (default 2)")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def run(args) -> int:
+    minutes = args.minutes
+    if minutes is None and args.steps is None:
+        minutes = 4.5
+    command = _command(args)
+    _, record = train(args.scheme, args.out, context=args.context, seed=args.seed, steps=args.steps,
+                      minutes=minutes, batch=args.batch, lr=args.lr, threads=args.threads,
+                      progress=not args.quiet, command=command)
+    print(f"{args.scheme}: {record['steps']} steps in {record['minutes']:.2f} min; "
+          f"loss per byte (nats) train {record['train_loss_per_byte']:.4f}, val {record['val_loss_per_byte']:.4f} "
+          f"(untrained {record['val_loss_per_byte_untrained']:.4f}; unigram entropy "
+          f"{record['unigram_entropy_per_byte']:.4f}); saved to {args.out}")
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="python -m attnpos.reference.train", description=__doc__.split("\n")[0])
+    add_arguments(parser)
+    args = parser.parse_args(argv)
+    try:
+        return run(args)
+    except AttnposError as exc:
+        print(f"attnpos: {exc}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

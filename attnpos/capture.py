@@ -1,0 +1,402 @@
+"""Run a subject on texts and hand every self-attention layer's scores and weights to reducers, layer by layer.
+
+Two capture paths:
+
+* **registry** — where the architecture calls transformers' attention-function registry (Llama, Mistral, Qwen2,
+  GPT-2, GPT-NeoX, SmolLM3, BERT, T5, …), attnpos registers its own attention function for the duration of the
+  run. It computes the pre-softmax **scores** (q·k scaled, plus any bias the model adds: T5's relative bias, the
+  mask) itself, so reducers see true scores. A mask function is registered under the same name, otherwise
+  transformers would hand over no causal mask at all.
+* **eager-weights** — where the architecture computes attention inside its own module (e.g. Bloom), the model
+  runs eagerly with ``output_attentions`` and a forward hook on each attention module takes the weights as the
+  layer finishes and drops them from the output, so at most one layer's maps exist at a time. Scores are then
+  **log-weights** (they differ from true scores by a per-row constant, which the split absorbs).
+
+Both paths restore the model exactly (attention implementation, registry, hooks), also when a run raises.
+
+Example::
+
+    >>> rec = attnpos.record(subject, ["The ferry left at nine."], reducers=[MyReducer()])   # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import contextlib
+import sys
+from dataclasses import dataclass, field
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+import torch
+
+from .errors import AttnposError
+from .subject import AttentionSite, Subject
+from .texts import TextUnit, as_raw, prepare
+
+FUNCTION_NAME = "attnpos_capture"
+
+# bytes one chunk of (heads, T, T) float32 may take; heads are processed in chunks to bound memory
+CHUNK_BYTES = 160 * 2**20
+
+
+@dataclass
+class LayerCapture:
+    """What a reducer sees: one attention layer, one text, a chunk of heads.
+
+    ``scores`` and ``weights`` are ``(n, T, T)`` float32 tensors for heads ``head0 … head0+n-1``; disallowed pairs
+    hold ``-inf`` scores and zero weight. ``allowed`` is the ``(T, T)`` boolean mask of pairs the model lets the
+    query see. ``offset`` is the number of neutral prefix tokens placed before the text (shift test); rows and
+    columns before it are not part of the text.
+    """
+
+    site: AttentionSite
+    text: int
+    unit: TextUnit
+    head0: int
+    n_heads: int
+    scores: torch.Tensor
+    weights: torch.Tensor
+    allowed: torch.Tensor
+    score_kind: str
+    offset: int = 0
+
+
+class Reducer:
+    """Base class: keep statistics from each :class:`LayerCapture`; ``result()`` is stored in the recording."""
+
+    name = "reducer"
+
+    def begin(self, subject: Subject, units: Sequence[TextUnit]) -> None:  # noqa: D401
+        pass
+
+    def update(self, cap: LayerCapture) -> None:
+        raise NotImplementedError
+
+    def result(self) -> Any:
+        return None
+
+
+@dataclass
+class Recording:
+    """What one pass of :func:`record` kept."""
+
+    subject: Subject
+    units: list[TextUnit]
+    capture: str                      # "registry" or "eager-weights"
+    score_kind: str                   # "scores" or "log-weights"
+    results: dict[str, Any] = field(default_factory=dict)
+    maps: dict = field(default_factory=dict)          # (text, stack, layer, head) -> (T,T) float32 weights
+    score_maps: dict = field(default_factory=dict)    # same keys, scores
+    hidden: list = field(default_factory=list)        # per text: (layers+1, T, d) float32, if asked
+    token_loss: list = field(default_factory=list)    # per text: (T-1,) nats, next-token loss, if asked
+    position_offset: int = 0
+    prefix: list[int] = field(default_factory=list)
+
+
+# ------------------------------------------------------------------------------------------------- the run
+
+
+class _Run:
+    def __init__(self, subject, units, reducers, keep, keep_scores, score_kind, offset):
+        self.subject = subject
+        self.units = units
+        self.reducers = reducers
+        self.keep = keep
+        self.keep_scores = keep_scores
+        self.score_kind = score_kind
+        self.offset = offset
+        self.site_of = {id(s.module): s for s in subject.sites}
+        self.text = 0
+        self.seen: set = set()
+        self.maps: dict = {}
+        self.score_maps: dict = {}
+        self.nonfinite: set = set()
+
+    def deliver(self, site: AttentionSite, scores: torch.Tensor, weights: torch.Tensor, allowed: torch.Tensor,
+                head0: int) -> None:
+        self.seen.add(id(site.module))
+        n = scores.shape[0]
+        if not torch.isfinite(weights).all():
+            self.nonfinite.add((site.stack, site.layer))
+        cap = LayerCapture(site=site, text=self.text, unit=self.units[self.text], head0=head0, n_heads=n,
+                           scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
+                           offset=self.offset)
+        for r in self.reducers:
+            r.update(cap)
+        if self.keep is not None:
+            for h in range(n):
+                key = (self.text, site.stack, site.layer, head0 + h)
+                if self.keep(key):
+                    self.maps[key] = weights[h].detach().to(torch.float32).numpy().copy()
+                    if self.keep_scores:
+                        self.score_maps[key] = scores[h].detach().to(torch.float32).numpy().copy()
+
+
+_ACTIVE: list[_Run] = []
+
+
+def _allowed_from_mask(attention_mask, q_len: int, k_len: int, causal: bool) -> torch.Tensor:
+    if attention_mask is None:
+        if causal:
+            return torch.ones(q_len, k_len, dtype=torch.bool).tril(k_len - q_len)
+        return torch.ones(q_len, k_len, dtype=torch.bool)
+    m = attention_mask
+    while m.dim() > 2:
+        m = m[0]
+    m = m[-q_len:, :k_len]
+    if m.dtype == torch.bool:
+        return m.clone()
+    return m > torch.finfo(m.dtype).min / 2
+
+
+def _capture_attention(module, query, key, value, attention_mask, scaling=None, dropout=0.0, **kwargs):
+    """Eager attention that also hands scores and weights to the active run (registered in the registry)."""
+    run = _ACTIVE[-1] if _ACTIVE else None
+    site = run.site_of.get(id(module)) if run else None
+    if kwargs.get("s_aux") is not None or kwargs.get("sinks") is not None:
+        raise AttnposError("This model uses attention sinks (learned extra logits); attnpos cannot capture it yet.")
+    bsz, n_heads, q_len, d = query.shape
+    n_rep = n_heads // key.shape[1]
+    if n_rep > 1:  # grouped-query attention: repeat key/value heads as the model's eager path does
+        key = key.repeat_interleave(n_rep, dim=1)
+        value = value.repeat_interleave(n_rep, dim=1)
+    k_len = key.shape[-2]
+    if scaling is None:
+        scaling = d ** -0.5
+    bias = kwargs.get("position_bias")
+    softcap = kwargs.get("softcap")
+    mask_add = None
+    if attention_mask is not None:
+        am = attention_mask[..., :k_len]
+        mask_add = am if am.dtype != torch.bool else torch.where(am, 0.0, float("-inf")).to(query.dtype)
+    causal = site.causal if site is not None else bool(getattr(module, "is_causal", False))
+    allowed = _allowed_from_mask(attention_mask, q_len, k_len, causal if attention_mask is None else False)
+    per_head = q_len * k_len * 4
+    chunk = max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1)))
+    out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype)
+    for b in range(bsz):
+        for h0 in range(0, n_heads, chunk):
+            h1 = min(n_heads, h0 + chunk)
+            s = torch.matmul(query[b, h0:h1].float(), key[b, h0:h1].float().transpose(-1, -2)) * scaling
+            if bias is not None:
+                pb = bias[min(b, bias.shape[0] - 1)]
+                s = s + (pb[h0:h1] if pb.shape[0] > 1 else pb).float()
+            if softcap:
+                s = torch.tanh(s / softcap) * softcap
+            if mask_add is not None:
+                ma = mask_add[min(b, mask_add.shape[0] - 1)]
+                s = s + ma.float()
+            elif attention_mask is None and causal:
+                s = s.masked_fill(~allowed, float("-inf"))
+            s = s.masked_fill(~allowed, float("-inf"))
+            w = torch.softmax(s, dim=-1)
+            w = torch.nan_to_num(w, nan=0.0)  # rows with no allowed key
+            out[b, h0:h1] = torch.matmul(w.to(value.dtype), value[b, h0:h1])
+            if site is not None and b == 0:
+                run.deliver(site, s, w, allowed, h0)
+            del s, w
+    return out.transpose(1, 2).contiguous(), None
+
+
+@contextlib.contextmanager
+def _registry_path(subject: Subject):
+    """Register the capture function + an eager mask under our name and switch the model to it; undo after."""
+    from transformers import AttentionInterface
+    from transformers.masking_utils import AttentionMaskInterface, eager_mask
+
+    configs = _all_configs(subject.model)
+    saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
+    had_fn = FUNCTION_NAME in AttentionInterface._global_mapping
+    had_mask = FUNCTION_NAME in AttentionMaskInterface._global_mapping
+    AttentionInterface.register(FUNCTION_NAME, _capture_attention)
+    AttentionMaskInterface.register(FUNCTION_NAME, eager_mask)
+    try:
+        for c in configs:
+            c._attn_implementation_internal = FUNCTION_NAME
+        yield
+    finally:
+        for c, v in saved:
+            c._attn_implementation_internal = v
+        if not had_fn:
+            AttentionInterface._global_mapping.pop(FUNCTION_NAME, None)
+        if not had_mask:
+            AttentionMaskInterface._global_mapping.pop(FUNCTION_NAME, None)
+
+
+def _all_configs(model) -> list:
+    seen: dict[int, Any] = {}
+    stack = [model.config]
+    for m in model.modules():
+        if hasattr(m, "config") and hasattr(m.config, "_attn_implementation"):
+            stack.append(m.config)
+    while stack:
+        c = stack.pop()
+        if id(c) in seen or c is None:
+            continue
+        seen[id(c)] = c
+        for k in getattr(c, "sub_configs", {}) or {}:
+            stack.append(getattr(c, k, None))
+    return list(seen.values())
+
+
+@contextlib.contextmanager
+def _weights_path(subject: Subject, run_ref: list):
+    """Eager output_attentions + a forward hook per attention module that takes and drops the weights."""
+    configs = _all_configs(subject.model)
+    saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
+    handles = []
+
+    def make_hook(site):
+        def hook(module, args, kwargs, output):
+            run = run_ref[-1]
+            if not isinstance(output, tuple):
+                return output
+            for k, o in enumerate(output):
+                if isinstance(o, torch.Tensor) and o.dim() == 4 and o.shape[-1] == o.shape[-2]:
+                    w = o[0].float()
+                    T = w.shape[-1]
+                    allowed = (torch.ones(T, T, dtype=torch.bool).tril() if site.causal
+                               else torch.ones(T, T, dtype=torch.bool))
+                    s = torch.log(w.clamp_min(1e-30)).masked_fill(~allowed, float("-inf"))
+                    run.deliver(site, s, w.masked_fill(~allowed, 0.0), allowed, 0)
+                    return tuple(None if j == k else x for j, x in enumerate(output))
+            return output
+        return hook
+
+    try:
+        for c in configs:
+            c._attn_implementation_internal = "eager"
+        for site in subject.sites:
+            handles.append(site.module.register_forward_hook(make_hook(site), with_kwargs=True))
+        yield
+    finally:
+        for h in handles:
+            h.remove()
+        for c, v in saved:
+            c._attn_implementation_internal = v
+
+
+def _forward(subject: Subject, ids: list[int], *, offset: int, want_weights: bool, hidden: bool):
+    model = subject.model
+    x = torch.tensor([ids], dtype=torch.long)
+    kw: dict[str, Any] = {"input_ids": x, "attention_mask": torch.ones_like(x)}
+    if subject.is_encoder_decoder:
+        start = getattr(model.config, "decoder_start_token_id", None)
+        start = 0 if start is None else start
+        kw["decoder_input_ids"] = torch.tensor([[start] + ids[:-1]], dtype=torch.long)
+    else:
+        kw["use_cache"] = False
+    if offset:
+        limit = subject.context_limit
+        if limit and len(ids) + offset > limit and any(s.scheme == "learned-absolute" for s in subject.sites):
+            raise AttnposError(f"Offsetting positions by {offset} needs {len(ids) + offset} positions, more than the "
+                               f"model's table of {limit}. Use a smaller offset or shorter texts.")
+        kw["position_ids"] = torch.arange(offset, offset + len(ids)).unsqueeze(0)
+    if want_weights:
+        kw["output_attentions"] = True
+    if hidden:
+        kw["output_hidden_states"] = True
+    try:
+        return model(**kw)
+    except TypeError as exc:
+        if "use_cache" in str(exc):
+            kw.pop("use_cache", None)
+            return model(**kw)
+        raise
+
+
+def _token_loss(outputs, ids: list[int]) -> np.ndarray | None:
+    logits = getattr(outputs, "logits", None)
+    if logits is None or logits.shape[-1] < 2 or len(ids) < 2:
+        return None
+    lp = torch.log_softmax(logits[0, :-1].float(), dim=-1)
+    tgt = torch.tensor(ids[1:], dtype=torch.long)
+    return (-lp.gather(1, tgt[:, None])[:, 0]).numpy()
+
+
+def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, keep=None, keep_scores: bool = False,
+           position_offset: int = 0, prefix: Sequence[int] | None = None, hidden_states: bool = False,
+           token_loss: bool = False, max_tokens: int | None = None, units: Sequence[TextUnit] | None = None,
+           progress: bool | None = None, path: str | None = None) -> Recording:
+    """Run ``subject`` on ``texts`` and feed every self-attention layer to ``reducers``.
+
+    Args:
+        texts: strings, Paths, RawTexts, or None (bundled samples); or pass prepared ``units``.
+        reducers: objects with ``begin``/``update``/``result`` (see :class:`Reducer`).
+        keep: which weight maps to keep whole: a predicate on ``(text, stack, layer, head)``, a set of such keys,
+            ``"all"``, or None. Only these are held; everything else is reduced on the fly.
+        position_offset: add this to every position id (shift test; schemes with position ids).
+        prefix: token ids placed before every text (shift test; schemes without position ids). Reducers see
+            ``offset = len(prefix)``.
+        hidden_states / token_loss: also keep per-text hidden states and next-token losses.
+        path: force ``"registry"`` or ``"eager-weights"``; by default the registry path is tried first.
+    """
+    if units is None:
+        units = prepare(subject, as_raw(texts), max_tokens=max_tokens)
+    units = list(units)
+    reducers = list(reducers)
+    prefix = list(prefix or [])
+    if keep == "all":
+        keep_fn = lambda k: True  # noqa: E731
+    elif isinstance(keep, (set, frozenset, list, tuple)):
+        ks = set(keep)
+        keep_fn = ks.__contains__
+    else:
+        keep_fn = keep
+    chosen = path or getattr(subject, "_capture_path", None) or "registry"
+    kind = "scores" if chosen == "registry" else "log-weights"
+    for r in reducers:
+        r.begin(subject, units)
+    run = _Run(subject, units, reducers, keep_fn, keep_scores, kind, len(prefix))
+    rec = Recording(subject=subject, units=units, capture=chosen, score_kind=kind, position_offset=position_offset,
+                    prefix=prefix)
+    show = progress if progress is not None else (len(units) > 3 and sys.stderr.isatty())
+    iterator = range(len(units))
+    if show:
+        from tqdm.auto import tqdm
+
+        iterator = tqdm(iterator, desc=f"recording {subject.name}", unit="text")
+    _ACTIVE.append(run)
+    try:
+        ctx = _registry_path(subject) if chosen == "registry" else _weights_path(subject, _ACTIVE)
+        with ctx, torch.no_grad():
+            for t in iterator:
+                run.text = t
+                run.seen = set()
+                ids = prefix + list(units[t].ids)
+                out = _forward(subject, ids, offset=position_offset, want_weights=(chosen != "registry"),
+                               hidden=hidden_states)
+                missing = [s for s in subject.sites if id(s.module) not in run.seen]
+                if missing:
+                    if chosen == "registry" and t == 0 and len(missing) == len(subject.sites) and path is None:
+                        # the architecture does not call the registry: switch paths for this subject
+                        subject._capture_path = "eager-weights"
+                        _ACTIVE.pop()
+                        return record(subject, units=units, reducers=reducers, keep=keep, keep_scores=keep_scores,
+                                      position_offset=position_offset, prefix=prefix, hidden_states=hidden_states,
+                                      token_loss=token_loss, progress=progress, path="eager-weights")
+                    names = ", ".join(f"{s.stack}:L{s.layer}" for s in missing[:4])
+                    raise AttnposError(f"The capture saw no attention for {len(missing)} layers ({names}) of "
+                                       f"{subject.architecture}. This architecture computes attention in a way "
+                                       "attnpos does not reach; please report it.")
+                if hidden_states:
+                    hs = getattr(out, "hidden_states", None) or getattr(out, "encoder_hidden_states", None)
+                    rec.hidden.append(np.stack([h[0, len(prefix):].float().numpy() for h in hs]))
+                if token_loss:
+                    tl = _token_loss(out, ids)
+                    rec.token_loss.append(tl[len(prefix):] if tl is not None else None)
+                del out
+        subject._capture_path = chosen
+    finally:
+        if _ACTIVE and _ACTIVE[-1] is run:
+            _ACTIVE.pop()
+    if run.nonfinite:
+        bad = ", ".join(f"{s}:L{l}" for s, l in sorted(run.nonfinite)[:4])
+        raise AttnposError(f"The model produced NaN or infinite attention weights in {len(run.nonfinite)} layers "
+                           f"({bad}). Check the checkpoint for NaN/inf weights (attnpos.subject."
+                           "has_nonfinite_weights) before scanning.")
+    rec.maps = run.maps
+    rec.score_maps = run.score_maps
+    for r in reducers:
+        rec.results[r.name] = r.result()
+    return rec

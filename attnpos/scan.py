@@ -1,0 +1,84 @@
+"""The full scan: load → record → split → shift test → induction test → roles → :class:`~attnpos.result.Scan`.
+
+Example::
+
+    >>> import attnpos
+    >>> scan = attnpos.scan("ref:rope")                     # bundled sample texts     # doctest: +SKIP
+    >>> scan = attnpos.scan("/models/ckpt", ["my text ..."], n_boot=200)                # doctest: +SKIP
+    >>> scan.heads.query("role == 'previous-token'")                                   # doctest: +SKIP
+    >>> scan.save("scan.json")                                                          # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import platform
+from typing import Any
+
+import numpy as np
+
+from . import __version__
+from .capture import record
+from .errors import AttnposError
+from .induction import induction_scores
+from .reducers import SplitStats, WeightStats
+from .result import Scan
+from .roles import head_table
+from .shift import ShiftTest
+from .split import Split
+from .subject import Subject, load
+from .texts import as_raw, prepare, texts_hash
+
+
+def versions() -> dict:
+    import torch
+    import transformers
+
+    return {"attnpos": __version__, "torch": torch.__version__, "transformers": transformers.__version__,
+            "numpy": np.__version__, "python": platform.python_version()}
+
+
+def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, n_boot: int = 100,
+         shift: bool = True, induction: bool = True, keep_maps: int = 2, max_map_tokens: int = 512,
+         progress: bool | None = None, allow_pickle: bool = False, trust_remote_code: bool = False) -> Scan:
+    """Scan a model on texts and return a :class:`~attnpos.result.Scan`.
+
+    Args:
+        model: a :class:`~attnpos.subject.Subject`, a folder, or ``"ref:<scheme>"``.
+        texts: strings, ``pathlib.Path`` files/folders, or None for the bundled sample texts.
+        scheme: state the position scheme by hand (see :func:`attnpos.load`).
+        max_tokens: split texts into windows of at most this many tokens (default: the model's limit).
+        n_boot: bootstrap resamples over texts for the intervals.
+        shift / induction: run the shift test / the induction test.
+        keep_maps: keep full weight maps (for the card view) of the first this-many texts, if they have at most
+            ``max_map_tokens`` tokens.
+    """
+    subject = model if isinstance(model, Subject) else load(model, scheme=scheme, allow_pickle=allow_pickle,
+                                                            trust_remote_code=trust_remote_code)
+    units = prepare(subject, as_raw(texts), max_tokens=max_tokens)
+    if all(len(u) < 3 for u in units):
+        raise AttnposError("Every text is shorter than 3 tokens; attention statistics need longer texts.")
+    kept = {i for i in range(min(keep_maps, len(units))) if len(units[i]) <= max_map_tokens}
+    rec = record(subject, units=units, reducers=[WeightStats(), SplitStats()], keep=lambda k: k[0] in kept,
+                 progress=progress)
+    fit = Split(n_boot=n_boot).fit(rec)
+    sh = ShiftTest().run(subject, units) if shift else None
+    ind = induction_scores(subject) if induction else None
+    table = head_table(subject, rec.results["weights"], fit, sh, ind)
+    info = subject.describe()
+    info["capture"] = rec.capture
+    info["score_kind"] = rec.score_kind
+    profile = {"distance": fit.distance,
+               "value": fit.profile.reshape(-1, fit.profile.shape[-1]),
+               "low": fit.profile_lo.reshape(-1, fit.profile.shape[-1]),
+               "high": fit.profile_hi.reshape(-1, fit.profile.shape[-1])}
+    w = rec.results["weights"]
+    extra = {
+        "split": {"n_texts": fit.n_texts, "n_boot": fit.n_boot},
+        "near": {"distance": w["near_distance"].tolist(),
+                 "mean": w["near_mean"].reshape(-1, w["near_mean"].shape[-1]).tolist()},
+    }
+    if sh is not None:
+        extra["shift"] = {"kind": sh["kind"], "offset": sh["offset"], "note": sh.get("note")}
+    return Scan(model=info, texts=[u.describe() for u in units], tokens=[u.tokens for u in units],
+                special=[np.flatnonzero(u.special).tolist() for u in units], heads=table, profile=profile,
+                maps=rec.maps, texts_hash=texts_hash(units), versions=versions(), extra=extra)

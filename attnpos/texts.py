@@ -1,0 +1,211 @@
+"""Texts in: read files and folders, tokenise for a subject, split past the context limit, mark special tokens.
+
+Example::
+
+    >>> from attnpos import texts
+    >>> raw = texts.read(["notes/", "extra.txt"], lines=False)        # doctest: +SKIP
+    >>> units = texts.prepare(subject, raw, max_tokens=512)           # doctest: +SKIP
+    >>> units[0].name, len(units[0].ids), units[0].special[:3]        # doctest: +SKIP
+
+A text longer than the model's context limit (or ``max_tokens``) is split into consecutive windows, each a text
+unit of its own, and a notice says so; nothing is silently truncated.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterable, Sequence
+
+import numpy as np
+
+from .errors import AttnposError
+
+SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_text"
+
+
+class WindowNotice(UserWarning):
+    """A text was split into windows because it is longer than the limit."""
+
+
+@dataclass
+class RawText:
+    name: str
+    text: str
+    source: str
+
+
+@dataclass
+class TextUnit:
+    """One tokenised text (or window of one) as the model sees it."""
+
+    name: str
+    source: str
+    ids: list[int]
+    tokens: list[str]          # display string per token (user text: escape before rendering)
+    special: np.ndarray        # bool per token: BOS/CLS/SEP/EOS/PAD...
+    window: tuple[int, int] | None = None   # [start, end) in the source's body tokens, when split
+
+    def __len__(self) -> int:
+        return len(self.ids)
+
+    def describe(self) -> dict:
+        return {"name": self.name, "source": self.source, "n_tokens": len(self.ids),
+                "window": list(self.window) if self.window else None}
+
+
+def default_texts() -> list[RawText]:
+    """The bundled sample texts (``sample_text/`` at the project root)."""
+    if not SAMPLE_DIR.is_dir():
+        raise AttnposError(f"The bundled sample texts were not found at {SAMPLE_DIR}. Install attnpos from its "
+                           "source folder (`pip install -e .`) or pass your own texts with --text.")
+    return read([SAMPLE_DIR])
+
+
+def _decode(path: Path) -> str:
+    data = path.read_bytes()
+    if b"\x00" in data[:8192]:
+        raise AttnposError(f"{path} looks like a binary file (it contains NUL bytes), not text. Pass plain UTF-8 "
+                           "text files (.txt).")
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise AttnposError(f"{path} is not valid UTF-8 (byte 0x{data[exc.start]:02x} at offset {exc.start}). "
+                           "Convert it, e.g. `iconv -f latin1 -t utf-8 in.txt > out.txt`.") from None
+
+
+def read(inputs: Iterable[str | Path] | str | Path, *, lines: bool = False) -> list[RawText]:
+    """Read texts from files and folders.
+
+    Args:
+        inputs: paths; a file is one text, a folder gives each ``*.txt`` inside (sorted) as a text.
+        lines: make each non-empty line its own text.
+    """
+    if isinstance(inputs, (str, Path)):
+        inputs = [inputs]
+    out: list[RawText] = []
+    for item in inputs:
+        p = Path(item).expanduser()
+        if p.is_dir():
+            files = sorted(f for f in p.iterdir() if f.suffix == ".txt" and f.is_file())
+            if not files:
+                raise AttnposError(f"The folder {p} has no .txt files. Put each text in its own .txt file, or "
+                                   "pass files directly with --text.")
+        elif p.is_file():
+            files = [p]
+        else:
+            raise AttnposError(f"No file or folder at {p}. --text takes a .txt file or a folder of them.")
+        for f in files:
+            body = _decode(f)
+            if lines:
+                for k, line in enumerate(body.splitlines()):
+                    if line.strip():
+                        out.append(RawText(name=f"{f.stem}:{k + 1}", text=line, source=str(f)))
+            else:
+                out.append(RawText(name=f.stem, text=body, source=str(f)))
+    return check(out)
+
+
+def check(raw: Sequence[RawText]) -> list[RawText]:
+    raw = list(raw)
+    if not raw:
+        raise AttnposError("No texts to scan: the inputs were empty. Pass at least one non-empty .txt file with "
+                           "--text (or a list of strings from Python).")
+    empty = [r.name for r in raw if not r.text.strip()]
+    if empty:
+        raise AttnposError(f"These texts are empty or whitespace only: {', '.join(empty[:5])}. Remove them or add "
+                           "text.")
+    return raw
+
+
+def from_strings(strings: Sequence[str], names: Sequence[str] | None = None) -> list[RawText]:
+    names = list(names) if names is not None else [f"text{i}" for i in range(len(strings))]
+    return check([RawText(name=n, text=s, source="<string>") for n, s in zip(names, strings)])
+
+
+def as_raw(texts) -> list[RawText]:
+    """Accept RawTexts, strings (raw text), Paths (files/folders) or None (the bundled samples)."""
+    if texts is None:
+        return default_texts()
+    if isinstance(texts, (str, Path, RawText)):
+        texts = [texts]
+    texts = list(texts)
+    if texts and all(isinstance(t, RawText) for t in texts):
+        return check(texts)
+    if texts and all(isinstance(t, Path) for t in texts):
+        return read(texts)
+    if texts and all(isinstance(t, str) for t in texts):
+        return from_strings(texts)
+    if not texts:
+        return check([])
+    raise AttnposError("texts must be a list of strings (the texts themselves), of pathlib.Path (files or "
+                       "folders), or None for the bundled samples.")
+
+
+def _display(tokenizer, ids: Sequence[int]) -> list[str]:
+    out = []
+    for i in ids:
+        try:
+            s = tokenizer.decode([int(i)], skip_special_tokens=False, clean_up_tokenization_spaces=False)
+        except Exception:  # noqa: BLE001 - some tokenizers fail on lone ids
+            s = str(tokenizer.convert_ids_to_tokens(int(i)))
+        out.append(s)
+    return out
+
+
+def _template(tokenizer) -> tuple[list[int], list[int]]:
+    """The special tokens the tokenizer puts before and after a text (e.g. [CLS] … [SEP], or BOS …)."""
+    probe = "x y"
+    plain = tokenizer(probe, add_special_tokens=False)["input_ids"]
+    full = tokenizer(probe, add_special_tokens=True)["input_ids"]
+    n = len(plain)
+    for a in range(len(full) - n + 1):
+        if list(full[a:a + n]) == list(plain):
+            return list(full[:a]), list(full[a + n:])
+    return [], []
+
+
+def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
+            warn: bool = True) -> list[TextUnit]:
+    """Tokenise texts for a subject; split any longer than the limit into windows (with a notice)."""
+    tok = subject.tokenizer
+    limit = subject.context_limit
+    if max_tokens is not None:
+        limit = min(limit, max_tokens) if limit else max_tokens
+    prefix, suffix = _template(tok)
+    special_ids = set(getattr(tok, "all_special_ids", []) or [])
+    units: list[TextUnit] = []
+    for r in check(raw):
+        body = list(tok(r.text, add_special_tokens=False)["input_ids"])
+        if not body:
+            raise AttnposError(f"The text {r.name} produced no tokens with this tokenizer.")
+        room = (limit - len(prefix) - len(suffix)) if limit else len(body)
+        if room < 1:
+            raise AttnposError(f"The limit of {limit} tokens leaves no room for text after the special tokens.")
+        starts = list(range(0, len(body), room))
+        if len(starts) > 1 and warn:
+            warnings.warn(f"{r.name}: {len(body)} tokens is more than the limit of {limit}; split into "
+                          f"{len(starts)} windows of at most {limit} tokens (each scanned as its own text).",
+                          WindowNotice, stacklevel=2)
+        for k, a in enumerate(starts):
+            chunk = body[a:a + room]
+            ids = prefix + chunk + suffix
+            special = np.zeros(len(ids), dtype=bool)
+            special[:len(prefix)] = True
+            if suffix:
+                special[len(ids) - len(suffix):] = True
+            special |= np.isin(np.asarray(ids), list(special_ids)) if special_ids else False
+            name = r.name if len(starts) == 1 else f"{r.name}#{k + 1}"
+            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=_display(tok, ids),
+                                  special=special, window=(a, a + len(chunk)) if len(starts) > 1 else None))
+    return units
+
+
+def texts_hash(units: Sequence[TextUnit]) -> str:
+    h = hashlib.blake2b(digest_size=12)
+    for u in units:
+        h.update(np.asarray(u.ids, dtype=np.int64).tobytes())
+        h.update(b"|")
+    return h.hexdigest()

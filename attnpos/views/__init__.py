@@ -1,0 +1,30 @@
+"""Notebook views of a scan, and their static HTML/SVG renderings.
+
+Widgets (anywidget; each also renders as static HTML when no kernel or widget manager is there):
+
+- :class:`Atlas` — every head as a layers × heads grid: role colour + written role, profile sparkline,
+  finding marks; hover for evidence, click or arrows + Enter to select.
+- :class:`HeadCard` — one head in depth: weight map, profile, score split, shift test, induction, top keys.
+- :class:`Curves` — probe R² per layer; loss per position past the training length.
+- :class:`FindingsPanel` — notes on a head, layer or the model, written through :mod:`attnpos.findings`.
+- :class:`Survey` — all four, linked.
+
+Example::
+
+    import attnpos
+    from attnpos.views import Survey
+    scan = attnpos.scan("ref:rope")
+    Survey(scan, findings="rope-findings.json")
+"""
+
+from ._common import RAMP, ROLE_COLOURS, ROLES, head_key, layer_key, parse_key, show_token
+from .atlas import Atlas
+from .card import HeadCard
+from .curves import Curves
+from .findings_panel import FindingsPanel
+from .static import atlas_html, card_html, curves_html, findings_table_html
+from .survey import Survey, survey
+
+__all__ = ["Atlas", "HeadCard", "Curves", "FindingsPanel", "Survey", "survey", "ROLES", "ROLE_COLOURS", "RAMP",
+           "head_key", "layer_key", "parse_key", "show_token", "atlas_html", "card_html", "curves_html",
+           "findings_table_html"]

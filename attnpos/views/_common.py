@@ -1,0 +1,405 @@
+"""Shared pieces of the views: role palette, the map colour ramp, keys, escaping, number formatting, PNG.
+
+Everything here is plain Python + numpy so that the static renderings (report, ``_repr_html_``) and the
+widgets agree on colours, labels and keys.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import math
+import re
+import struct
+import warnings
+import zlib
+from typing import Any, Iterable
+
+import numpy as np
+
+# ------------------------------------------------------------------ roles
+ROLES = ("previous-token", "next-token", "local", "anchor", "counting", "content", "induction", "mixed")
+
+# Categorical palette derived from the Okabe & Ito (2008) colour-blind-safe set (common practice; hex values
+# from memory), assigned to our roles in our own order. The role name is always written beside the colour,
+# so colour is never the only carrier of the role.
+ROLE_COLOURS = {
+    "previous-token": "#0072B2",
+    "next-token": "#56B4E9",
+    "local": "#009E73",
+    "anchor": "#D55E00",
+    "counting": "#E69F00",
+    "content": "#CC79A7",
+    "induction": "#F0E442",
+    "mixed": "#8C8C8C",
+}
+UNKNOWN_COLOUR = "#D9D6CF"
+# Written labels: a short word for roomy cells, a two-letter code for dense grids (legend spells them out).
+ROLE_SHORT = {"previous-token": "prev", "next-token": "next", "local": "local", "anchor": "anchor",
+              "counting": "count", "content": "content", "induction": "induct", "mixed": "mixed"}
+ROLE_CODE = {"previous-token": "Pv", "next-token": "Nx", "local": "Lo", "anchor": "An",
+             "counting": "Ct", "content": "Co", "induction": "In", "mixed": "Mx"}
+
+# Colours of the four parts of the score split (muted, distinct from the role palette's meaning).
+PART_COLOURS = {"distance": "#3F6E9A", "slot": "#B8613F", "content": "#6C8C4F", "residual": "#9A948A"}
+
+INK = "#1B1F24"
+PAPER = "#FBFAF7"
+
+
+def role_index(role: Any) -> int:
+    """0 for a missing/unknown role, else 1 + position in :data:`ROLES`."""
+    try:
+        return ROLES.index(str(role)) + 1 if role is not None else 0
+    except ValueError:
+        return 0
+
+
+def role_colour(role: Any) -> str:
+    return ROLE_COLOURS.get(str(role), UNKNOWN_COLOUR) if role is not None else UNKNOWN_COLOUR
+
+
+def _hex_rgb(h: str) -> tuple[int, int, int]:
+    h = h.lstrip("#")
+    return int(h[0:2], 16), int(h[2:4], 16), int(h[4:6], 16)
+
+
+def tint(colour: str, amount: float = 0.35) -> str:
+    """Mix a colour with white (amount = share of white)."""
+    r, g, b = _hex_rgb(colour)
+    mix = [round(c + (255 - c) * amount) for c in (r, g, b)]
+    return "#%02X%02X%02X" % tuple(mix)
+
+
+def ink_on(colour: str) -> str:
+    """Dark or light text for a background, by relative luminance (WCAG formula, common practice)."""
+    def lin(c: float) -> float:
+        c /= 255
+        return c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4
+    r, g, b = _hex_rgb(colour)
+    lum = 0.2126 * lin(r) + 0.7152 * lin(g) + 0.0722 * lin(b)
+    return INK if lum > 0.22 else "#FFFFFF"
+
+
+def role_palette() -> list[dict]:
+    """What the JS side needs to draw roles: one dict per role id (id 0 = unknown)."""
+    out = [{"role": "", "colour": UNKNOWN_COLOUR, "fill": UNKNOWN_COLOUR, "ink": INK, "short": "?", "code": "?"}]
+    for r in ROLES:
+        fill = tint(ROLE_COLOURS[r], 0.35)
+        out.append({"role": r, "colour": ROLE_COLOURS[r], "fill": fill, "ink": ink_on(fill),
+                    "short": ROLE_SHORT[r], "code": ROLE_CODE[r]})
+    return out
+
+
+# ------------------------------------------------------------------ colour ramp for weight maps
+# Control points of a perceptually uniform sequential map: viridis sampled at 10 evenly spaced stops
+# (van der Walt & Smith's published colormap; values from memory). We interpolate them in OKLab
+# (Ottosson 2020 matrices) to a 256-entry ramp of our own.
+_RAMP_STOPS = ["#440154", "#482878", "#3E4989", "#31688E", "#26828E",
+               "#1F9E89", "#35B779", "#6ECE58", "#B5DE2B", "#FDE725"]
+
+
+def _srgb_to_linear(c: np.ndarray) -> np.ndarray:
+    return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+
+
+def _linear_to_srgb(c: np.ndarray) -> np.ndarray:
+    c = np.clip(c, 0, 1)
+    return np.where(c <= 0.0031308, 12.92 * c, 1.055 * np.power(c, 1 / 2.4) - 0.055)
+
+
+_M1 = np.array([[0.4122214708, 0.5363325363, 0.0514459929],
+                [0.2119034982, 0.6806995451, 0.1073969566],
+                [0.0883024619, 0.2817188376, 0.6299787005]])
+_M2 = np.array([[0.2104542553, 0.7936177850, -0.0040720468],
+                [1.9779984951, -2.4285922050, 0.4505937099],
+                [0.0259040371, 0.7827717662, -0.8086757660]])
+
+
+def srgb_to_oklab(rgb: np.ndarray) -> np.ndarray:
+    """sRGB in [0, 1] (..., 3) to OKLab (..., 3) (Ottosson 2020)."""
+    lms = _srgb_to_linear(np.asarray(rgb, float)) @ _M1.T
+    return np.cbrt(lms) @ _M2.T
+
+
+def oklab_to_srgb(lab: np.ndarray) -> np.ndarray:
+    lms = (np.asarray(lab, float) @ np.linalg.inv(_M2).T) ** 3
+    return _linear_to_srgb(lms @ np.linalg.inv(_M1).T)
+
+
+def _make_ramp(n: int = 256) -> np.ndarray:
+    stops = np.array([_hex_rgb(h) for h in _RAMP_STOPS], float) / 255
+    lab = srgb_to_oklab(stops)
+    xs = np.linspace(0, 1, len(stops))
+    t = np.linspace(0, 1, n)
+    out = np.stack([np.interp(t, xs, lab[:, k]) for k in range(3)], axis=1)
+    return np.round(oklab_to_srgb(out) * 255).astype(np.uint8)
+
+
+RAMP = _make_ramp()          # (256, 3) uint8
+MISSING_RGB = (226, 222, 214)
+
+
+def ramp_colour(x: float) -> str:
+    if x is None or not np.isfinite(x):
+        return "#%02X%02X%02X" % MISSING_RGB
+    r, g, b = RAMP[int(round(min(max(x, 0.0), 1.0) * 255))]
+    return "#%02X%02X%02X" % (int(r), int(g), int(b))
+
+
+# ------------------------------------------------------------------ keys
+_KEY_RE = re.compile(r"^(?:(?P<stack>[A-Za-z_][\w-]*):)?L(?P<layer>\d+)(?:\.H(?P<head>\d+))?$")
+
+
+def head_key(stack: Any, layer: int, head: int) -> str:
+    """Our key of a head, the same string the findings store uses as target: ``L3.H2``, ``decoder:L1.H0``."""
+    prefix = "" if stack in (None, "", "main") else f"{stack}:"
+    return f"{prefix}L{int(layer)}.H{int(head)}"
+
+
+def layer_key(stack: Any, layer: int) -> str:
+    prefix = "" if stack in (None, "", "main") else f"{stack}:"
+    return f"{prefix}L{int(layer)}"
+
+
+def parse_key(key: str) -> tuple[str, int | None, int | None]:
+    """``"decoder:L1.H0"`` -> ("decoder", 1, 0); ``"L3"`` -> ("main", 3, None); ``"model"`` -> ("model", None, None)."""
+    if key == "model":
+        return "model", None, None
+    m = _KEY_RE.match(key or "")
+    if not m:
+        raise ValueError(f"not a head/layer key: {key!r} (expected e.g. 'L3.H2', 'L3', 'decoder:L1.H0' or 'model')")
+    head = m.group("head")
+    return m.group("stack") or "main", int(m.group("layer")), (int(head) if head is not None else None)
+
+
+# ------------------------------------------------------------------ text
+_CTRL = {"\n": "\\n", "\t": "\\t", "\r": "\\r"}
+
+
+def show_token(s: Any) -> str:
+    """A token as visible text: control characters become backslash escapes (``\\n``, ``\\x1b``), as do
+    C1 controls, bidi overrides and zero-width characters (``\\u202e``); an all-space token shows as ␣.
+    This is *display* only; HTML escaping is :func:`esc`'s job. The JS side (``_shared.js``) does the same."""
+    if s is None:
+        return "—"
+    s = str(s)
+    out = []
+    for ch in s:
+        o = ord(ch)
+        if ch in _CTRL:
+            out.append(_CTRL[ch])
+        elif o < 0x20 or o == 0x7F or 0x80 <= o < 0xA0:
+            out.append("\\x%02x" % o)
+        elif 0x200B <= o <= 0x200F or 0x202A <= o <= 0x202E or 0x2066 <= o <= 0x2069 \
+                or o == 0xFEFF or 0xD800 <= o <= 0xDFFF or o in (0xFFFE, 0xFFFF):
+            out.append("\\u%04x" % o)
+        else:
+            out.append(ch)
+    t = "".join(out)
+    if t and t.strip(" ") == "":
+        t = "\u2423" * len(t)
+    return t
+
+
+def esc(s: Any) -> str:
+    """Escape any user-derived string for HTML/SVG text or attribute (quotes included)."""
+    return html.escape(show_token(s), quote=True)
+
+
+def esc_plain(s: Any) -> str:
+    """Escape free text (finding bodies, evidence): control characters other than newline/tab become
+    backslash escapes, then HTML escaping (quotes included)."""
+    if s is None:
+        return "—"
+    out = []
+    for ch in str(s):
+        o = ord(ch)
+        if ch in "\n\t":
+            out.append(ch)
+        elif o < 0x20 or o == 0x7F or 0x80 <= o < 0xA0:
+            out.append("\\x%02x" % o)
+        elif 0x202A <= o <= 0x202E or 0x2066 <= o <= 0x2069:
+            out.append("\\u%04x" % o)
+        else:
+            out.append(ch)
+    return html.escape("".join(out), quote=True)
+
+
+def finite(x: Any) -> bool:
+    try:
+        return x is not None and math.isfinite(float(x))
+    except (TypeError, ValueError):
+        return False
+
+
+def fmt(x: Any, digits: int = 2) -> str:
+    """A number for display; missing (None/NaN/not a number) is an em dash."""
+    if not finite(x):
+        return "—"
+    x = float(x)
+    if x != 0 and abs(x) < 10 ** (-digits):
+        return f"{x:.1e}"
+    return f"{x:.{digits}f}"
+
+
+def fmt_interval(lo: Any, hi: Any, digits: int = 2) -> str:
+    if not finite(lo) or not finite(hi):
+        return ""
+    return f"[{fmt(lo, digits)}, {fmt(hi, digits)}]"
+
+
+def num(x: Any) -> float:
+    """A float, NaN for missing or non-numeric."""
+    try:
+        return float(x) if x is not None else float("nan")
+    except (TypeError, ValueError):
+        return float("nan")
+
+
+def clean(x: Any) -> Any:
+    """JSON-safe for traitlets: NaN -> None, numpy scalars -> Python."""
+    if isinstance(x, (np.floating, float)):
+        return float(x) if math.isfinite(float(x)) else None
+    if isinstance(x, (np.integer,)):
+        return int(x)
+    if isinstance(x, np.bool_):
+        return bool(x)
+    if isinstance(x, np.ndarray):
+        return [clean(v) for v in x.tolist()]
+    if isinstance(x, (list, tuple)):
+        return [clean(v) for v in x]
+    if isinstance(x, dict):
+        return {str(k): clean(v) for k, v in x.items()}
+    return x
+
+
+def text_of(x: Any) -> str:
+    """Evidence / tags cells may be str, dict, list or missing: one display string."""
+    if x is None:
+        return ""
+    if isinstance(x, float) and not math.isfinite(x):
+        return ""
+    if isinstance(x, dict):
+        return "; ".join(f"{k}={fmt(v, 3) if isinstance(v, (int, float, np.number)) else v}" for k, v in x.items())
+    if isinstance(x, (list, tuple, np.ndarray)):
+        return ", ".join(str(v) for v in x)
+    return str(x)
+
+
+def tags_of(x: Any) -> list[str]:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return []
+    if isinstance(x, str):
+        return [t.strip() for t in x.split(",") if t.strip()]
+    if isinstance(x, Iterable):
+        return [str(t) for t in x]
+    return [str(x)]
+
+
+# ------------------------------------------------------------------ PNG (static map images)
+def png_bytes(rgb: np.ndarray) -> bytes:
+    """Encode an (h, w, 3) uint8 array as PNG (no dependencies: zlib + CRC chunks per the PNG spec)."""
+    rgb = np.ascontiguousarray(rgb, dtype=np.uint8)
+    h, w, _ = rgb.shape
+    raw = b"".join(b"\x00" + rgb[y].tobytes() for y in range(h))
+
+    def chunk(kind: bytes, data: bytes) -> bytes:
+        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
+
+    return (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0))
+            + chunk(b"IDAT", zlib.compress(raw, 6)) + chunk(b"IEND", b""))
+
+
+def png_data_uri(rgb: np.ndarray) -> str:
+    return "data:image/png;base64," + base64.b64encode(png_bytes(rgb)).decode("ascii")
+
+
+def colourise(q: np.ndarray) -> np.ndarray:
+    """uint8 codes (0..254 value, 255 missing) -> (h, w, 3) RGB via :data:`RAMP`."""
+    q = np.asarray(q, dtype=np.uint8)
+    scaled = np.round(q.astype(np.float32) * (255 / 254)).clip(0, 255).astype(np.uint8)
+    rgb = RAMP[scaled]
+    rgb[q == 255] = MISSING_RGB
+    return rgb
+
+
+# ------------------------------------------------------------------ maps
+MAP_MAX_SIDE = 256
+
+
+def map_view(w: np.ndarray, window: Iterable[int] | None = None, max_side: int = MAP_MAX_SIDE) -> dict:
+    """Cut a window out of a (T, T) weight map and block-average it down to at most ``max_side`` per side.
+
+    Returns ``{"q": uint8 codes (rows, cols), "vmax", "q0", "q1", "k0", "k1", "step_q", "step_k",
+    "rows", "cols"}``; codes are value/vmax*254 rounded, 255 where missing (NaN).
+    """
+    w = np.asarray(w, dtype=np.float32)
+    T_q, T_k = w.shape
+    if window and len(list(window)) == 4:
+        q0, q1, k0, k1 = (int(v) for v in window)
+    else:
+        q0, q1, k0, k1 = 0, T_q, 0, T_k
+    q0, k0 = max(0, min(q0, T_q - 1)), max(0, min(k0, T_k - 1))
+    q1, k1 = max(q0 + 1, min(q1, T_q)), max(k0 + 1, min(k1, T_k))
+    sub = w[q0:q1, k0:k1]
+    sq = max(1, math.ceil(sub.shape[0] / max_side))
+    sk = max(1, math.ceil(sub.shape[1] / max_side))
+    rows, cols = math.ceil(sub.shape[0] / sq), math.ceil(sub.shape[1] / sk)
+    pad = np.full((rows * sq, cols * sk), np.nan, dtype=np.float32)
+    pad[:sub.shape[0], :sub.shape[1]] = sub
+    blocks = pad.reshape(rows, sq, cols, sk)
+    with np.errstate(invalid="ignore"):
+        cnt = np.isfinite(blocks).sum(axis=(1, 3))
+        tot = np.nansum(blocks, axis=(1, 3))
+        mean = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
+    vmax = float(np.nanmax(mean)) if np.isfinite(mean).any() else 0.0
+    scale = vmax if vmax > 0 else 1.0
+    q = np.where(np.isfinite(mean), np.round(np.clip(mean / scale, 0, 1) * 254), 255).astype(np.uint8)
+    return {"q": q, "vmax": vmax, "q0": q0, "q1": q1, "k0": k0, "k1": k1, "step_q": sq, "step_k": sk,
+            "rows": rows, "cols": cols, "T": T_q}
+
+
+def block_labels(tokens: list[str], start: int, stop: int, step: int) -> list[str]:
+    """Display label of each block of ``step`` tokens in [start, stop): ``#12 'tok'`` or ``#12–15 'a'…'d'``."""
+    out = []
+    for a in range(start, stop, step):
+        b = min(a + step, stop) - 1
+        ta = show_token(tokens[a]) if a < len(tokens) else "?"
+        if a == b:
+            out.append(f"#{a} {ta}")
+        else:
+            tb = show_token(tokens[b]) if b < len(tokens) else "?"
+            out.append(f"#{a}\u2013{b} {ta} \u2026 {tb}")
+    return out
+
+
+def top_keys(w: np.ndarray, tokens: list[str], k: int = 8) -> list[dict]:
+    """Keys with the highest mean weight received per query (mean over all queries of the text)."""
+    w = np.asarray(w, dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        col = np.nanmean(w, axis=0)
+    col = np.where(np.isfinite(col), col, -np.inf)
+    order = np.argsort(-col, kind="stable")[:k]
+    return [{"slot": int(j), "token": tokens[j] if j < len(tokens) else "?", "weight": float(col[j])}
+            for j in order if np.isfinite(col[j])]
+
+
+def spark_codes(values: np.ndarray, n_points: int) -> tuple[np.ndarray, np.ndarray]:
+    """Downsample profiles (n_heads, nb) to ``n_points`` by averaging groups of buckets and quantise each row
+    to uint8 (0..254, min..max of that row; 255 = missing). Returns (codes (n_heads, n_points), index groups)."""
+    values = np.asarray(values, dtype=np.float64)
+    n, nb = values.shape
+    m = min(nb, n_points)
+    groups = np.array_split(np.arange(nb), m) if m else []
+    if m == 0:
+        return np.zeros((n, 0), np.uint8), np.zeros(0)
+    with np.errstate(invalid="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        g = np.stack([np.nanmean(values[:, idx], axis=1) for idx in groups], axis=1)
+        lo = np.nanmin(g, axis=1, keepdims=True)
+        hi = np.nanmax(g, axis=1, keepdims=True)
+    span = np.where((hi - lo) > 0, hi - lo, 1.0)
+    codes = np.where(np.isfinite(g), np.round((g - lo) / span * 254), 255)
+    codes = np.where(np.isfinite(codes), codes, 255).astype(np.uint8)
+    return codes, np.array([int(idx[0]) for idx in groups])

@@ -1,0 +1,258 @@
+"""From a :class:`~attnpos.result.Scan` (and a findings store) to what the views draw.
+
+One function per view; the widgets send the results to the browser (numbers as binary buffers) and the
+static renderings turn the same results into HTML/SVG, so the two never disagree.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ._common import (ROLES, clean, finite, head_key, layer_key, map_view, block_labels, num, parse_key,
+                      role_index, spark_codes, tags_of, text_of, top_keys)
+
+# Numbers per head that the atlas sends (float32, NaN = missing) and shows on hover.
+ATLAS_FIELDS = [
+    "share_distance", "share_distance_lo", "share_distance_hi",
+    "share_slot", "share_slot_lo", "share_slot_hi",
+    "share_content", "share_content_lo", "share_content_hi",
+    "share_residual", "share_residual_lo", "share_residual_hi",
+    "slope", "slope_lo", "slope_hi", "entropy_ratio",
+    "mass_previous", "mass_next", "mass_first", "mass_self",
+    "anchor_slot", "anchor_weight", "induction", "shift_offset", "shift_change",
+]
+SPARK_POINTS = 24
+STATUS_ORDER = ("open", "supported", "ruled-out")
+
+
+def atlas_layout(n_cols: int) -> dict:
+    """Cell geometry shared by the widget (JS) and the static SVG."""
+    if n_cols <= 12:
+        cw, ch, label = 66, 44, "short"
+    elif n_cols <= 16:
+        cw, ch, label = 54, 42, "short"
+    elif n_cols <= 32:
+        cw, ch, label = 34, 32, "code"
+    else:
+        cw, ch, label = 26, 26, "code"
+    return {"cw": cw, "ch": ch, "gap": 2, "left": 74, "top": 20, "label": label}
+
+
+def _str_col(t: pd.DataFrame, c: str) -> list[str]:
+    if c not in t.columns:
+        return [""] * len(t)
+    return [text_of(v) for v in t[c].tolist()]
+
+
+def scan_rows(scan) -> list[dict]:
+    """Grid rows of the atlas: one per (stack, layer), in the order of the head table."""
+    t = scan.heads
+    seen, rows = set(), []
+    for s, L in zip(t["stack"].tolist(), t["layer"].tolist()):
+        k = (s, int(L))
+        if k not in seen:
+            seen.add(k)
+            rows.append({"stack": s if s else "main", "layer": int(L), "key": layer_key(s, int(L)),
+                         "label": (f"{s[:3]}·L{int(L)}" if s not in (None, "", "main") else f"L{int(L)}")})
+    return rows
+
+
+def atlas_data(scan, spark_points: int | None = None) -> dict:
+    """Everything the atlas draws, with numbers as numpy arrays (the widget turns them into bytes).
+
+    The sparkline keeps about one point per two pixels of cell width (at most ``SPARK_POINTS``)."""
+    t = scan.heads.reset_index(drop=True)
+    n = len(t)
+    rows = scan_rows(scan)
+    row_of = {(r["stack"], r["layer"]): i for i, r in enumerate(rows)}
+    heads = t["head"].astype(int).to_numpy() if n else np.zeros(0, int)
+    n_cols = int(heads.max()) + 1 if n else 0
+    layout = atlas_layout(n_cols)
+    if spark_points is None:
+        spark_points = int(min(SPARK_POINTS, max(8, (layout["cw"] - 6) // 2)))
+    cell = np.array([row_of[(s if s else "main", int(L))] * n_cols + int(h)
+                     for s, L, h in zip(t["stack"], t["layer"], t["head"])], dtype=np.int32)
+    roles = np.array([role_index(r) for r in t["role"].tolist()], dtype=np.uint8)
+    numbers = np.full((n, len(ATLAS_FIELDS)), np.nan, dtype=np.float32)
+    for k, c in enumerate(ATLAS_FIELDS):
+        if c in t.columns:
+            numbers[:, k] = pd.to_numeric(t[c], errors="coerce").to_numpy(dtype=np.float64)
+    prof = scan.profile or {}
+    if "value" in prof and np.asarray(prof["value"]).shape[0] == n:
+        spark, groups = spark_codes(np.asarray(prof["value"], dtype=float), spark_points)
+        dist = np.asarray(prof["distance"], dtype=float)
+        spark_d = dist[groups] if len(groups) else np.zeros(0)
+    else:
+        spark, spark_d = np.zeros((n, 0), np.uint8), np.zeros(0)
+    keys = [head_key(s, L, h) for s, L, h in zip(t["stack"], t["layer"], t["head"])]
+    return {"rows": rows, "n_cols": n_cols, "cells": cell, "roles": roles, "numbers": numbers,
+            "fields": list(ATLAS_FIELDS), "spark": spark, "spark_distance": spark_d.astype(np.float32),
+            "evidence": _str_col(t, "evidence"), "tags": [", ".join(tags_of(v)) for v in t["tags"].tolist()],
+            "verdicts": _str_col(t, "shift_verdict"), "keys": keys,
+            "layout": layout}
+
+
+def model_facts(scan) -> list[tuple[str, str]]:
+    m = scan.model or {}
+    scheme = m.get("scheme")
+    if isinstance(scheme, (list, tuple)):
+        scheme = ", ".join(str(s) for s in scheme)
+    facts = [("model", m.get("name") or m.get("path")), ("architecture", m.get("architecture")),
+             ("position scheme", scheme), ("layers × heads", f"{m.get('layers', '—')} × {m.get('heads', '—')}"),
+             ("causal", m.get("causal")), ("context limit", m.get("context_limit")),
+             ("training length", m.get("training_length")), ("capture", m.get("capture")),
+             ("score kind", m.get("score_kind")), ("fingerprint", m.get("fingerprint")),
+             ("texts", len(scan.texts)), ("texts hash", scan.texts_hash)]
+    return [(k, "—" if v is None or v == "" else str(v)) for k, v in facts]
+
+
+# ------------------------------------------------------------------ card
+def head_index(scan, key: str) -> int:
+    stack, layer, head = parse_key(key)
+    t = scan.heads.reset_index(drop=True)
+    sel = (t["layer"] == layer) & (t["head"] == head) & (t["stack"].fillna("main").replace("", "main") == stack)
+    idx = np.flatnonzero(sel.to_numpy())
+    if len(idx) == 0:
+        raise KeyError(f"no head {key} in this scan")
+    return int(idx[0])
+
+
+def texts_with_map(scan, key: str) -> list[int]:
+    stack, layer, head = parse_key(key)
+    return [i for i in range(len(scan.texts)) if scan.weight_map(i, layer, head, stack) is not None]
+
+
+def head_info(scan, key: str) -> dict:
+    """The head table row of one head as JSON-safe numbers (None = missing) plus its profile arrays."""
+    i = head_index(scan, key)
+    r = scan.heads.reset_index(drop=True).iloc[i]
+    info: dict[str, Any] = {"key": key, "stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
+                            "role": r["role"] if isinstance(r["role"], str) else None,
+                            "tags": tags_of(r["tags"]), "evidence": text_of(r["evidence"]),
+                            "shift_kind": text_of(r.get("shift_kind")), "shift_verdict": text_of(r.get("shift_verdict"))}
+    for c in ATLAS_FIELDS:
+        info[c] = clean(num(r.get(c)))
+    prof = scan.profile or {}
+    out = {"info": info, "distance": np.zeros(0), "value": np.zeros(0), "low": np.zeros(0), "high": np.zeros(0)}
+    if "value" in prof and np.asarray(prof["value"]).shape[0] > i:
+        out["distance"] = np.asarray(prof["distance"], dtype=np.float64)
+        for k in ("value", "low", "high"):
+            if k in prof:
+                out[k] = np.asarray(prof[k], dtype=np.float64)[i]
+            else:
+                out[k] = np.full(len(out["distance"]), np.nan)
+    # the slope line: best linear fit in δ with the reported slope, intercept by least squares on the profile
+    d, v = out["distance"], out["value"]
+    ok = np.isfinite(v) & np.isfinite(d) if len(v) else np.zeros(0, bool)
+    slope = info.get("slope")
+    info["intercept"] = float(np.mean(v[ok]) - slope * np.mean(d[ok])) if (ok.any() and slope is not None) else None
+    return out
+
+
+def map_payload(scan, key: str, text: int, window=None, max_side: int = 256) -> dict | None:
+    stack, layer, head = parse_key(key)
+    if text is None or text < 0 or text >= len(scan.texts):
+        return None
+    w = scan.weight_map(text, layer, head, stack)
+    if w is None:
+        return None
+    mv = map_view(w, window, max_side)
+    toks = scan.tokens[text] if text < len(scan.tokens) else []
+    mv["row_labels"] = block_labels(toks, mv["q0"], mv["q1"], mv["step_q"])
+    mv["col_labels"] = block_labels(toks, mv["k0"], mv["k1"], mv["step_k"])
+    mv["top_keys"] = top_keys(w, toks)
+    return mv
+
+
+# ------------------------------------------------------------------ curves
+def curves_data(scan) -> dict:
+    ex = scan.extra or {}
+    out: dict[str, Any] = {"probe": None, "length": None}
+    pr = ex.get("probe") or {}
+    layers = pr.get("layers") if isinstance(pr, dict) else None
+    if layers:
+        rows = sorted((e for e in layers if isinstance(e, dict) and "layer" in e), key=lambda e: e["layer"])
+        if rows:
+            out["probe"] = {k: np.array([num(e.get(k)) for e in rows], dtype=np.float64)
+                            for k in ("layer", "r2", "r2_log", "control_r2", "selectivity", "mae", "untrained_r2")}
+    ln = ex.get("length") or {}
+    if isinstance(ln, dict) and ln.get("position") is not None and ln.get("loss") is not None:
+        pos = np.asarray([num(v) for v in ln["position"]], dtype=np.float64)
+        res = {"position": pos, "training_length": ln.get("training_length")}
+        for k in ("loss", "loss_lo", "loss_hi", "entropy", "entropy_lo", "entropy_hi"):
+            if ln.get(k) is not None and len(ln[k]) == len(pos):
+                res[k] = np.asarray([num(v) for v in ln[k]], dtype=np.float64)
+        out["length"] = res
+    return out
+
+
+# ------------------------------------------------------------------ findings
+def open_store(findings: Any):
+    """A findings store from a store object, a path, or None."""
+    if findings is None:
+        return None
+    if isinstance(findings, (str, Path)):
+        from ..findings import Findings  # a later stage; imported only when asked for
+        return Findings(findings)
+    return findings
+
+
+def finding_rows(store, scan=None) -> list[dict]:
+    """All findings as JSON-safe dicts with a ``stale`` flag (against the scan's fingerprint and texts hash)."""
+    if store is None:
+        return []
+    if scan is not None:
+        fp = (scan.model or {}).get("fingerprint")
+        pairs = store.check(fp, scan.texts_hash)
+    else:
+        pairs = [(f, False) for f in store.all()]
+    rows = []
+    for f, stale in pairs:
+        rows.append({"id": str(f.id), "target": str(f.target), "status": str(f.status),
+                     "body": "" if f.body is None else str(f.body), "stale": bool(stale),
+                     "created": text_of(getattr(f, "created", "")), "updated": text_of(getattr(f, "updated", "")),
+                     "author": text_of(getattr(f, "author", "")) or ""})
+    return rows
+
+
+def marks_from(rows: list[dict]) -> dict:
+    """Per target key: how many findings, their statuses and whether any is stale."""
+    marks: dict[str, dict] = {}
+    for r in rows:
+        m = marks.setdefault(r["target"], {"n": 0, "statuses": [], "stale": 0, "fresh": 0})
+        m["n"] += 1
+        if r["status"] not in m["statuses"]:
+            m["statuses"].append(r["status"])
+        if r["stale"]:
+            m["stale"] += 1
+        else:
+            m["fresh"] += 1
+    return marks
+
+
+def notable_heads(scan, per_role: int = 2, limit: int = 14) -> list[str]:
+    """A few strong heads per role for the report: the strongest by that role's own evidence number."""
+    t = scan.heads.reset_index(drop=True)
+    strength = {"previous-token": "mass_previous", "next-token": "mass_next", "local": "share_distance",
+                "anchor": "anchor_weight", "counting": "entropy_ratio", "content": "share_content",
+                "induction": "induction", "mixed": "share_residual"}
+    keys = []
+    for role in ROLES:
+        sub = t[t["role"] == role]
+        if sub.empty:
+            continue
+        col = strength[role]
+        score = pd.to_numeric(sub[col], errors="coerce").fillna(-np.inf) if col in sub else pd.Series(0, sub.index)
+        take = 1 if role == "mixed" else per_role
+        for i in score.sort_values(ascending=False, kind="stable").index[:take]:
+            r = t.loc[i]
+            keys.append(head_key(r["stack"], r["layer"], r["head"]))
+    return keys[:limit]
+
+
+def finite_or_none(x):
+    return float(x) if finite(x) else None

@@ -35,6 +35,7 @@ Example::
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from itertools import combinations
 
@@ -163,7 +164,7 @@ class Split:
         return shares, prof, slope
 
     def _fit_weights(self, res: dict, w: np.ndarray):
-        """Fit every site with text weights w (n_texts,)."""
+        """Fit every site with text weights w (n_texts,). Sites that share a mask pattern share one solve."""
         design: Design = res["design"]
         b, ssw, gk = res["b"], res["ssw"], res["gram_key"]
         grams, counts = res["grams"], res["dist_counts"]
@@ -171,18 +172,18 @@ class Split:
         shares = np.zeros((S, H, 4))
         prof = np.zeros((S, H, design.n_dist))
         slope = np.zeros((S, H))
-        cache: dict = {}
+        groups: dict = {}
         for si in range(S):
-            sig = tuple(gk[:, si])
-            if sig not in cache:
-                G = sum(w[t] * grams[gk[t, si]] for t in range(len(w)) if w[t])
-                dc = sum(w[t] * counts[gk[t, si]] for t in range(len(w)) if w[t])
-                cache[sig] = (G, dc)
-            G, dc = cache[sig]
-            B = np.tensordot(w, b[:, si], axes=(0, 0))      # (H, p)
-            ss = w @ ssw[:, si]                              # (H,)
+            groups.setdefault(tuple(gk[:, si]), []).append(si)
+        for sig, sites in groups.items():
+            G = sum(w[t] * grams[sig[t]] for t in range(len(w)) if w[t])
+            dc = sum(w[t] * counts[sig[t]] for t in range(len(w)) if w[t])
+            B = np.concatenate([np.tensordot(w, b[:, si], axes=(0, 0)) for si in sites])   # (len*H, p)
+            ss = np.concatenate([w @ ssw[:, si] for si in sites])
             sh, pr, sl = self._solve(design, G, B.T, ss, dc)
-            shares[si], prof[si], slope[si] = sh, pr, sl
+            for k, si in enumerate(sites):
+                part = slice(k * H, (k + 1) * H)
+                shares[si], prof[si], slope[si] = sh[part], pr[part], sl[part]
         return shares, prof, slope
 
     def fit(self, recording) -> SplitFit:
@@ -203,7 +204,8 @@ class Split:
                 bs["slope"].append(l_)
             for k, stack in bs.items():
                 arr = np.stack(stack)
-                with np.errstate(all="ignore"):
+                with np.errstate(all="ignore"), warnings.catch_warnings():
+                    warnings.simplefilter("ignore", RuntimeWarning)
                     out[f"{k}_lo"] = np.nanpercentile(arr, 5, axis=0) if np.isfinite(arr).any() else lo(arr[0])
                     out[f"{k}_hi"] = np.nanpercentile(arr, 95, axis=0) if np.isfinite(arr).any() else lo(arr[0])
         design: Design = res["design"]

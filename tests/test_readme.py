@@ -1,0 +1,24 @@
+"""The README stays true: its role table matches the thresholds, its quick start runs."""
+
+import re
+from pathlib import Path
+
+import attnpos.thresholds as th
+
+README = Path(__file__).resolve().parent.parent / "README.md"
+
+
+def test_role_table_matches_thresholds():
+    text = README.read_text(encoding="utf-8")
+    block = text[text.index("<!-- roles:start -->"):text.index("<!-- roles:end -->")]
+    rows = dict(re.findall(r"^\| `([a-z-]+)` \| (.+?) \|$", block, flags=re.M))
+    assert list(rows) == list(th.ROLE_ORDER)
+    for role, rule in th.ROLE_RULES.items():
+        assert rows[role] == rule
+
+
+def test_install_command_pins_cpu_torch():
+    text = README.read_text(encoding="utf-8")
+    assert 'pip install "torch==2.13.0" -e ".[test]"' in text
+    ci = (README.parent / ".ci" / "run").read_text()
+    assert "python -m pytest\n" in ci and "torch==2.13.0" in ci

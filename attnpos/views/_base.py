@@ -29,6 +29,12 @@ class StaticFallback:
     def _repr_html_(self) -> str:
         return self.to_html()
 
+    def snapshot(self):
+        """The static rendering as a plain HTML output (no widget): it stays visible when a notebook is
+        reopened in JupyterLab without a kernel, where a widget output shows only an error."""
+        from IPython.display import HTML
+        return HTML(self.to_html())
+
     def _repr_mimebundle_(self, **kwargs):
         bundle = super()._repr_mimebundle_(**kwargs)
         data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})

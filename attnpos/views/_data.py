@@ -61,6 +61,18 @@ def scan_rows(scan) -> list[dict]:
     return rows
 
 
+def profile_order(prof: dict) -> np.ndarray:
+    """Column order of the profile arrays for drawing: by distance ascending, leaving out distances that no
+    head has a value for (e.g. δ < 0 in a causal model)."""
+    dist = np.asarray(prof.get("distance", []), dtype=float)
+    if not len(dist):
+        return np.zeros(0, dtype=int)
+    vals = np.asarray(prof["value"], dtype=float) if "value" in prof else np.zeros((0, len(dist)))
+    keep = np.isfinite(dist) & (np.isfinite(vals).any(axis=0) if len(vals) else True)
+    order = np.argsort(dist, kind="stable")
+    return order[keep[order]]
+
+
 def atlas_data(scan, spark_points: int | None = None) -> dict:
     """Everything the atlas draws, with numbers as numpy arrays (the widget turns them into bytes).
 
@@ -83,8 +95,9 @@ def atlas_data(scan, spark_points: int | None = None) -> dict:
             numbers[:, k] = pd.to_numeric(t[c], errors="coerce").to_numpy(dtype=np.float64)
     prof = scan.profile or {}
     if "value" in prof and np.asarray(prof["value"]).shape[0] == n:
-        spark, groups = spark_codes(np.asarray(prof["value"], dtype=float), spark_points)
-        dist = np.asarray(prof["distance"], dtype=float)
+        order = profile_order(prof)
+        spark, groups = spark_codes(np.asarray(prof["value"], dtype=float)[:, order], spark_points)
+        dist = np.asarray(prof["distance"], dtype=float)[order]
         spark_d = dist[groups] if len(groups) else np.zeros(0)
     else:
         spark, spark_d = np.zeros((n, 0), np.uint8), np.zeros(0)
@@ -139,10 +152,11 @@ def head_info(scan, key: str) -> dict:
     prof = scan.profile or {}
     out = {"info": info, "distance": np.zeros(0), "value": np.zeros(0), "low": np.zeros(0), "high": np.zeros(0)}
     if "value" in prof and np.asarray(prof["value"]).shape[0] > i:
-        out["distance"] = np.asarray(prof["distance"], dtype=np.float64)
+        order = profile_order(prof)
+        out["distance"] = np.asarray(prof["distance"], dtype=np.float64)[order]
         for k in ("value", "low", "high"):
             if k in prof:
-                out[k] = np.asarray(prof[k], dtype=np.float64)[i]
+                out[k] = np.asarray(prof[k], dtype=np.float64)[i][order]
             else:
                 out[k] = np.full(len(out["distance"]), np.nan)
     # the slope line: best linear fit in δ with the reported slope, intercept by least squares on the profile

@@ -101,8 +101,8 @@ function atlasRender({ model, el }) {
       if (!m) return;
       const cw = data.grid.layout.cw, tx = cw - 1;
       const p = m.fresh
-        ? apSvg("path", { d: `M${tx - 9},1 L${tx},1 L${tx},10 Z`, fill: AP_INK, class: "ap-mark" })
-        : apSvg("path", { d: `M${tx - 9},1.5 L${tx - 0.5},1.5 L${tx - 0.5},10 Z`, fill: "#FBFAF7", stroke: AP_INK,
+        ? apSvg("path", { d: `M${tx - 11},1 L${tx},1 L${tx},12 Z`, fill: AP_INK, class: "ap-mark" })
+        : apSvg("path", { d: `M${tx - 11},1.5 L${tx - 0.5},1.5 L${tx - 0.5},12 Z`, fill: "#FBFAF7", stroke: AP_INK,
                           "stroke-dasharray": "2,1.5", class: "ap-mark ap-mark-stale" });
       g.appendChild(p);
     });

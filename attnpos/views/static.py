@@ -137,9 +137,9 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
         if m:
             tx = cw - 1
             if m.get("fresh"):
-                parts.append(f'<path class="apx-mark" d="M{tx - 9},1 L{tx},1 L{tx},10 Z" fill="{INK}"/>')
+                parts.append(f'<path class="apx-mark" d="M{tx - 11},1 L{tx},1 L{tx},12 Z" fill="{INK}"/>')
             else:
-                parts.append(f'<path class="apx-mark apx-mark-stale" d="M{tx - 9},1.5 L{tx - 0.5},1.5 L{tx - 0.5},10 Z" '
+                parts.append(f'<path class="apx-mark apx-mark-stale" d="M{tx - 11},1.5 L{tx - 0.5},1.5 L{tx - 0.5},12 Z" '
                              f'fill="#FBFAF7" stroke="{INK}" stroke-dasharray="2,1.5"/>')
         parts.append("</g>")
         g = "".join(parts)

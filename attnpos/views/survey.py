@@ -82,6 +82,11 @@ class Survey(ipywidgets.VBox):
     def _repr_html_(self) -> str:
         return self.to_html()
 
+    def snapshot(self):
+        """The static rendering as a plain HTML output (stays visible in a reopened notebook without kernel)."""
+        from IPython.display import HTML
+        return HTML(self.to_html())
+
     def _repr_mimebundle_(self, **kwargs):
         data = super()._repr_mimebundle_(**kwargs)
         data, meta = data if isinstance(data, tuple) else (data, {})

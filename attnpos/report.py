@@ -1,0 +1,158 @@
+"""The standalone report: one self-contained HTML file (inline CSS and SVG, images as data URIs, no script,
+no network) with the atlas, cards of notable heads, the curves, the findings, the caution, and the facts,
+versions and fingerprint of what was scanned.
+
+Example::
+
+    >>> import attnpos                                            # doctest: +SKIP
+    >>> from attnpos.report import write_report                   # doctest: +SKIP
+    >>> scan = attnpos.scan("ref:rope")                           # doctest: +SKIP
+    >>> write_report(scan, "rope-report.html", findings="attnpos-findings.json")   # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import os
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any
+
+from .views import _data, static
+from .views._common import esc, esc_plain, fmt, head_key
+
+REPORT_CSS = """
+body{margin:0;background:#F3F1EC;color:#1B1F24;font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif}
+main{max-width:1500px;margin:0 auto;padding:18px 22px 40px}
+header.rp-head h1{font-size:20px;margin:0 0 2px;font-weight:700}
+header.rp-head p{margin:0;color:#5A5F66;font-size:13px}
+section{margin-top:18px}
+section>h2{font-size:15px;margin:0 0 8px;font-weight:700;border-bottom:2px solid #E3DED4;padding-bottom:3px}
+.rp-caution{padding:8px 12px;border-left:5px solid #B8613F;background:#F6EFE6;font-size:13px;margin-top:12px}
+.rp-facts{display:flex;flex-wrap:wrap;gap:18px;align-items:flex-start}
+.rp-facts table{border-collapse:collapse;font-size:12.5px;background:#FBFAF7;border:1px solid #E3DED4}
+.rp-facts td,.rp-facts th{padding:3px 10px;text-align:left;border-bottom:1px solid #EFEBE3;vertical-align:top}
+.rp-facts th{color:#5A5F66;font-weight:600}
+.rp-cards .apx{margin-bottom:12px}
+details.rp-table{font-size:12px}
+details.rp-table table{border-collapse:collapse;background:#FBFAF7}
+details.rp-table td,details.rp-table th{padding:2px 8px;border-bottom:1px solid #EFEBE3;text-align:right}
+details.rp-table td.l,details.rp-table th.l{text-align:left}
+footer{margin-top:24px;color:#77706A;font-size:12px}
+"""
+
+# No script may run and nothing may be fetched: the report only needs inline styles and data: images.
+CSP = "default-src 'none'; img-src data:; style-src 'unsafe-inline'; base-uri 'none'; form-action 'none'"
+
+TABLE_COLUMNS = ["role", "share_distance", "share_slot", "share_content", "share_residual", "slope",
+                 "entropy_ratio", "mass_previous", "mass_first", "induction", "shift_verdict"]
+
+
+def _facts_table(rows: list[tuple[str, Any]], caption: str) -> str:
+    body = "".join(f"<tr><th>{esc_plain(k)}</th><td>{esc_plain(v)}</td></tr>" for k, v in rows)
+    return f"<table><caption style='text-align:left;font-weight:600;padding:4px 0'>{esc_plain(caption)}</caption>{body}</table>"
+
+
+def _texts_table(scan) -> str:
+    rows = []
+    for i, t in enumerate(scan.texts):
+        win = t.get("window")
+        rows.append(f"<tr><td>{i}</td><td>{esc(t.get('name', ''))}</td><td>{esc(t.get('source', ''))}</td>"
+                    f"<td>{esc_plain(t.get('n_tokens', len(scan.tokens[i]) if i < len(scan.tokens) else '—'))}</td>"
+                    f"<td>{esc_plain(win) if win else '—'}</td></tr>")
+    return ("<table><caption style='text-align:left;font-weight:600;padding:4px 0'>texts</caption>"
+            "<tr><th>#</th><th>name</th><th>source</th><th>tokens</th><th>window</th></tr>" + "".join(rows) + "</table>")
+
+
+def _head_table(scan) -> str:
+    t = scan.heads.reset_index(drop=True)
+    head = "<tr><th class='l'>head</th>" + "".join(
+        f"<th class='{'l' if c in ('role', 'shift_verdict') else ''}'>{esc_plain(c)}</th>" for c in TABLE_COLUMNS) + "</tr>"
+    rows = []
+    for _, r in t.iterrows():
+        cells = []
+        for c in TABLE_COLUMNS:
+            v = r.get(c)
+            if c in ("role", "shift_verdict"):
+                cells.append(f"<td class='l'>{esc_plain(v if isinstance(v, str) else '—')}</td>")
+            else:
+                cells.append(f"<td>{fmt(v, 3)}</td>")
+        rows.append(f"<tr><td class='l'>{esc_plain(head_key(r['stack'], r['layer'], r['head']))}</td>{''.join(cells)}</tr>")
+    return (f"<details class='rp-table'><summary>The full head table ({len(t)} heads)</summary>"
+            f"<table>{head}{''.join(rows)}</table></details>")
+
+
+def report_html(scan, findings=None, title: str | None = None, per_role: int = 2, max_cards: int = 14) -> str:
+    """The report as one HTML string (see :func:`write_report`)."""
+    store = _data.open_store(findings)
+    rows = _data.finding_rows(store, scan) if store is not None else []
+    marks = _data.marks_from(rows)
+    m = scan.model or {}
+    name = m.get("name") or m.get("path") or "model"
+    title = title or f"attnpos report — {name}"
+    keys = _data.notable_heads(scan, per_role=per_role, limit=max_cards)
+    # findings' heads get a card too (after the notable ones), so a reader can see what a note is about
+    for r in rows:
+        try:
+            if r["target"].count(".H") == 1 and r["target"] not in keys and len(keys) < max_cards + 6:
+                _data.head_index(scan, r["target"])
+                keys.append(r["target"])
+        except (KeyError, ValueError):
+            pass
+    cards = "".join(static.card_html(scan, k, findings=rows, with_style=False, anchor=True) for k in keys)
+    versions = [(k, v) for k, v in (scan.versions or {}).items()]
+    generated = datetime.now(timezone.utc).replace(microsecond=0).isoformat()
+    counts = scan.heads["role"].value_counts().to_dict() if len(scan.heads) else {}
+    summary = ", ".join(f"{n} {r}" for r, n in sorted(counts.items(), key=lambda kv: -kv[1]))
+    parts = [
+        "<!doctype html>\n<html lang='en'><head><meta charset='utf-8'>",
+        f"<meta http-equiv='Content-Security-Policy' content=\"{CSP}\">",
+        "<meta name='viewport' content='width=device-width, initial-scale=1'>",
+        f"<meta name='generator' content='attnpos {esc_plain((scan.versions or {}).get('attnpos', ''))}'>",
+        f"<title>{esc_plain(title)}</title><style>{static.STYLE}{REPORT_CSS}</style></head><body><main>",
+        f"<header class='rp-head'><h1>{esc_plain(title)}</h1><p>{len(scan.heads)} heads · {esc_plain(summary)} · "
+        f"generated {esc_plain(generated)}</p></header>",
+        f"<div class='rp-caution'><b>Caution.</b> {esc_plain(scan.caution)}</div>",
+        "<section id='facts'><h2>What was scanned</h2><div class='rp-facts'>",
+        _facts_table(_data.model_facts(scan), "model"),
+        _facts_table(versions or [("versions", "—")], "versions"),
+        _texts_table(scan),
+        "</div></section>",
+        "<section id='atlas'><h2>Atlas</h2>",
+        static.atlas_html(scan, marks, link_cards=set(keys), with_style=False),
+        "</section>",
+        f"<section id='cards' class='rp-cards'><h2>Notable heads ({len(keys)}: the strongest few per role, "
+        "and heads with findings)</h2>",
+        cards or "<p class='apx-none'>No heads.</p>",
+        "</section>",
+        "<section id='curves'><h2>Curves</h2>", static.curves_html(scan, with_style=False), "</section>",
+        "<section id='findings'><h2>Findings</h2>",
+        static.findings_table_html(rows, str(getattr(store, "path", "")) or None, with_style=False,
+                                   caution=scan.caution),
+        "</section>",
+        "<section id='table'><h2>Head table</h2>", _head_table(scan), "</section>",
+        f"<footer>Written by attnpos {esc_plain((scan.versions or {}).get('attnpos', ''))} · model fingerprint "
+        f"{esc_plain(m.get('fingerprint') or '—')} · texts hash {esc_plain(scan.texts_hash or '—')}. This file is "
+        "self-contained: it loads nothing and runs no script.</footer>",
+        "</main></body></html>\n",
+    ]
+    return "".join(parts)
+
+
+def write_report(scan, path: str | os.PathLike, findings=None, title: str | None = None) -> Path:
+    """Write the standalone HTML report of ``scan`` to ``path`` and return the path.
+
+    Args:
+        scan: a :class:`attnpos.Scan`.
+        path: the ``.html`` file to write (its folder must exist).
+        findings: a findings store, the path of its JSON file, or None for no findings section content.
+        title: the page title (default ``attnpos report — <model name>``).
+    """
+    path = Path(path)
+    html = report_html(scan, findings=findings, title=title)
+    tmp = path.with_name(f".{path.name}.tmp")
+    tmp.write_text(html, encoding="utf-8")
+    os.replace(tmp, path)
+    return path
+
+
+__all__ = ["write_report", "report_html"]

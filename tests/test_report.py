@@ -1,0 +1,125 @@
+"""The standalone HTML report: one self-contained file with the atlas, notable cards, findings, caution, facts."""
+
+from __future__ import annotations
+
+import re
+from html.parser import HTMLParser
+
+import numpy as np
+import pytest
+
+from attnpos.report import report_html, write_report
+from attnpos.result import CAUTION, Scan
+from attnpos.views._common import ROLE_CODE, ROLE_SHORT
+from attnpos.views._synthetic import synthetic_scan
+
+
+class _Doc(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.tags: list[tuple[str, dict]] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def parse(html: str) -> _Doc:
+    d = _Doc()
+    d.feed(html)
+    return d
+
+
+def test_report_is_one_self_contained_file(tmp_path):
+    scan = synthetic_scan(4, 4, seed=1)
+    out = write_report(scan, tmp_path / "r.html")
+    assert out == tmp_path / "r.html" and out.is_file()
+    html = out.read_text(encoding="utf-8")
+    doc = parse(html)
+    tags = [t for t, _ in doc.tags]
+    assert "script" not in tags and "link" not in tags and "iframe" not in tags
+    for t, a in doc.tags:
+        for k in ("src", "href"):
+            v = a.get(k)
+            if v is not None:
+                assert v.startswith(("data:", "#")), (t, k, v[:60])
+    # the only URLs are XML namespace names, which are never fetched
+    urls = set(re.findall(r"https?://[^\s\"'<>]+", html))
+    assert urls <= {"http://www.w3.org/2000/svg"}, urls
+    csp = [a for t, a in doc.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
+    assert csp and "default-src 'none'" in csp[0]["content"]
+
+
+def test_report_holds_atlas_cards_facts_and_caution(tmp_path):
+    scan = synthetic_scan(4, 4, seed=2)
+    html = write_report(scan, tmp_path / "r.html").read_text(encoding="utf-8")
+    doc = parse(html)
+    cells = [a for t, a in doc.tags if t == "g" and "apx-cell" in a.get("class", "")]
+    assert len(cells) == len(scan.heads)
+    for role in set(scan.heads["role"]):
+        assert f">{ROLE_SHORT[role]}</text>" in html and role in html
+    cards = [a["id"] for t, a in doc.tags if a.get("id", "").startswith("card-")]
+    roles_present = set(scan.heads["role"])
+    assert len(roles_present) <= len(cards) <= 2 * len(roles_present)
+    # atlas cells of carded heads link to their card
+    links = {a["href"] for t, a in doc.tags if t == "a"}
+    assert {"#" + c for c in cards} <= links
+    text = " ".join(doc.text)
+    assert CAUTION[:60] in text
+    assert scan.model["fingerprint"] in text and scan.texts_hash in text
+    for k, v in scan.versions.items():
+        assert k in text and v in text
+    assert "Probe for absolute position" in text and "training length 64" in text
+
+
+def test_report_escapes_hostile_tokens_and_text_names(tmp_path):
+    scan = synthetic_scan(3, 3, seed=3, hostile=True)
+    html = write_report(scan, tmp_path / "r.html").read_text(encoding="utf-8")
+    doc = parse(html)
+    assert not [a for t, a in doc.tags if t == "img" and a.get("src") == "x"]
+    assert not [a for _, a in doc.tags if any(k.startswith("on") for k in a)]
+    assert "<script>" not in html
+    text = "".join(doc.text)
+    assert "<script>alert(1)</script>" in text                # shown as text
+    assert "\"><img src=x onerror=alert(1)>" in text
+    assert "text-0<b>" in text
+    assert not any(ch in html for ch in "\x00\x1b\x07\u202e")
+
+
+findings_mod = pytest.importorskip("attnpos.findings")
+
+
+def test_report_lists_findings_with_stale_ones_marked(tmp_path):
+    scan = synthetic_scan(3, 3, seed=4)
+    store = findings_mod.Findings(tmp_path / "notes.json")
+    store.add("L2.H1", "fresh note <b>bold?</b>", status="supported", fingerprint=scan.model["fingerprint"],
+              texts_hash=scan.texts_hash)
+    store.add("L0", "from another checkpoint", fingerprint="deadbeef")
+    html = write_report(scan, tmp_path / "r.html", findings=tmp_path / "notes.json").read_text(encoding="utf-8")
+    doc = parse(html)
+    text = " ".join(doc.text)
+    assert "fresh note <b>bold?</b>" in text           # the body is text, not markup
+    assert "from another checkpoint" in text and "stale" in text
+    assert "supported" in text
+    # the head with a finding gets a card and a mark in the atlas
+    assert any(a.get("id") == "card-L2-H1" for _, a in doc.tags)
+    assert 'class="apx-mark"' in html
+    assert "L0 ◆" in text                                      # the layer's finding marks its row
+
+
+def test_report_survives_missing_numbers_and_a_bare_scan(tmp_path):
+    scan = synthetic_scan(2, 2, seed=5, extra=False, keep_maps=0)
+    scan.heads.loc[:, ["slope", "share_distance", "induction"]] = np.nan
+    scan.profile = {}
+    html = report_html(scan)
+    text = "".join(parse(html).text)
+    assert "—" in text and not re.search(r"\bnan\b", text, re.I)
+    assert "Probe: not measured" in text and "Length: not measured" in text
+    assert "No weight map was kept" in text
+    # a scan reloaded from its JSON (no kept maps) still writes
+    again = Scan.from_json(synthetic_scan(2, 2, seed=6).to_json())
+    out = write_report(again, tmp_path / "again.html")
+    assert "apx-atlas" in out.read_text(encoding="utf-8")

@@ -118,7 +118,10 @@ class _Run:
         n = scores.shape[0]
         if not torch.isfinite(weights).all():
             self.nonfinite.add((site.stack, site.layer))
-        cap = LayerCapture(site=site, text=self.text, unit=self.units[self.text], head0=head0, n_heads=n,
+        unit = self.units[self.text]
+        if site.stack == "decoder":
+            unit = _decoder_view(self.subject, unit)
+        cap = LayerCapture(site=site, text=self.text, unit=unit, head0=head0, n_heads=n,
                            scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
                            offset=self.offset)
         for r in self.reducers:
@@ -133,6 +136,19 @@ class _Run:
 
 
 _ACTIVE: list[_Run] = []
+
+
+def _decoder_start(subject) -> int:
+    start = getattr(subject.model.config, "decoder_start_token_id", None)
+    return 0 if start is None else int(start)
+
+
+def _decoder_view(subject, unit: TextUnit) -> TextUnit:
+    """The decoder of an encoder-decoder model reads the text shifted right behind its start token."""
+    start = _decoder_start(subject)
+    special = np.concatenate([[True], unit.special[:-1]])
+    return TextUnit(name=unit.name, source=unit.source, ids=[start] + list(unit.ids[:-1]),
+                    tokens=["<start>"] + list(unit.tokens[:-1]), special=special, window=unit.window)
 
 
 def _allowed_from_mask(attention_mask, q_len: int, k_len: int, causal: bool) -> torch.Tensor:
@@ -281,9 +297,7 @@ def _forward(subject: Subject, ids: list[int], *, offset: int, want_weights: boo
     x = torch.tensor([ids], dtype=torch.long)
     kw: dict[str, Any] = {"input_ids": x, "attention_mask": torch.ones_like(x)}
     if subject.is_encoder_decoder:
-        start = getattr(model.config, "decoder_start_token_id", None)
-        start = 0 if start is None else start
-        kw["decoder_input_ids"] = torch.tensor([[start] + ids[:-1]], dtype=torch.long)
+        kw["decoder_input_ids"] = torch.tensor([[_decoder_start(subject)] + ids[:-1]], dtype=torch.long)
     else:
         kw["use_cache"] = False
     if offset:

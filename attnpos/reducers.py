@@ -270,11 +270,12 @@ class SplitStats(Reducer):
         self._fj: dict[int, torch.Tensor] = {}
 
     def _features(self, cap: LayerCapture, T: int):
-        if cap.text not in self._fj:
-            self._fj = {cap.text: torch.from_numpy(self.design.key_features(cap.unit, T)).float()}
+        fk = (cap.text, cap.site.stack)
+        if fk not in self._fj:
+            self._fj = {fk: torch.from_numpy(self.design.key_features(cap.unit, T)).float()}
         if T not in self._fd:
             self._fd = {T: torch.from_numpy(self.design.delta_features(T)).float()}
-        return self._fd[T], self._fj[cap.text]
+        return self._fd[T], self._fj[fk]
 
     def update(self, cap: LayerCapture) -> None:
         if cap.offset:
@@ -300,7 +301,7 @@ class SplitStats(Reducer):
         if cap.head0 == 0:
             # mask pattern → Gram (cached; all layers of a plain causal/encoder model share one per text)
             a = A.numpy()
-            key = (cap.text, hash(np.packbits(a).tobytes()))
+            key = (cap.text, cap.site.stack, hash(np.packbits(a).tobytes()))
             if key not in self.grams:
                 self.grams[key] = gram_for(self.design, cap.unit, a)
             gi = list(self.grams).index(key)

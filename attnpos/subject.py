@@ -348,8 +348,8 @@ def _detect_schemes(model, sites) -> list[str | None]:
         return ["relative-bias"] * n
     table = _position_table(model)
     if table is not None:
-        pet = getattr(config, "position_embedding_type", "absolute")
-        if pet not in (None, "absolute"):
+        # older BERT-style "relative_key" variants add a distance embedding inside attention: not one of ours
+        if any(nm.endswith("distance_embedding") for nm, _ in model.named_modules()):
             return [None] * n
         return ["sinusoidal" if _is_sinusoidal(table) else "learned-absolute"] * n
     has_rotary = any("rotary" in nm.lower() for nm, _ in model.named_modules())

@@ -171,11 +171,18 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
                            "architectures transformers implements (or a folder with its own code and "
                            "trust_remote_code=True).") from None
     model_cls = _model_class(config)
+    from transformers.utils import logging as hf_logging
+
+    bars = hf_logging.is_progress_bar_enabled()
+    hf_logging.disable_progress_bar()   # a few-MB checkpoint does not need a loading bar in every notebook cell
     try:
         model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch.float32,
                                           use_safetensors=use_safetensors, trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001 - wrap with context
         raise AttnposError(f"Could not load the weights in {p}: {type(exc).__name__}: {exc}") from exc
+    finally:
+        if bars:
+            hf_logging.enable_progress_bar()
     model.eval()
     try:
         tokenizer = AutoTokenizer.from_pretrained(p, trust_remote_code=trust_remote_code)

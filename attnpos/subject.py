@@ -119,7 +119,9 @@ def _resolve(path_or_name: str | os.PathLike) -> tuple[Path, str]:
     if not (p / "config.json").exists():
         raise AttnposError(f"The folder {p} has no config.json, so it is not a transformers checkpoint. Point "
                            "attnpos at the folder that `save_pretrained` wrote (config.json + *.safetensors).")
-    return p, p.name
+    generic = {"model", "models", "checkpoint", "weights", "final", "hf"}
+    name = f"{p.parent.name}/{p.name}" if p.name.lower() in generic or p.name.startswith("checkpoint-") else p.name
+    return p, name
 
 
 def _check_weights(p: Path, allow_pickle: bool) -> bool:

@@ -28,12 +28,25 @@ COMMANDS = {
 HELP = "scan a model: per-head masses, score split, slope, shift test, induction, roles"
 
 
+def _count(minimum: int):
+    """An argparse type: a whole number of at least ``minimum`` (argparse turns the error into a usage message)."""
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"{value} is too small: give at least {minimum}")
+        return value
+    return parse
+
+
 def add_text_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--text", action="append", type=Path, default=None, metavar="PATH",
                    help="a .txt file (one text) or a folder (each .txt a text); repeatable; default: the bundled "
                         "sample texts")
     p.add_argument("--lines", action="store_true", help="make each non-empty line its own text")
-    p.add_argument("--max-tokens", type=int, default=None, metavar="N",
+    p.add_argument("--max-tokens", type=_count(1), default=None, metavar="N",
                    help="split texts into windows of at most N tokens (default: the model's context limit)")
 
 
@@ -69,14 +82,15 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     add_text_arguments(p)
     p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the scan as JSON (attnpos.scan/1)")
     p.add_argument("--html", type=Path, default=None, metavar="OUT", help="write a self-contained HTML report")
-    p.add_argument("--boot", type=int, default=100, metavar="N", help="bootstrap resamples for intervals (default 100)")
+    p.add_argument("--boot", type=_count(0), default=100, metavar="N", help="bootstrap resamples for intervals (default 100)")
     p.add_argument("--no-shift", action="store_true", help="skip the shift test")
     p.add_argument("--no-induction", action="store_true", help="skip the induction test")
     p.add_argument("--findings", type=Path, default=None, metavar="FILE",
                    help="findings file to include in the HTML report")
 
 
-def print_table(scan, out=sys.stdout) -> None:
+def print_table(scan, out=None) -> None:
+    out = out if out is not None else sys.stdout   # looked up at call time: stdout may be redirected
     m = scan.model
     scheme = m["scheme"] if isinstance(m["scheme"], str) else ",".join(m["scheme"])
     print(f"{m['name']}  {m['architecture']}  scheme={scheme}  layers={m['layers']} heads={m['heads']}  "

@@ -66,6 +66,9 @@ def default_texts() -> list[RawText]:
 
 def _decode(path: Path) -> str:
     data = path.read_bytes()
+    if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        raise AttnposError(f"{path} is UTF-16 text (it starts with a UTF-16 byte-order mark); attnpos reads UTF-8. "
+                           "Convert it, e.g. `iconv -f utf-16 -t utf-8 in.txt > out.txt`.")
     if b"\x00" in data[:8192]:
         raise AttnposError(f"{path} looks like a binary file (it contains NUL bytes), not text. Pass plain UTF-8 "
                            "text files (.txt).")
@@ -172,10 +175,19 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
     """Tokenise texts for a subject; split any longer than the limit into windows (with a notice)."""
     tok = subject.tokenizer
     limit = subject.context_limit
+    if max_tokens is not None and max_tokens < 1:
+        raise AttnposError(f"max_tokens (--max-tokens) must be at least 1, not {max_tokens}; leave it out to use the "
+                           "model's context limit.")
     if max_tokens is not None:
         limit = min(limit, max_tokens) if limit else max_tokens
     prefix, suffix = _template(tok)
     special_ids = set(getattr(tok, "all_special_ids", []) or [])
+    # the unknown token stands for a piece of the user's text (an emoji, a rare script), so it is an ordinary
+    # token, unless the tokenizer also uses that id as a structural token (GPT-2 style: unk = bos = eos)
+    unk = getattr(tok, "unk_token_id", None)
+    structural = {getattr(tok, f"{k}_token_id", None) for k in ("bos", "eos", "pad", "cls", "sep", "mask")}
+    if unk is not None and unk not in structural:
+        special_ids.discard(unk)
     units: list[TextUnit] = []
     for r in check(raw):
         body = list(tok(r.text, add_special_tokens=False)["input_ids"])

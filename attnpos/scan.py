@@ -55,8 +55,9 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
     subject = model if isinstance(model, Subject) else load(model, scheme=scheme, allow_pickle=allow_pickle,
                                                             trust_remote_code=trust_remote_code)
     units = prepare(subject, as_raw(texts), max_tokens=max_tokens)
-    if all(len(u) < 3 for u in units):
-        raise AttnposError("Every text is shorter than 3 tokens; attention statistics need longer texts.")
+    if all(int((~u.special).sum()) < 3 for u in units):
+        raise AttnposError("Every text is shorter than 3 tokens (not counting special tokens such as [CLS], [SEP] "
+                           "or BOS); attention statistics need longer texts. Pass at least one text of a few words.")
     kept = {i for i in range(min(keep_maps, len(units))) if len(units[i]) <= max_map_tokens}
     rec = record(subject, units=units, reducers=[WeightStats(), SplitStats()], keep=lambda k: k[0] in kept,
                  progress=progress)

@@ -193,7 +193,7 @@ class Split:
         lo = lambda a: np.full_like(a, np.nan)  # noqa: E731
         out = dict(shares_lo=lo(shares), shares_hi=lo(shares), profile_lo=lo(prof), profile_hi=lo(prof),
                    slope_lo=lo(slope), slope_hi=lo(slope))
-        if self.n_boot and n >= 2:
+        if self.n_boot > 0 and n >= 2:
             rng = np.random.default_rng(self.seed)
             bs = {"shares": [], "profile": [], "slope": []}
             for _ in range(self.n_boot):
@@ -210,4 +210,4 @@ class Split:
                     out[f"{k}_hi"] = np.nanpercentile(arr, 95, axis=0) if np.isfinite(arr).any() else lo(arr[0])
         design: Design = res["design"]
         return SplitFit(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
-                        n_texts=n, n_boot=self.n_boot if n >= 2 else 0, **out)
+                        n_texts=n, n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import contextlib
 import sys
+import warnings
 from dataclasses import dataclass, field
 from typing import Any, Iterable, Sequence
 
@@ -59,6 +60,11 @@ class LayerCapture:
     allowed: torch.Tensor
     score_kind: str
     offset: int = 0
+
+
+class CaptureNotice(UserWarning):
+    """The model was set to an attention implementation that exposes no scores (SDPA, flash); attnpos records
+    through its own eager-equivalent path instead and puts the implementation back afterwards."""
 
 
 class Reducer:
@@ -116,7 +122,9 @@ class _Run:
                 head0: int) -> None:
         self.seen.add(id(site.module))
         n = scores.shape[0]
-        if not torch.isfinite(weights).all():
+        # NaN anywhere, or ±inf on an allowed pair (the capture function turns NaN weights of such rows into 0, so
+        # the scores are what shows an overflow or a NaN weight)
+        if not torch.isfinite(weights).all() or not (torch.isfinite(scores) | ~allowed).all():
             self.nonfinite.add((site.stack, site.layer))
         unit = self.units[self.text]
         if site.stack == "decoder":
@@ -222,8 +230,9 @@ def _registry_path(subject: Subject):
 
     configs = _all_configs(subject.model)
     saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
-    had_fn = FUNCTION_NAME in AttentionInterface._global_mapping
-    had_mask = FUNCTION_NAME in AttentionMaskInterface._global_mapping
+    missing = object()
+    had_fn = AttentionInterface._global_mapping.get(FUNCTION_NAME, missing)
+    had_mask = AttentionMaskInterface._global_mapping.get(FUNCTION_NAME, missing)
     AttentionInterface.register(FUNCTION_NAME, _capture_attention)
     AttentionMaskInterface.register(FUNCTION_NAME, eager_mask)
     try:
@@ -233,10 +242,13 @@ def _registry_path(subject: Subject):
     finally:
         for c, v in saved:
             c._attn_implementation_internal = v
-        if not had_fn:
-            AttentionInterface._global_mapping.pop(FUNCTION_NAME, None)
-        if not had_mask:
-            AttentionMaskInterface._global_mapping.pop(FUNCTION_NAME, None)
+        # put back exactly what was there (an entry of the same name, e.g. from an enclosing run, is restored)
+        for mapping, prev in ((AttentionInterface._global_mapping, had_fn),
+                              (AttentionMaskInterface._global_mapping, had_mask)):
+            if prev is missing:
+                mapping.pop(FUNCTION_NAME, None)
+            else:
+                mapping[FUNCTION_NAME] = prev
 
 
 def _all_configs(model) -> list:
@@ -358,6 +370,14 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
     else:
         keep_fn = keep
     chosen = path or getattr(subject, "_capture_path", None) or "registry"
+    impl = getattr(subject.model.config, "_attn_implementation", None)
+    if impl not in (None, "eager", FUNCTION_NAME):
+        msg = (f"{subject.name} is set to the {impl!r} attention implementation, which exposes no scores or "
+               "weights; attnpos records through its own eager-equivalent attention for each run and puts "
+               f"{impl!r} back afterwards.")
+        if msg not in subject.notes:
+            subject.notes.append(msg)
+            warnings.warn(msg, CaptureNotice, stacklevel=2)
     kind = "scores" if chosen == "registry" else "log-weights"
     for r in reducers:
         r.begin(subject, units)

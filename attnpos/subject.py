@@ -157,7 +157,14 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     p, name = _resolve(path_or_name)
     from transformers import AutoConfig, AutoTokenizer
 
-    cfg_raw = json.loads((p / "config.json").read_text(encoding="utf-8"))
+    try:
+        cfg_raw = json.loads((p / "config.json").read_text(encoding="utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise AttnposError(f"{p}/config.json cannot be read as JSON ({exc}); the file is damaged or is not a "
+                           "transformers config. Re-save the checkpoint with `model.save_pretrained(folder)`.") from None
+    if not isinstance(cfg_raw, dict):
+        raise AttnposError(f"{p}/config.json holds a JSON {type(cfg_raw).__name__}, not the object a transformers "
+                           "config is. Re-save the checkpoint with `model.save_pretrained(folder)`.")
     if (cfg_raw.get("auto_map") or any(f.suffix == ".py" for f in p.iterdir())) and not trust_remote_code:
         raise AttnposError(f"The folder {p} ships its own modelling code (auto_map / *.py). attnpos never runs code "
                            "from a model folder unless you ask: pass trust_remote_code=True (CLI: "
@@ -179,9 +186,12 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     hf_logging.disable_progress_bar()   # a few-MB checkpoint does not need a loading bar in every notebook cell
     try:
         model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch.float32,
-                                          use_safetensors=use_safetensors, trust_remote_code=trust_remote_code)
+                                          use_safetensors=use_safetensors, weights_only=True,
+                                          trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001 - wrap with context
-        raise AttnposError(f"Could not load the weights in {p}: {type(exc).__name__}: {exc}") from exc
+        raise AttnposError(f"Could not load the weights in {p}: {type(exc).__name__}: {exc}. The weight files may be "
+                           "truncated, refused as unsafe, or saved for a different config; re-save the checkpoint "
+                           "with `model.save_pretrained(folder)`.") from exc
     finally:
         if bars:
             hf_logging.enable_progress_bar()
@@ -213,6 +223,16 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
     """Wrap a model already in memory (e.g. built from a config in a test) as a :class:`Subject`."""
     model.eval()
     config = model.config
+    devices = sorted({str(t.device) for t in list(model.parameters()) + list(model.buffers())} - {"cpu"})
+    if devices:
+        raise AttnposError(f"The model's weights are on {', '.join(devices)}; attnpos records on the CPU (float32). "
+                           "Move the model first with `model.to('cpu')`, or load it with attnpos.load(folder).")
+    bad = has_nonfinite_weights(model)
+    if bad:
+        raise AttnposError(f"The checkpoint holds NaN or infinite values in {len(bad)} parameter(s) "
+                           f"({', '.join(bad[:4])}{', …' if len(bad) > 4 else ''}), so its attention cannot be "
+                           "measured. Repair or re-export the checkpoint (a NaN often comes from a diverged "
+                           "training run or a failed conversion).")
     sites = _find_sites(model)
     if not sites:
         raise AttnposError(f"Found no self-attention modules in {type(model).__name__}. attnpos looks for "

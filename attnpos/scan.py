@@ -46,7 +46,8 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
         model: a :class:`~attnpos.subject.Subject`, a folder, or ``"ref:<scheme>"``.
         texts: strings, ``pathlib.Path`` files/folders, or None for the bundled sample texts.
         scheme: state the position scheme by hand (see :func:`attnpos.load`).
-        max_tokens: split texts into windows of at most this many tokens (default: the model's limit).
+        max_tokens: split texts into windows of at most this many tokens (default: the training length when the
+            model records it, else the model's context limit).
         n_boot: bootstrap resamples over texts for the intervals.
         shift / induction: run the shift test / the induction test.
         keep_maps: keep full weight maps (for the card view) of the first this-many texts, if they have at most
@@ -54,6 +55,10 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
     """
     subject = model if isinstance(model, Subject) else load(model, scheme=scheme, allow_pickle=allow_pickle,
                                                             trust_remote_code=trust_remote_code)
+    if max_tokens is None and subject.training_length:
+        # past the training length a model is in territory it never saw (that is `attnpos length`'s question);
+        # a scan describes the model where it was trained
+        max_tokens = subject.training_length
     units = prepare(subject, as_raw(texts), max_tokens=max_tokens)
     if all(int((~u.special).sum()) < 3 for u in units):
         raise AttnposError("Every text is shorter than 3 tokens (not counting special tokens such as [CLS], [SEP] "

@@ -176,7 +176,7 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         config = AutoConfig.from_pretrained(p, trust_remote_code=trust_remote_code)
     except (ValueError, KeyError) as exc:
         raise AttnposError(f"transformers does not know the architecture in {p}/config.json "
-                           f"(model_type={cfg_raw.get('model_type')!r}): {exc}. attnpos can only load "
+                           f"(model_type={cfg_raw.get('model_type')!r}): {_one_line(exc)}. attnpos can only load "
                            "architectures transformers implements (or a folder with its own code and "
                            "trust_remote_code=True).") from None
     model_cls = _model_class(config)
@@ -189,9 +189,14 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
                                           use_safetensors=use_safetensors, weights_only=True,
                                           trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001 - wrap with context
-        raise AttnposError(f"Could not load the weights in {p}: {type(exc).__name__}: {exc}. The weight files may be "
-                           "truncated, refused as unsafe, or saved for a different config; re-save the checkpoint "
-                           "with `model.save_pretrained(folder)`.") from exc
+        if "weights only load failed" in str(exc).lower():
+            raise AttnposError(f"Refused the pickle weights in {p}: they hold objects other than tensors (such a file "
+                               "can run code when loaded), and torch's weights_only loader would not read them. "
+                               "attnpos will not load them another way. Convert the checkpoint to safetensors in an "
+                               "environment you trust, or ask its author for safetensors weights.") from None
+        raise AttnposError(f"Could not load the weights in {p}: {type(exc).__name__}: {_one_line(exc)}. The weight "
+                           "files may be truncated or saved for a different config; re-save the checkpoint with "
+                           "`model.save_pretrained(folder)`.") from exc
     finally:
         if bars:
             hf_logging.enable_progress_bar()
@@ -199,11 +204,20 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     try:
         tokenizer = AutoTokenizer.from_pretrained(p, trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001
-        raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {exc}). Save the "
+        raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
     subj = from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length,
                       _fingerprint_files=None)
     return subj
+
+
+def _one_line(exc: BaseException, limit: int = 400) -> str:
+    """An exception's text as one short line (no terminal colour codes, no line breaks) for an error paragraph."""
+    import re
+
+    text = re.sub(r"\x1b\[[0-9;]*[A-Za-z]", "", str(exc))
+    text = " ".join(text.split())
+    return text if len(text) <= limit else text[: limit - 1] + "…"
 
 
 def _model_class(config):

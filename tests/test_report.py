@@ -10,7 +10,7 @@ import pytest
 
 from attnpos.report import report_html, write_report
 from attnpos.result import CAUTION, Scan
-from attnpos.views._common import ROLE_CODE, ROLE_SHORT
+from attnpos.views._common import ROLE_SHORT
 from attnpos.views._synthetic import synthetic_scan
 
 

@@ -143,8 +143,13 @@ def test_selecting_a_head_in_the_atlas_updates_the_card():
     assert sv.card.info["slope"] == pytest.approx(row["slope"])
     assert (sv.card.head, sv.card.info) != first[:2]
     want = scan.weight_map(sv.card.text, 2, 3)
-    got = sv.card.map_array().astype(float) / 254 * sv.card.map_meta["vmax"]
-    assert np.allclose(got, want, atol=sv.card.map_meta["vmax"] / 254)
+    vmax = sv.card.map_meta["vmax"]
+    got = sv.card.map_array().astype(float) / 254 * vmax
+    assert np.allclose(got, np.minimum(want, vmax), atol=vmax / 254)
+    # colour scale: the 99th percentile of positive weights (a causal map's first row, weight 1, would
+    # otherwise darken everything else), and the card says the top was clipped
+    assert vmax == pytest.approx(np.quantile(want[want > 0], 0.99), rel=1e-5)
+    assert sv.card.map_meta["clipped"] is True and sv.card.map_meta["max"] == pytest.approx(1.0)
     # top keys are the keys with the highest mean weight, with their tokens
     col = want.mean(axis=0)
     assert [k["slot"] for k in sv.card.top_keys][:3] == list(np.argsort(-col, kind="stable")[:3])
@@ -158,14 +163,14 @@ def test_card_downsamples_long_maps_and_zooms_into_a_window():
     assert max(m["rows"], m["cols"]) <= 256 and m["step_q"] == 3 and m["T"] == 600
     w = scan.weight_map(0, 0, 1)
     block = w[:3, :3].mean()
-    assert card.map_array()[0, 0] == round(block / m["vmax"] * 254)
+    assert card.map_array()[0, 0] == round(min(block, m["vmax"]) / m["vmax"] * 254)
     assert len(card.row_labels) == m["rows"] and card.row_labels[0].startswith("#0\u20132 ")
     card.window = [100, 164, 80, 144]
     m = card.map_meta
     assert (m["rows"], m["cols"], m["step_q"], m["q0"], m["k0"]) == (64, 64, 1, 100, 80)
     assert card.row_labels[0] == "#100 " + show_token(scan.tokens[0][100])
     sub = w[100:164, 80:144]
-    assert np.allclose(card.map_array() / 254 * m["vmax"], sub, atol=m["vmax"] / 254 + 1e-7)
+    assert np.allclose(card.map_array() / 254 * m["vmax"], np.minimum(sub, m["vmax"]), atol=m["vmax"] / 254 + 1e-7)
     card.head = "L0.H0"                    # same text: the zoom stays so heads compare in place
     assert card.map_meta["q0"] == 100
 
@@ -364,8 +369,9 @@ def test_map_view_block_mean_matches_numpy():
     w = np.random.default_rng(0).random((10, 7)).astype(np.float32)
     mv = _common.map_view(w, max_side=4)
     assert (mv["step_q"], mv["step_k"], mv["rows"], mv["cols"]) == (3, 2, 4, 4)
-    assert mv["q"][3, 3] == round(w[9:10, 6:7].mean() / mv["vmax"] * 254)
-    assert mv["q"][1, 2] == round(w[3:6, 4:6].mean() / mv["vmax"] * 254)
+    def code(block):
+        return round(min(block.mean(), mv["vmax"]) / mv["vmax"] * 254)
+    assert mv["q"][3, 3] == code(w[9:10, 6:7]) and mv["q"][1, 2] == code(w[3:6, 4:6])
 
 
 def test_png_is_a_valid_image():

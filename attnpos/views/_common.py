@@ -353,11 +353,18 @@ def map_view(w: np.ndarray, window: Iterable[int] | None = None, max_side: int =
         cnt = np.isfinite(blocks).sum(axis=(1, 3))
         tot = np.nansum(blocks, axis=(1, 3))
         mean = np.where(cnt > 0, tot / np.maximum(cnt, 1), np.nan)
-    vmax = float(np.nanmax(mean)) if np.isfinite(mean).any() else 0.0
+    # Colour scale: up to the 99th percentile of the positive cells, not the maximum. In a causal map the first
+    # query has weight 1 on the first key; scaling to that would leave every other cell dark.
+    finite_vals = mean[np.isfinite(mean)]
+    pos = finite_vals[finite_vals > 0]
+    top = float(finite_vals.max()) if len(finite_vals) else 0.0
+    vmax = float(np.quantile(pos, 0.99)) if len(pos) else top
+    if vmax <= 0:
+        vmax = top
     scale = vmax if vmax > 0 else 1.0
     q = np.where(np.isfinite(mean), np.round(np.clip(mean / scale, 0, 1) * 254), 255).astype(np.uint8)
-    return {"q": q, "vmax": vmax, "q0": q0, "q1": q1, "k0": k0, "k1": k1, "step_q": sq, "step_k": sk,
-            "rows": rows, "cols": cols, "T": T_q}
+    return {"q": q, "vmax": vmax, "max": top, "clipped": bool(top > vmax * (1 + 1e-6)), "q0": q0, "q1": q1,
+            "k0": k0, "k1": k1, "step_q": sq, "step_k": sk, "rows": rows, "cols": cols, "T": T_q}
 
 
 def block_labels(tokens: list[str], start: int, stop: int, step: int) -> list[str]:

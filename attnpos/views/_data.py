@@ -267,6 +267,3 @@ def notable_heads(scan, per_role: int = 2, limit: int = 14) -> list[str]:
             keys.append(head_key(r["stack"], r["layer"], r["head"]))
     return keys[:limit]
 
-
-def finite_or_none(x):
-    return float(x) if finite(x) else None

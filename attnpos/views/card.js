@@ -221,7 +221,8 @@ function cardRender({ model, el }) {
     box.appendChild(hover);
     const rl = model.get("row_labels") || [], cl = model.get("col_labels") || [];
     const scaleNote = apEl("div", "ap-sub ap-mapnote",
-      "colour 0 \u2026 " + apFmt(meta.vmax, 3) + " (weight, ramp dark \u2192 bright)" +
+      "colour 0 \u2026 " + apFmt(meta.vmax, 3) + " (weight, dark \u2192 bright" +
+      (meta.clipped ? "; brightest = 99th percentile, max " + apFmt(meta.max, 3) : "") + ")" +
       (meta.step_q > 1 || meta.step_k > 1 ? " \u00b7 each pixel averages " + meta.step_q + "\u00d7" + meta.step_k + " pairs" : "") +
       " \u00b7 text length " + meta.T);
     box.appendChild(scaleNote);
@@ -240,7 +241,7 @@ function cardRender({ model, el }) {
     canvas.addEventListener("mousemove", (e) => {
       const p = at(e);
       const code = codes[p.r * cols + p.c];
-      const w = code === 255 ? "\u2014" : apFmt(code / 254 * meta.vmax, 3);
+      const w = code === 255 ? "\u2014" : (code === 254 && meta.clipped ? "\u2265 " : "") + apFmt(code / 254 * meta.vmax, 3);
       hover.textContent = "query " + apShowToken(rl[p.r]) + "  \u2192  key " + apShowToken(cl[p.c]) + "  \u00b7 weight \u2248 " + w;
       if (drag) {
         const x0 = Math.min(drag.x, p.x), y0 = Math.min(drag.y, p.y);

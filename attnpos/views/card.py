@@ -8,7 +8,7 @@ import traitlets as t
 
 from . import _data, static
 from ._base import StaticFallback, css, esm
-from ._common import PART_COLOURS, RAMP, clean, role_palette
+from ._common import PART_COLOURS, RAMP, clean, head_key, layer_key, parse_key, role_palette
 
 
 class HeadCard(StaticFallback, anywidget.AnyWidget):
@@ -59,7 +59,6 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
             self.text = int(text)
         if head is None and len(scan.heads):
             r = scan.heads.iloc[0]
-            from ._common import head_key
             head = head_key(r["stack"], r["layer"], r["head"])
         if head:
             self.head = head
@@ -99,8 +98,8 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
                 self.map_codes, self.map_meta, self.row_labels, self.col_labels, self.top_keys = b"", {}, [], [], []
                 return
             self.map_codes = np.ascontiguousarray(mp["q"], dtype=np.uint8).tobytes()
-            self.map_meta = {k: clean(mp[k]) for k in ("rows", "cols", "vmax", "q0", "q1", "k0", "k1",
-                                                      "step_q", "step_k", "T")}
+            self.map_meta = {k: clean(mp[k]) for k in ("rows", "cols", "vmax", "max", "clipped", "q0", "q1", "k0",
+                                                      "k1", "step_q", "step_k", "T")}
             self.row_labels = mp["row_labels"]
             self.col_labels = mp["col_labels"]
             self.top_keys = [clean(k) for k in mp["top_keys"]]
@@ -116,7 +115,6 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
         if not key:
             self.findings = []
             return
-        from ._common import layer_key, parse_key
         stack, layer, _ = parse_key(key)
         mine = {key, layer_key(stack, layer), "model"}
         # the head's own findings first, then its layer's and the model's

@@ -35,12 +35,17 @@ hostile = HeadCard(synthetic_scan(2, 2, seed=3, hostile=True), head="L0.H0")
 hostile
 '''
 
+BIG = '''\
+from attnpos.views import Atlas
+Atlas(synthetic_scan(32, 32, seed=4, keep_maps=0, n_texts=1))
+'''
+
 
 def _notebook(root, repo) -> str:
     nb = nbformat.v4.new_notebook()
     nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3", "language": "python"}
     nb.cells = [nbformat.v4.new_code_cell(SETUP.format(repo=str(repo), helpers=str(repo / "tests" / "browser"))), nbformat.v4.new_code_cell(SHOW),
-                nbformat.v4.new_code_cell(HOSTILE)]
+                nbformat.v4.new_code_cell(HOSTILE), nbformat.v4.new_code_cell(BIG)]
     nbformat.write(nb, root / "survey.ipynb")
     return "survey.ipynb"
 
@@ -135,8 +140,18 @@ def test_atlas_click_updates_card_in_jupyterlab(jupyterlab, browser, artifacts):
         hostile.wait_for(timeout=60_000)
         keys = hostile.locator(".ap-topkeys").inner_text()
         assert "<script>alert(1)</script>" in keys and "onerror=alert(1)>" in keys and "\\x1b[31m" in keys
+        options = hostile.locator("select.ap-textsel option").all_text_contents()
+        assert "text-0<b>" in options
         assert page.locator("img[src='x']").count() == 0
         assert dialogs == []
+
+        # what was not measured says so
+        assert page.locator(".ap-survey .ap-curves .ap-probe-none").count() == 1
+
+        # a 32 x 32 atlas renders every head
+        big = page.locator(".ap-atlas").nth(1)
+        big.locator(".ap-cell[data-key='L31.H31']").wait_for(state="attached", timeout=60_000)
+        assert big.locator(".ap-cell").count() == 1024
 
         atlas.scroll_into_view_if_needed()
         page.locator(".ap-survey").first.evaluate("e => e.scrollIntoView({block: 'start'})")

@@ -10,9 +10,12 @@ What a run does:
   each window is ``<bos>`` followed by corpus bytes, starting at a document start half of the time (so the
   fixed-width headers sit at fixed slots) and anywhere in the text otherwise. Documents are separated by
   ``<eos>``; ``<eos>`` is never a prediction target, so every loss is a loss per byte, in nats;
-* stops after ``--steps`` updates; without ``--steps`` it times the first updates and plans as many as fit in
-  ``--minutes``. ``--minutes`` is also a hard cap. Given the seed and the step count, the run is deterministic
-  (one ``torch.Generator`` draws every batch; the planned step count is recorded so ``--steps`` replays it);
+* with ``--steps``: warm-up then cosine over that many updates; deterministic given the seed (one
+  ``torch.Generator`` draws every batch, ``torch.manual_seed`` fixes the initialisation), bit for bit;
+  ``--minutes`` is then only a hard cap;
+* without ``--steps``: warm-up then cosine over the wall-clock budget ``--minutes`` (default 4.5), so a busy
+  machine trains fewer steps but still finishes its schedule. Initialisation and data order still follow the
+  seed; the step count reached is recorded;
 * saves the model (safetensors) and the byte tokenizer into ``--out``, with ``attnpos_scheme``,
   ``attnpos_training_length`` and an ``attnpos_training`` record in ``config.json``.
 """
@@ -169,9 +172,14 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
     val_initial = per_byte_loss(model, val_ids, val_labels)
     model.train()
     deadline = t_start + minutes * 60.0 if minutes is not None else math.inf
-    planned = steps
-    plan_note = "fixed by --steps"
-    probe_steps = 8
+    if steps is not None:
+        plan_note = "fixed by --steps: warm-up then cosine over the step count (bit-for-bit reproducible)"
+    else:
+        plan_note = ("clock-scheduled: warm-up, then cosine over the wall-clock budget; the data order and the "
+                     "initialisation follow the seed, the step count depends on the machine's speed")
+    t_loop = time.perf_counter()
+    # clock-scheduled runs keep a reserve for the final evaluation and saving
+    loop_budget = max(1.0, (deadline - t_loop) - max(10.0, 0.04 * minutes * 60.0)) if steps is None else None
     recent: list[float] = []
     history = []
     stopped_early = False
@@ -180,24 +188,23 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
         from tqdm.auto import tqdm
     except ImportError:  # pragma: no cover - tqdm is a dependency
         tqdm = None
-    bar = tqdm(total=planned, desc=f"train {scheme}", unit="step", disable=not progress) if tqdm else None
-    t_loop = time.perf_counter()
-    while planned is None or step < planned:
-        if planned is None and step == probe_steps:
-            # plan the rest from the measured speed, keeping ~8% of the budget for evaluation and saving
-            per_step = (time.perf_counter() - t_loop) / probe_steps
-            budget = deadline - time.perf_counter() - 0.08 * minutes * 60.0
-            planned = max(step + 1, step + int(budget / per_step))
-            plan_note = f"planned from {per_step:.3f} s/step over the first {probe_steps} steps"
-            if bar is not None:
-                bar.total = planned
-                bar.refresh()
-        if time.perf_counter() > deadline:
-            stopped_early = True
-            break
-        total_for_lr = planned if planned is not None else 10**9
+    bar = tqdm(total=steps, desc=f"train {scheme}", unit="step", disable=not progress) if tqdm else None
+    while True:
+        now = time.perf_counter()
+        if steps is not None:
+            if step >= steps:
+                break
+            if now > deadline:
+                stopped_early = True
+                break
+            rate = _lr_at(step, steps, lr, warmup)
+        else:
+            fraction = (now - t_loop) / loop_budget
+            if fraction >= 1.0:
+                break
+            rate = lr * (step + 1) / warmup if step < warmup else _lr_at(int(fraction * 10**6), 10**6, lr, 0)
         for group in opt.param_groups:
-            group["lr"] = _lr_at(step, total_for_lr, lr, warmup)
+            group["lr"] = rate
         ids, labels = train_stream.windows(batch, context, gen)
         loss = model(input_ids=ids, labels=labels, use_cache=False).loss
         opt.zero_grad(set_to_none=True)
@@ -209,7 +216,7 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
         if len(recent) > 50:
             recent.pop(0)
         step += 1
-        if step % 100 == 0:
+        if step % 50 == 0:
             history.append([step, round(sum(recent) / len(recent), 4)])
         if bar is not None:
             bar.update(1)
@@ -225,7 +232,6 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
     record = {
         "scheme": scheme,
         "steps": step,
-        "planned_steps": planned,
         "step_plan": plan_note,
         "stopped_early_at_time_cap": stopped_early,
         "minutes": round((time.perf_counter() - t_start) / 60.0, 3),

@@ -286,7 +286,7 @@ def map_img(mp: dict | None, scale_to: int = 256) -> str:
     note = (f"queries {mp['q0']}–{mp['q1'] - 1} ↓ × keys {mp['k0']}–{mp['k1'] - 1} →; colour 0 … {fmt(mp['vmax'], 3)}"
             + (f" (brightest = 99th percentile; max {fmt(mp['max'], 3)})" if mp.get("clipped") else "")
             + (f"; each pixel averages {mp['step_q']}×{mp['step_k']} pairs" if mp["step_q"] > 1 or mp["step_k"] > 1 else ""))
-    return (f'<figure style="margin:0"><img class="apx-map" alt="weight map" width="{w}" height="{h}" '
+    return (f'<figure style="margin:0;max-width:{max(w, 260)}px"><img class="apx-map" alt="weight map" width="{w}" height="{h}" '
             f'src="{png_data_uri(rgb)}"/><figcaption class="apx-sub">{esc_plain(note)}</figcaption></figure>')
 
 

@@ -161,11 +161,30 @@ def build_parser() -> argparse.ArgumentParser:
             continue
         if not hasattr(mod, "add_arguments") or not hasattr(mod, "run"):
             continue
-        p = sub.add_parser(name, help=getattr(mod, "HELP", None), description=getattr(mod, "HELP", None))
+        text = getattr(mod, "HELP", None) or ((mod.__doc__ or "").strip().splitlines() or [None])[0]
+        p = sub.add_parser(name, help=text, description=text)
         p.add_argument("--debug", action="store_true", help="show tracebacks")
         mod.add_arguments(p)
         p.set_defaults(_run=mod.run)
     return parser
+
+
+def cli_reference() -> str:
+    """The ``--help`` of attnpos and of every sub-command, as the README's CLI reference shows it."""
+    old = os.environ.get("COLUMNS")
+    os.environ["COLUMNS"] = "100"          # argparse wraps to the terminal width: fix it for a stable text
+    try:
+        parser = build_parser()
+        parts = ["$ attnpos --help", parser.format_help().rstrip()]
+        sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+        for name, p in sub.choices.items():
+            parts += ["", f"$ attnpos {name} --help", p.format_help().rstrip()]
+    finally:
+        if old is None:
+            os.environ.pop("COLUMNS", None)
+        else:
+            os.environ["COLUMNS"] = old
+    return "\n".join(parts) + "\n"
 
 
 def main(argv: list[str] | None = None) -> int:

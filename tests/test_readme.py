@@ -22,3 +22,22 @@ def test_install_command_pins_cpu_torch():
     assert 'pip install "torch==2.13.0" -e ".[test]"' in text
     ci = (README.parent / ".ci" / "run").read_text()
     assert "python -m pytest\n" in ci and "torch==2.13.0" in ci
+
+
+def test_cli_reference_matches_help():
+    # the README's CLI reference is the real --help; regenerate it with
+    #   python -c "from attnpos.cli import cli_reference; print(cli_reference())"
+    from attnpos.cli import cli_reference
+
+    text = README.read_text(encoding="utf-8")
+    block = text[text.index("<!-- cli:start -->"):text.index("<!-- cli:end -->")]
+    body = block.split("```text\n", 1)[1].rsplit("```", 1)[0]
+    assert body == cli_reference()
+
+
+def test_quick_start_runs(tmp_path, monkeypatch):
+    text = README.read_text(encoding="utf-8")
+    code = text.split("## Quick start (Python)", 1)[1].split("```python\n", 1)[1].split("```", 1)[0]
+    monkeypatch.chdir(tmp_path)
+    exec(compile(code, "README quick start", "exec"), {})
+    assert (tmp_path / "rope-scan.json").exists()

@@ -1,0 +1,492 @@
+"""Ridge probes: can absolute position be read off each layer's hidden states?
+
+For every hidden-state layer (layer 0 = the embeddings output, layer ``l`` = the output of block ``l``), a ridge
+regression maps the hidden vector of each ordinary token (special tokens such as BOS/CLS/SEP are left out) to
+
+* its absolute position (the token's index in the sequence the model saw), and
+* its log-position, ``log(1 + position)``.
+
+**Held out by text.** Tokens of one text are never split between fitting and scoring: the outer split is a
+``GroupKFold`` over texts (the windows of one long text form one group), and the ridge penalty is chosen from a
+small grid by an inner ``GroupKFold`` over the training texts only. R² is pooled over the held-out predictions.
+
+**Control** (Hewitt & Liang 2019, control tasks): the same probe fitted to positions shuffled within each text.
+The shuffled label no longer depends on the hidden state, so its held-out R² stays near zero unless the
+procedure leaks; ``selectivity = r2 − control_r2``.
+
+**Untrained copy.** Causal attention alone makes position decodable: a query that spreads its weight evenly over
+its prefix averages over more tokens the later it sits, so even random weights carry position (Kazemnejad et al.
+2023; Zuo et al. 2025). ``untrained_r2`` is the same probe on an untrained copy of the same architecture (same
+config, fresh random initialisation from ``seed``); "learned position" means clearly above it.
+
+**Counting check** (causal models): which attention layers have ``counting`` heads (near-uniform over the causal
+prefix, the criterion of :mod:`attnpos.roles`), in the trained model and in its untrained copy, and the first
+hidden layer where the probe beats the untrained copy (Haviv et al. 2022; Kazemnejad et al. 2023).
+
+A probe shows that position is *decodable* from a layer, not that the model *uses* it.
+
+Example::
+
+    >>> res = attnpos.probes.probe(attnpos.load("ref:none"))            # doctest: +SKIP
+    >>> [(l["layer"], round(l["r2"], 2), round(l["untrained_r2"], 2)) for l in res.layers]   # doctest: +SKIP
+    >>> res.to_json()["counting"]["first_layer_above_untrained"]          # doctest: +SKIP
+
+Command line: ``attnpos probe ref:none --json probe.json``.
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Sequence
+
+import numpy as np
+import torch
+
+from .errors import AttnposError
+
+HELP = "ridge probes for absolute position per layer, with a shuffled control and an untrained copy"
+
+CAUTION = (
+    "A probe shows that position can be decoded from a layer's hidden states, not that the model uses it "
+    "(Hewitt & Liang 2019: compare with the control and the untrained copy). Attention weights, used in the "
+    "counting check, are evidence, not explanation (Jain & Wallace 2019; Wiegreffe & Pinter 2019); back a reading "
+    "with an intervention such as the shift test or ablating a head."
+)
+
+#: ridge penalties tried (on standardised features), chosen per target on the training texts only
+ALPHAS = tuple(float(a) for a in np.logspace(-2, 5, 8))
+#: outer folds (over texts) and inner folds (over training texts, for the penalty)
+FOLDS = 5
+INNER_FOLDS = 4
+#: the probe "beats the untrained copy" at a layer when its held-out R² is higher by at least this much. A judgement
+#: call: fold-to-fold differences of pooled R² on a few thousand tokens are a few hundredths.
+ABOVE_UNTRAINED = 0.05
+#: a layer counts as "position decodable" when the held-out R² is at least this (judgement call: half the variance).
+DECODABLE_R2 = 0.5
+
+
+# --------------------------------------------------------------------------------------------------- result
+
+@dataclass
+class ProbeResult:
+    """What :func:`probe` found. ``layers`` holds one dict per hidden-state layer (keys ``layer``, ``r2``,
+    ``r2_log``, ``control_r2``, ``selectivity``, ``mae``, ``untrained_r2``, ``alpha``); ``positions`` the range
+    of positions covered and the tokens per position; ``counting`` the counting check (causal models);
+    ``bands`` the RoPE frequency bands (:func:`attnpos.bands.rope_bands`) when the model has RoPE layers."""
+
+    model: dict
+    layers: list[dict]
+    positions: dict
+    settings: dict
+    counting: dict | None = None
+    bands: dict | None = None
+    notes: list[str] = field(default_factory=list)
+    caution: str = CAUTION
+
+    def to_json(self) -> dict:
+        from .result import _clean
+
+        out: dict[str, Any] = {
+            "model": self.model.get("name"),
+            "subject": self.model,
+            "layers": self.layers,
+            "positions": self.positions,
+            "settings": self.settings,
+        }
+        if self.counting is not None:
+            out["counting"] = self.counting
+        if self.bands is not None:
+            out["bands"] = self.bands
+        out["notes"] = self.notes
+        out["caution"] = self.caution
+        return _clean(out)
+
+    def save(self, path: str | Path) -> Path:
+        path = Path(path)
+        path.write_text(json.dumps(self.to_json(), indent=1, ensure_ascii=False), encoding="utf-8")
+        return path
+
+    def table(self) -> str:
+        """A readable terminal table."""
+        m, p, s = self.model, self.positions, self.settings
+        scheme = m["scheme"] if isinstance(m.get("scheme"), str) else ",".join(m.get("scheme") or [])
+        lines = [
+            f"{m.get('name')}  {m.get('architecture')}  scheme={scheme}  causal={m.get('causal')}",
+            f"texts {s['n_texts']} ({s['n_units']} windows), {s['n_tokens']} ordinary tokens; positions "
+            f"{p['min']}–{p['max']}, {p['tokens_per_position_min']}–{p['tokens_per_position_max']} tokens per "
+            f"position (median {p['tokens_per_position_median']:g}); {s['folds']}-fold split by text",
+            "",
+            f"{'layer':>5}  {'R² pos':>7}  {'R² log':>7}  {'control':>7}  {'select.':>7}  {'MAE':>7}  "
+            f"{'untrained':>9}",
+        ]
+        lines.append("-" * len(lines[-1]))
+
+        def f(x, w=7, nd=3):
+            return ("—" if x is None or not np.isfinite(x) else f"{x:.{nd}f}").rjust(w)
+
+        for r in self.layers:
+            lines.append(f"{r['layer']:>5}  {f(r['r2'])}  {f(r['r2_log'])}  {f(r['control_r2'])}  "
+                         f"{f(r['selectivity'])}  {f(r['mae'], 7, 1)}  {f(r.get('untrained_r2'), 9)}")
+        lines.append("layer 0 = embeddings output; R² is held out by text; control = positions shuffled within "
+                     "each text; untrained = same architecture, fresh random weights")
+        if self.counting:
+            lines.append("")
+            lines.append("counting check: " + self.counting["summary"])
+        if self.bands:
+            from .bands import summary_lines
+
+            lines.append("")
+            lines.extend(summary_lines(self.bands))
+        for n in self.notes:
+            lines.append("notice: " + n)
+        lines.append("note: " + self.caution)
+        return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------------------------------- the fit
+
+def _standardise(Xtr: np.ndarray, *others: np.ndarray):
+    mu = Xtr.mean(0)
+    sd = Xtr.std(0)
+    sd = np.where(sd > 1e-8 * max(float(sd.max()), 1e-30), sd, 1.0)
+    return [(Xtr - mu) / sd] + [(o - mu) / sd for o in others]
+
+
+def _choose_alpha(X: np.ndarray, Y: np.ndarray, groups: np.ndarray, alphas: Sequence[float]) -> np.ndarray:
+    """Per target column, the penalty with the lowest pooled squared error over an inner GroupKFold.
+
+    Exact ridge for every penalty at once from one eigen-decomposition of the (standardised, centred) training
+    Gram matrix per inner fold."""
+    from sklearn.model_selection import GroupKFold
+
+    alphas = np.asarray(alphas, dtype=float)
+    if len(alphas) == 1:
+        return np.full(Y.shape[1], alphas[0])
+    n_groups = len(np.unique(groups))
+    if n_groups < 2:
+        return np.full(Y.shape[1], alphas[len(alphas) // 2])
+    sse = np.zeros((len(alphas), Y.shape[1]))
+    for tr, te in GroupKFold(n_splits=min(INNER_FOLDS, n_groups)).split(X, Y, groups):
+        Xtr, Xte = _standardise(X[tr], X[te])
+        ym = Y[tr].mean(0)
+        lam, V = np.linalg.eigh(Xtr.T @ Xtr)
+        lam = np.clip(lam, 0.0, None)
+        Vb = V.T @ (Xtr.T @ (Y[tr] - ym))                      # (d, k)
+        P = Xte @ V                                             # (n_te, d)
+        for a_i, a in enumerate(alphas):
+            pred = P @ (Vb / (lam + a)[:, None]) + ym
+            sse[a_i] += ((Y[te] - pred) ** 2).sum(0)
+    return alphas[sse.argmin(0)]
+
+
+def cross_validated(X: np.ndarray, Y: np.ndarray, groups: np.ndarray, *, alphas: Sequence[float] = ALPHAS,
+                    folds: int = FOLDS) -> dict:
+    """Held-out ridge predictions of the columns of ``Y`` from ``X``, split by ``groups``.
+
+    Returns ``{"pred": (n, k), "r2": (k,), "alpha": (k,) median chosen penalty}``. R² is pooled over all held-out
+    predictions: 1 − Σ(y − ŷ)² / Σ(y − ȳ)²; it is negative when the probe does worse than the mean."""
+    from threadpoolctl import threadpool_limits
+
+    # small matrices: one BLAS thread is faster, and much faster on a busy machine (scoped to this call)
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _cross_validated(X, Y, groups, alphas, folds)
+
+
+def _cross_validated(X, Y, groups, alphas, folds) -> dict:
+    from sklearn.linear_model import Ridge
+    from sklearn.model_selection import GroupKFold
+
+    X = np.asarray(X, dtype=np.float64)
+    Y = np.asarray(Y, dtype=np.float64)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    n_groups = len(np.unique(groups))
+    if n_groups < 2:
+        raise AttnposError("The probe needs at least two texts to hold one out; pass more texts.")
+    pred = np.zeros_like(Y)
+    chosen = []
+    for tr, te in GroupKFold(n_splits=min(folds, n_groups)).split(X, Y, groups):
+        a = _choose_alpha(X[tr], Y[tr], groups[tr], alphas)
+        chosen.append(a)
+        Xtr, Xte = _standardise(X[tr], X[te])
+        model = Ridge(alpha=a if Y.shape[1] > 1 else float(a[0]), fit_intercept=True)
+        model.fit(Xtr, Y[tr] if Y.shape[1] > 1 else Y[tr, 0])
+        p = model.predict(Xte)
+        pred[te] = p if p.ndim == 2 else p[:, None]
+    sst = ((Y - Y.mean(0)) ** 2).sum(0)
+    r2 = 1.0 - ((Y - pred) ** 2).sum(0) / np.where(sst > 0, sst, np.nan)
+    return {"pred": pred, "r2": r2, "alpha": np.median(np.stack(chosen), axis=0)}
+
+
+# --------------------------------------------------------------------------------------------------- data
+
+def _group_keys(units) -> tuple[np.ndarray, int, list[str]]:
+    """Group id per unit: the windows of one source text share a group."""
+    notes = []
+    keys = []
+    for u in units:
+        base = u.name.rsplit("#", 1)[0] if u.window is not None else u.name
+        keys.append((u.source, base))
+    uniq = {k: i for i, k in enumerate(dict.fromkeys(keys))}
+    g = np.array([uniq[k] for k in keys])
+    n_texts = len(uniq)
+    if n_texts < 2 and len(units) >= 2:
+        notes.append("Only one text was given, so its windows are held out one from another; they share the "
+                     "text's style, so R² may be optimistic. Pass two or more texts.")
+        g = np.arange(len(units))
+    return g, n_texts, notes
+
+
+def _dataset(units, hidden: list[np.ndarray], seed: int):
+    """Stack ordinary tokens: X per layer, position, log-position, shuffled position, group per token."""
+    rng = np.random.default_rng(seed)
+    xs, pos, shuf, unit_of = [], [], [], []
+    for k, (u, h) in enumerate(zip(units, hidden)):
+        T = min(len(u), h.shape[1])
+        keep = ~np.asarray(u.special[:T], dtype=bool)
+        idx = np.flatnonzero(keep)
+        if len(idx) == 0:
+            continue
+        xs.append(h[:, idx])
+        pos.append(idx)
+        shuf.append(rng.permutation(idx))           # positions shuffled within the text (control)
+        unit_of.append(np.full(len(idx), k))
+    if not xs:
+        raise AttnposError("The texts have no ordinary tokens (all special) to probe.")
+    X = np.concatenate(xs, axis=1)                  # (layers+1, n, d)
+    return X, np.concatenate(pos), np.concatenate(shuf), np.concatenate(unit_of)
+
+
+def untrained_copy(subject, seed: int = 0):
+    """The same architecture with fresh random weights (same config, same tokenizer), as a Subject.
+
+    Built with the model's own class from a copy of its config under a fixed torch seed. A sinusoidal position
+    table is part of the architecture, not learned, so it is copied over."""
+    from .subject import from_model
+
+    model = subject.model
+    config = copy.deepcopy(model.config)
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(int(seed))
+        try:
+            fresh = type(model)(config)
+        except Exception as exc:  # noqa: BLE001 - wrap with context
+            raise AttnposError(f"Could not build an untrained copy of {type(model).__name__} from its config "
+                               f"({type(exc).__name__}: {exc}). Pass untrained=False to skip that baseline.") from exc
+    fresh.to(torch.float32).eval()
+    if "sinusoidal" in subject.schemes:
+        from .subject import _position_table
+
+        src, dst = _position_table(model), _position_table(fresh)
+        if src is not None and dst is not None and src.shape == dst.shape:
+            with torch.no_grad():
+                dst.copy_(src)
+    return from_model(fresh, subject.tokenizer, name=f"{subject.name} (untrained copy, seed {seed})",
+                      scheme=[s.scheme for s in subject.sites], training_length=subject.training_length)
+
+
+def _counting_heads(subject, weights) -> "Any":
+    from .roles import head_table
+
+    table = head_table(subject, weights)
+    table["counting"] = table["tags"].apply(lambda t: "counting" in (t or []))
+    return table
+
+
+def _counting_check(subject, table, table_untrained, layers: list[dict]) -> dict:
+    n_layers = subject.n_layers
+    H = subject.n_heads
+    first_stack = subject.sites[0].stack
+    t = table[table["stack"] == first_stack]
+    tu = table_untrained[table_untrained["stack"] == first_stack] if table_untrained is not None else None
+    per_layer = []
+    heads = []
+    for layer in range(n_layers):
+        rows = t[t["layer"] == layer]
+        c = rows[rows["counting"]]
+        entry = {"attention_layer": layer, "feeds_hidden_layer": layer + 1, "counting_heads": int(len(c)),
+                 "heads": H, "mean_entropy_ratio": float(rows["entropy_ratio"].mean())}
+        if tu is not None:
+            ru = tu[tu["layer"] == layer]
+            entry["untrained_counting_heads"] = int(ru["counting"].sum())
+            entry["untrained_mean_entropy_ratio"] = float(ru["entropy_ratio"].mean())
+        per_layer.append(entry)
+        for _, r in c.iterrows():
+            heads.append({"layer": int(r["layer"]), "head": int(r["head"]), "entropy_ratio": float(r["entropy_ratio"])})
+    with_counting = [e["attention_layer"] for e in per_layer if e["counting_heads"]]
+    above = None
+    for r in layers:
+        u = r.get("untrained_r2")
+        if u is not None and np.isfinite(u) and np.isfinite(r["r2"]) and r["r2"] >= u + ABOVE_UNTRAINED:
+            above = r["layer"]
+            break
+    decodable = next((r["layer"] for r in layers if np.isfinite(r["r2"]) and r["r2"] >= DECODABLE_R2), None)
+    parts = []
+    if with_counting:
+        parts.append("counting heads (entropy ≥ 0.9 of uniform over the prefix) in attention layer"
+                     + ("s " if len(with_counting) > 1 else " ") + ", ".join(str(x) for x in with_counting)
+                     + " (" + ", ".join(f"L{e['attention_layer']}: {e['counting_heads']}/{H}"
+                                        + (f" vs {e['untrained_counting_heads']}/{H} untrained"
+                                           if "untrained_counting_heads" in e else "")
+                                        for e in per_layer if e["counting_heads"]) + ")")
+    else:
+        parts.append("no counting heads")
+    if decodable is not None:
+        parts.append(f"position first decodable (R² ≥ {DECODABLE_R2}) at hidden layer {decodable}")
+    else:
+        parts.append(f"position never decodable at R² ≥ {DECODABLE_R2}")
+    if above is not None:
+        parts.append(f"the probe first beats the untrained copy (by ≥ {ABOVE_UNTRAINED} R²) at hidden layer {above}"
+                     + (f", the output of attention block {above - 1}" if above > 0 else ""))
+    elif any(r.get("untrained_r2") is not None for r in layers):
+        parts.append("the probe never beats the untrained copy by a clear margin: the position it decodes is what "
+                     "the causal architecture gives for free")
+    return {"per_layer": per_layer, "heads": heads, "layers_with_counting_heads": with_counting,
+            "first_layer_decodable": decodable, "first_layer_above_untrained": above,
+            "margin": ABOVE_UNTRAINED, "decodable_r2": DECODABLE_R2, "summary": "; ".join(parts) + ".",
+            "sources": "Haviv et al. 2022; Kazemnejad et al. 2023"}
+
+
+def _record(subject, units, want_weights: bool):
+    from .capture import record
+    from .reducers import WeightStats
+
+    reducers = [WeightStats()] if want_weights else []
+    return record(subject, units=units, reducers=reducers, hidden_states=True, progress=False)
+
+
+def _probe_layers(X: np.ndarray, pos: np.ndarray, shuf: np.ndarray, groups: np.ndarray, alphas, folds: int,
+                  with_targets: bool = True) -> list[dict]:
+    out = []
+    Y = np.stack([pos, np.log1p(pos), shuf], axis=1).astype(np.float64) if with_targets else pos[:, None]
+    for layer in range(X.shape[0]):
+        cv = cross_validated(X[layer], Y, groups, alphas=alphas, folds=folds)
+        r = {"layer": layer, "r2": float(cv["r2"][0])}
+        if with_targets:
+            r.update(r2_log=float(cv["r2"][1]), control_r2=float(cv["r2"][2]),
+                     selectivity=float(cv["r2"][0] - cv["r2"][2]),
+                     mae=float(np.abs(cv["pred"][:, 0] - pos).mean()), alpha=float(cv["alpha"][0]))
+        out.append(r)
+    return out
+
+
+def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, seed: int = 0, folds: int = FOLDS,
+          untrained: bool = True, counting: bool = True, bands: bool = True, max_tokens: int | None = None,
+          heads=None) -> ProbeResult:
+    """Fit ridge probes for absolute position on every hidden-state layer of ``subject``.
+
+    Args:
+        subject: a :class:`~attnpos.subject.Subject`, a model folder or ``"ref:<scheme>"``.
+        texts: strings, Paths, RawTexts, or None for the bundled sample texts. At least two texts (the split is
+            by text).
+        alpha: one ridge penalty, a grid to choose from on the training texts, or None for :data:`ALPHAS`.
+        seed: seed of the shuffled control and of the untrained copy's initialisation.
+        folds: outer folds over texts (at most the number of texts).
+        untrained: also probe an untrained copy of the same architecture (``untrained_r2``).
+        counting: for causal models, link the probe to the counting heads (needs weight statistics).
+        bands: for RoPE layers, add the frequency bands of :func:`attnpos.bands.rope_bands`.
+        max_tokens: window length; by default the model's training length when known (positions the model was
+            trained on), else its context limit.
+        heads: a head table (e.g. ``attnpos.scan(...).heads``) to take the counting heads from; by default they
+            are measured here with the same criterion (:mod:`attnpos.roles`) from weight statistics alone.
+    """
+    from .subject import Subject, load
+    from .texts import as_raw, prepare
+
+    if not isinstance(subject, Subject):
+        subject = load(subject)
+    alphas = ALPHAS if alpha is None else ([float(alpha)] if np.isscalar(alpha) else [float(a) for a in alpha])
+    if any(a <= 0 for a in alphas):
+        raise AttnposError(f"Ridge penalties must be positive; got {alphas}.")
+    notes: list[str] = []
+    if max_tokens is None and subject.training_length:
+        max_tokens = subject.training_length
+        notes.append(f"Texts were cut into windows of the training length ({subject.training_length} tokens) so "
+                     "the probe sees only positions the model was trained on; pass max_tokens to change this.")
+    units = prepare(subject, as_raw(texts), max_tokens=max_tokens, warn=False)
+    groups_u, n_texts, gnotes = _group_keys(units)
+    notes += gnotes
+    if len(units) < 2:
+        raise AttnposError("The probe holds texts out, so it needs at least two texts (or one text long enough to "
+                           "be split into windows). Pass more texts with --text.")
+    want_counting = counting and subject.causal
+    rec = _record(subject, units, want_counting and heads is None)
+    X, pos, shuf, unit_of = _dataset(units, rec.hidden, seed)
+    groups = groups_u[unit_of]
+    layers = _probe_layers(X, pos, shuf, groups, alphas, folds)
+    del X
+    table_u = None
+    if untrained:
+        fresh = untrained_copy(subject, seed=seed)
+        rec_u = _record(fresh, units, want_counting)
+        Xu, _, _, _ = _dataset(units, rec_u.hidden, seed)
+        for r, ru in zip(layers, _probe_layers(Xu, pos, shuf, groups, alphas, folds, with_targets=False)):
+            r["untrained_r2"] = ru["r2"]
+        del Xu
+        if want_counting:
+            table_u = _counting_heads(fresh, rec_u.results["weights"])
+        del fresh, rec_u
+    else:
+        for r in layers:
+            r["untrained_r2"] = None
+    counts = np.bincount(pos)
+    span = counts[pos.min(): pos.max() + 1]
+    positions = {"min": int(pos.min()), "max": int(pos.max()), "tokens_per_position_min": int(span.min()),
+                 "tokens_per_position_median": float(np.median(span)), "tokens_per_position_max": int(span.max())}
+    if span.min() < 10:
+        notes.append(f"Some positions have fewer than 10 tokens ({int(span.min())} at least): the far end of the "
+                     "range rests on few tokens. Longer or more texts fill it.")
+    settings = {"alphas": list(alphas), "folds": int(min(folds, len(np.unique(groups)))), "inner_folds": INNER_FOLDS,
+                "seed": seed, "n_texts": n_texts, "n_units": len(units), "n_tokens": int(len(pos)),
+                "max_tokens": max_tokens, "control": "positions shuffled within each text (Hewitt & Liang 2019)",
+                "untrained": ("same config, fresh random initialisation (torch seed "
+                              f"{seed}), same tokenizer" if untrained else None),
+                "r2": "pooled over held-out texts; position = token index in the window the model saw"}
+    count_info = None
+    if want_counting:
+        if heads is not None:
+            table = heads.copy()
+            table["counting"] = table["tags"].apply(lambda t: "counting" in (t or []))
+        else:
+            table = _counting_heads(subject, rec.results["weights"])
+        count_info = _counting_check(subject, table, table_u, layers)
+    band_info = None
+    if bands and "rope" in subject.schemes:
+        from .bands import rope_bands
+
+        band_info = rope_bands(subject, units=units[: max(2, min(len(units), 8))])
+    return ProbeResult(model=subject.describe(), layers=layers, positions=positions, settings=settings,
+                       counting=count_info, bands=band_info, notes=notes)
+
+
+# --------------------------------------------------------------------------------------------------- CLI
+
+def add_arguments(p) -> None:
+    from .cli import add_model_arguments, add_text_arguments
+
+    add_model_arguments(p)
+    add_text_arguments(p)
+    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the probe results as JSON")
+    p.add_argument("--alpha", type=float, action="append", default=None, metavar="A",
+                   help="ridge penalty (repeat for a grid chosen on the training texts; default 1e-2 … 1e5)")
+    p.add_argument("--folds", type=int, default=FOLDS, help=f"folds over texts (default {FOLDS})")
+    p.add_argument("--seed", type=int, default=0, help="seed of the control shuffle and the untrained copy")
+    p.add_argument("--no-untrained", action="store_true", help="skip the untrained-copy baseline")
+    p.add_argument("--no-bands", action="store_true", help="skip the RoPE frequency bands")
+
+
+def run(args) -> int:
+    from .cli import load_subject, read_texts
+
+    subject = load_subject(args)
+    res = probe(subject, read_texts(args), alpha=args.alpha, seed=args.seed, folds=args.folds,
+                untrained=not args.no_untrained, bands=not args.no_bands, max_tokens=args.max_tokens)
+    print(res.table(), file=sys.stdout)
+    if args.json:
+        res.save(args.json)
+        print(f"wrote {args.json}")
+    return 0

@@ -48,6 +48,11 @@ class LayerCapture:
     hold ``-inf`` scores and zero weight. ``allowed`` is the ``(T, T)`` boolean mask of pairs the model lets the
     query see. ``offset`` is the number of neutral prefix tokens placed before the text (shift test); rows and
     columns before it are not part of the text.
+
+    Reducers read these tensors and must not modify or keep them: the capture reuses their memory for the next
+    chunk (copy what you keep). For sums over the allowed pairs, :meth:`zeroed_scores` gives the same scores with
+    0 on disallowed pairs. The registry path computes that form anyway and passes it as ``zeroed`` with
+    ``scores=None``; ``scores`` (with ``-inf``) is then built only if a reducer reads it.
     """
 
     site: AttentionSite
@@ -55,11 +60,34 @@ class LayerCapture:
     unit: TextUnit
     head0: int
     n_heads: int
-    scores: torch.Tensor
+    scores: torch.Tensor | None
     weights: torch.Tensor
     allowed: torch.Tensor
     score_kind: str
     offset: int = 0
+    zeroed: torch.Tensor | None = None
+
+    def zeroed_scores(self) -> torch.Tensor:
+        """The scores with 0 instead of ``-inf`` on disallowed pairs (read-only)."""
+        if self.zeroed is None:
+            self.zeroed = torch.where(self.allowed, self._scores, torch.zeros((), dtype=self._scores.dtype))
+        return self.zeroed
+
+
+def _get_scores(cap: LayerCapture) -> torch.Tensor:
+    if cap._scores is None:
+        cap._scores = cap.zeroed.masked_fill(~cap.allowed, float("-inf"))
+    return cap._scores
+
+
+def _set_scores(cap: LayerCapture, value: torch.Tensor | None) -> None:
+    cap._scores = value
+    cap.zeroed = None          # set again by __init__ when given; a reducer that replaces the scores drops it
+
+
+# installed after the dataclass is made, so ``scores`` stays an ordinary required field of __init__
+LayerCapture.scores = property(_get_scores, _set_scores,
+                               doc="(n, T, T) scores, -inf on disallowed pairs (built from ``zeroed`` when needed)")
 
 
 class CaptureNotice(UserWarning):
@@ -117,21 +145,38 @@ class _Run:
         self.maps: dict = {}
         self.score_maps: dict = {}
         self.nonfinite: set = set()
+        self._buffers: dict[str, torch.Tensor] = {}
 
-    def deliver(self, site: AttentionSite, scores: torch.Tensor, weights: torch.Tensor, allowed: torch.Tensor,
-                head0: int) -> None:
+    def buffer(self, name: str, shape: tuple[int, ...]) -> torch.Tensor:
+        """A float32 work tensor of ``shape``, reused across chunks, layers and texts of this run (fresh pages for
+        every chunk would cost about as much as the arithmetic)."""
+        n = int(np.prod(shape))
+        buf = self._buffers.get(name)
+        if buf is None or buf.numel() < n:
+            self._buffers[name] = buf = torch.empty(n, dtype=torch.float32)
+        return buf[:n].view(shape)
+
+    def deliver(self, site: AttentionSite, scores: torch.Tensor | None, weights: torch.Tensor,
+                allowed: torch.Tensor, head0: int, *, zeroed: torch.Tensor | None = None,
+                weights_checked: bool = False) -> None:
+        """Hand one chunk of heads to the reducers. Give ``scores`` (-inf on disallowed pairs) or ``zeroed`` (0
+        there); ``weights_checked`` says the weights are finite whenever the scores are (a softmax of them)."""
         self.seen.add(id(site.module))
-        n = scores.shape[0]
+        n = weights.shape[0]
         # NaN anywhere, or ±inf on an allowed pair (the capture function turns NaN weights of such rows into 0, so
-        # the scores are what shows an overflow or a NaN weight)
-        if not torch.isfinite(weights).all() or not (torch.isfinite(scores) | ~allowed).all():
+        # the scores are what shows an overflow or a NaN weight); min and max propagate NaN and show ±inf
+        if zeroed is not None:
+            ok = _all_finite(zeroed)
+        else:
+            ok = bool((torch.isfinite(scores) | ~allowed).all())
+        if not (ok and (weights_checked or _all_finite(weights))):
             self.nonfinite.add((site.stack, site.layer))
         unit = self.units[self.text]
         if site.stack == "decoder":
             unit = _decoder_view(self.subject, unit)
         cap = LayerCapture(site=site, text=self.text, unit=unit, head0=head0, n_heads=n,
                            scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
-                           offset=self.offset)
+                           offset=self.offset, zeroed=zeroed)
         for r in self.reducers:
             r.update(cap)
         if self.keep is not None:
@@ -140,7 +185,14 @@ class _Run:
                 if self.keep(key):
                     self.maps[key] = weights[h].detach().to(torch.float32).numpy().copy()
                     if self.keep_scores:
-                        self.score_maps[key] = scores[h].detach().to(torch.float32).numpy().copy()
+                        self.score_maps[key] = cap.scores[h].detach().to(torch.float32).numpy().copy()
+
+
+def _all_finite(x: torch.Tensor) -> bool:
+    if x.numel() == 0:
+        return True
+    lo, hi = torch.aminmax(x)
+    return bool(torch.isfinite(lo) and torch.isfinite(hi))
 
 
 _ACTIVE: list[_Run] = []
@@ -173,8 +225,24 @@ def _allowed_from_mask(attention_mask, q_len: int, k_len: int, causal: bool) -> 
     return m > torch.finfo(m.dtype).min / 2
 
 
+def _mask_pattern(allowed: torch.Tensor) -> str:
+    """How the disallowed pairs lie: ``"none"`` (all allowed), ``"causal"`` (exactly above the diagonal, aligned
+    at the end of the keys) or ``"general"`` — the first two are zeroed without reading a mask."""
+    q_len, k_len = allowed.shape
+    if bool(allowed.all()):
+        return "none"
+    if torch.equal(allowed, torch.ones(q_len, k_len, dtype=torch.bool).tril(k_len - q_len)):
+        return "causal"
+    return "general"
+
+
 def _capture_attention(module, query, key, value, attention_mask, scaling=None, dropout=0.0, **kwargs):
-    """Eager attention that also hands scores and weights to the active run (registered in the registry)."""
+    """Eager attention that also hands scores and weights to the active run (registered in the registry).
+
+    Per chunk of heads, in two reused buffers: scores = scaling·q·kᵀ (+ bias, softcap, a mask's finite values), set
+    to 0 on disallowed pairs in place (the form the reducers sum over); weights = softmax over the allowed keys,
+    computed in place in the second buffer; out = weights·v.
+    """
     run = _ACTIVE[-1] if _ACTIVE else None
     site = run.site_of.get(id(module)) if run else None
     if kwargs.get("s_aux") is not None or kwargs.get("sinks") is not None:
@@ -189,36 +257,54 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
         scaling = d ** -0.5
     bias = kwargs.get("position_bias")
     softcap = kwargs.get("softcap")
-    mask_add = None
-    if attention_mask is not None:
-        am = attention_mask[..., :k_len]
-        mask_add = am if am.dtype != torch.bool else torch.where(am, 0.0, float("-inf")).to(query.dtype)
     causal = site.causal if site is not None else bool(getattr(module, "is_causal", False))
     allowed = _allowed_from_mask(attention_mask, q_len, k_len, causal if attention_mask is None else False)
+    pattern = _mask_pattern(allowed)
+    # a float mask's values on allowed pairs (0 for a plain causal/padding mask; e.g. a bias folded into the mask
+    # otherwise) are part of the scores
+    mask_add = None
+    if attention_mask is not None and attention_mask.dtype != torch.bool:
+        am = attention_mask[..., :k_len]
+        if bool((am.masked_fill(~allowed, 0) != 0).any()):
+            mask_add = am
+    empty_rows = not bool(allowed.any(-1).all())
+    not_allowed = ~allowed if pattern == "general" else None
     per_head = q_len * k_len * 4
     chunk = max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1)))
     out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype)
+    neg_inf = torch.tensor(float("-inf"))
     for b in range(bsz):
         for h0 in range(0, n_heads, chunk):
             h1 = min(n_heads, h0 + chunk)
-            s = torch.matmul(query[b, h0:h1].float(), key[b, h0:h1].float().transpose(-1, -2)) * scaling
+            shape = (h1 - h0, q_len, k_len)
+            s = run.buffer("scores", shape) if run is not None else torch.empty(shape)
+            w = run.buffer("weights", shape) if run is not None else torch.empty(shape)
+            torch.baddbmm(s, query[b, h0:h1].float(), key[b, h0:h1].float().transpose(-1, -2), beta=0.0,
+                          alpha=scaling, out=s)
             if bias is not None:
                 pb = bias[min(b, bias.shape[0] - 1)]
-                s = s + (pb[h0:h1] if pb.shape[0] > 1 else pb).float()
+                s += (pb[h0:h1] if pb.shape[0] > 1 else pb).float()
             if softcap:
-                s = torch.tanh(s / softcap) * softcap
+                s.div_(softcap).tanh_().mul_(softcap)
             if mask_add is not None:
                 ma = mask_add[min(b, mask_add.shape[0] - 1)]
-                s = s + ma.float()
-            elif attention_mask is None and causal:
-                s = s.masked_fill(~allowed, float("-inf"))
-            s = s.masked_fill(~allowed, float("-inf"))
-            w = torch.softmax(s, dim=-1)
-            w = torch.nan_to_num(w, nan=0.0)  # rows with no allowed key
-            out[b, h0:h1] = torch.matmul(w.to(value.dtype), value[b, h0:h1])
+                s += (ma[h0:h1] if ma.shape[0] > 1 else ma).float()
+            # scores with 0 on disallowed pairs
+            if pattern == "causal":
+                s.tril_(k_len - q_len)
+            elif pattern == "general":
+                s.masked_fill_(not_allowed, 0.0)
+            # weights: softmax over the allowed keys (-inf elsewhere), in place
+            if pattern == "none":
+                w.copy_(s)
+            else:
+                torch.where(allowed, s, neg_inf, out=w)
+            torch.softmax(w, dim=-1, out=w)
+            if empty_rows:
+                w.nan_to_num_(nan=0.0)  # rows with no allowed key
+            torch.matmul(w.to(value.dtype), value[b, h0:h1], out=out[b, h0:h1])
             if site is not None and b == 0:
-                run.deliver(site, s, w, allowed, h0)
-            del s, w
+                run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True)
     return out.transpose(1, 2).contiguous(), None
 
 

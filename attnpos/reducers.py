@@ -11,6 +11,7 @@ Both are vectorised over heads and pairs; neither keeps a map.
 
 from __future__ import annotations
 
+import functools
 from typing import Sequence
 
 import numpy as np
@@ -36,6 +37,81 @@ def bucket(x: np.ndarray) -> np.ndarray:
 
 def _site_key(cap: LayerCapture) -> tuple[str, int]:
     return (cap.site.stack, cap.site.layer)
+
+
+@functools.lru_cache(maxsize=8)
+def _band_index(T: int, N: int) -> tuple[torch.Tensor, torch.Tensor]:
+    i = torch.arange(T)[:, None]
+    j = i - torch.arange(-N, N + 1)[None, :]
+    ok = (j >= 0) & (j < T)
+    return (i * T + j.clamp(0, T - 1)).reshape(-1), ok.to(torch.float32)
+
+
+def band(x: torch.Tensor, N: int) -> torch.Tensor:
+    """The diagonals |δ| ≤ N of a float (n, T, T) tensor as (n, T, 2N+1): ``out[:, i, N + d] = x[:, i, i − d]``,
+    zero where key i − d is outside the text. One gather of (2N+1)·T elements per head."""
+    n, T, _ = x.shape
+    idx, ok = _band_index(T, N)
+    return x.reshape(n, T * T).index_select(1, idx).view(n, T, 2 * N + 1) * ok.to(x.dtype)
+
+
+def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, near3: torch.Tensor) -> torch.Tensor:
+    """Σ over ordinary queries i with |i − j| ≥ 2 of x[:, i, j], per key j: all ordinary rows (one matrix-vector
+    product) minus the three diagonals δ = −1, 0, 1 (``near3`` = band entries d = −1, 0, 1)."""
+    col = torch.matmul(ordf, x)                    # (n, T)
+    b = near3 * ordf[None, :, None]
+    col -= b[:, :, 1]                              # δ = 0: key j = i
+    col[:, :-1] -= b[:, 1:, 2]                     # δ = 1: key j = i − 1
+    col[:, 1:] -= b[:, :-1, 0]                     # δ = −1: key j = i + 1
+    return col
+
+
+# rows per block in row_entropy: a block of (heads, rows, T) float32 stays around this many bytes (cache-sized)
+_ENTROPY_BLOCK_BYTES = 4 * 2**20
+
+
+def row_entropy(w: torch.Tensor) -> torch.Tensor:
+    """Entropy −Σ_j w_ij log w_ij of every row of a (n, T, T) weight tensor (0·log 0 = 0), as (n, T)."""
+    return torch.special.entr(w).sum(-1)
+
+
+def diagonal_sums(x: torch.Tensor, lower: bool = False) -> torch.Tensor:
+    """Sums along every diagonal of (n, T, T): ``out[:, δ + T − 1] = Σ_i x[:, i, i − δ]``, in one read of x.
+
+    Laid out in rows of T + 1 elements, the first T² − 1 elements of a T × T matrix form a (T − 1, T + 1) array
+    (a strided view, no copy) whose column k holds diagonal δ = −k in rows i < T − k and diagonal δ = T + 1 − k in
+    the rows below; the last element (δ = 0) is added on its own. ``lower=True`` says x is zero above the main
+    diagonal (causal): then each column holds one diagonal and a single column sum gives them all. Otherwise the
+    column sums are taken over blocks of rows, split at the boundary.
+    """
+    n, T, _ = x.shape
+    x = x.contiguous()
+    out = x.new_zeros(n, 2 * T - 1)
+    out[:, T - 1] = x[:, T - 1, T - 1]
+    if T == 1:
+        return out
+    v = x.as_strided((n, T - 1, T + 1), (T * T, T + 1, 1), x.storage_offset())
+    if lower:
+        cols = v.sum(1)                            # column 0: δ = 0; column k ≥ 2: δ = T + 1 − k
+        out[:, T - 1] += cols[:, 0]
+        out[:, T:] = cols[:, 2:].flip(-1)
+        return out
+    step = max(1, min(T - 1, 512))
+    for r0 in range(0, T - 1, step):
+        r1 = min(T - 1, r0 + step)
+        # columns k ≤ T − r1: every row of the block is above the boundary → δ = −k (out index T − 1 − k)
+        out[:, r1 - 1:T] += v[:, r0:r1, :T - r1 + 1].sum(1).flip(-1)
+        # columns k ≥ T − r0: every row is below → δ = T + 1 − k (out index 2T − k)
+        out[:, T:T + r0 + 1] += v[:, r0:r1, T - r0:].sum(1).flip(-1)
+        # columns in between: split row by row
+        k = torch.arange(T - r1 + 1, T - r0)
+        if len(k):
+            part = v[:, r0:r1, T - r1 + 1:T - r0]
+            above = (torch.arange(r0, r1)[:, None] < (T - k)[None, :]).to(x.dtype)
+            up = (part * above).sum(1)
+            out[:, T - 1 - k] += up
+            out[:, 2 * T - k] += part.sum(1) - up
+    return out
 
 
 class _PerHead:
@@ -69,59 +145,51 @@ class WeightStats(Reducer):
 
     def update(self, cap: LayerCapture) -> None:
         o = cap.offset
-        w = cap.weights[:, o:, o:]
-        A = cap.allowed[o:, o:]
+        w, A = cap.weights, cap.allowed
         if o:  # renormalise over the text's own keys
+            w = w[:, o:, o:]
             w = w / w.sum(-1, keepdim=True).clamp_min(1e-30)
+            A = A[o:, o:]
         T = w.shape[-1]
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
         ordinary = torch.from_numpy(~cap.unit.special[:T])
-        first_chunk = (si, cap.text) not in self._counted
-        if first_chunk:
-            self._counted.add((si, cap.text))
-        idx = torch.arange(T)
-        # previous / next / self / first: gathers, averaged over ordinary queries that may see that key
-        for name, d in (("previous", -1), ("next", 1), ("self", 0)):
-            if abs(d) >= T:
-                continue
-            q = idx[max(0, -d): T - max(0, d)]
-            ok = ordinary[q] & A[q, q + d]
-            vals = torch.diagonal(w, offset=d, dim1=-2, dim2=-1)[:, ok]
-            self.mass[name][si, hs] += vals.sum(-1).double().numpy()
-            if first_chunk:
-                self.mass_n[name][si] += int(ok.sum())
-        okf = ordinary & A[:, 0]
-        if T > 1:
-            okf[0] = False  # the first token looking at itself is `self`, not `first`
-        self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
-        if first_chunk:
-            self.mass_n["first"][si] += int(okf.sum())
-        # entropy relative to log(number of allowed keys), queries with at least 4 keys
+        ordf = ordinary.to(w.dtype)
         n_allowed = A.sum(-1)
-        qe = ordinary & (n_allowed >= 4)
+        qe = ordinary & (n_allowed >= 4)           # entropy: queries with at least 4 keys
+        okf = ordinary & A[:, 0]                   # first: ordinary queries that see slot 0 …
+        if T > 1:
+            okf[0] = False                         # … except the first token looking at itself (that is `self`)
+        if (si, cap.text) not in self._counted:    # head-independent counts, once per layer and text
+            self._counted.add((si, cap.text))
+            self._count(si, A, ordf, qe, okf)
+        # mean weight by distance, |δ| ≤ NEAR, over ordinary queries (weights are 0 on disallowed pairs); the
+        # previous / next / self masses are its δ = 1, −1, 0 entries
+        nb = band(w, NEAR)                          # (n, T, 2·NEAR+1)
+        near = (nb * ordf[None, :, None]).sum(1).double().numpy()
+        self.near_w[si, hs] += near
+        for name, d in (("previous", 1), ("next", -1), ("self", 0)):
+            self.mass[name][si, hs] += near[:, NEAR + d]
+        self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
+        # entropy relative to log(number of allowed keys)
         if qe.any():
-            ent = torch.special.entr(w[:, qe]).sum(-1) / torch.log(n_allowed[qe].double()).float()
+            ent = row_entropy(w)[:, qe] / torch.log(n_allowed[qe].double()).float()
             self.ent[si, hs] += ent.sum(-1).double().numpy()
-            if first_chunk:
-                self.ent_n[si] += int(qe.sum())
         # weight per slot over queries at least two tokens away (so previous-token heads are not anchors)
-        far = A & ((idx[:, None] - idx[None, :]).abs() >= 2) & ordinary[:, None]
-        self.slot_w[si, hs, :T] += (w * far).sum(-2).double().numpy()
-        if first_chunk:
-            self.slot_n[si, :T] += far.sum(0).double().numpy()
-        # mean weight by distance, |δ| ≤ NEAR
-        for d in range(-NEAR, NEAR + 1):
-            if abs(d) >= T:
-                continue
-            q = idx[max(0, d): T - max(0, -d)]
-            ok = ordinary[q] & A[q, q - d]
-            if not ok.any():
-                continue
-            vals = torch.diagonal(w, offset=-d, dim1=-2, dim2=-1)[:, ok]
-            self.near_w[si, hs, d + NEAR] += vals.sum(-1).double().numpy()
-            if first_chunk:
-                self.near_n[si, d + NEAR] += int(ok.sum())
+        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb[:, :, NEAR - 1:NEAR + 2]).double().numpy()
+
+    def _count(self, si: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor, okf: torch.Tensor) -> None:
+        """How many (ordinary query, allowed key) pairs enter each mean: the same sums as above, over the mask."""
+        T = A.shape[-1]
+        Af = A.to(ordf.dtype)[None]
+        nb = band(Af, NEAR)
+        near_n = (nb * ordf[None, :, None]).sum(1)[0].double().numpy()
+        self.near_n[si] += near_n
+        for name, d in (("previous", 1), ("next", -1), ("self", 0)):
+            self.mass_n[name][si] += near_n[NEAR + d]
+        self.mass_n["first"][si] += int(okf.sum())
+        self.ent_n[si] += int(qe.sum())
+        self.slot_n[si, :T] += _far_column_sums(Af, ordf, nb[:, :, NEAR - 1:NEAR + 2])[0].double().numpy()
 
     def result(self) -> dict:
         div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
@@ -206,46 +274,78 @@ class Design:
         return reps
 
 
-def _skew_sums(x: torch.Tensor) -> torch.Tensor:
-    """Sums along every diagonal of (n, T, T): out[:, δ + T − 1] = Σ_i x[:, i, i − δ]."""
-    n, T, _ = x.shape
-    flipped = x.flip(-1)
-    padded = torch.nn.functional.pad(flipped, (0, T))
-    skew = padded.reshape(n, 2 * T * T)[:, : T * (2 * T - 1)].reshape(n, T, 2 * T - 1)
-    return skew.sum(1)
+def _ranges(buckets: np.ndarray) -> list[tuple[int, int, int]]:
+    """(bucket, first, last) for a non-decreasing bucket array over 0, 1, 2, …: each bucket is one run."""
+    starts = np.flatnonzero(np.r_[True, buckets[1:] != buckets[:-1]])
+    ends = np.r_[starts[1:] - 1, len(buckets) - 1]
+    return [(int(buckets[a]), int(a), int(e)) for a, e in zip(starts, ends)]
 
 
-def gram_for(design: Design, unit: TextUnit, allowed: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Head-independent within-row Gram matrix X_wᵀX_w of one text, and the pair count per distance bucket."""
-    A = allowed.astype(np.float64)
+def _count_between(prefix: np.ndarray, lo: np.ndarray, hi: np.ndarray, axis: int) -> np.ndarray:
+    """Allowed pairs with index in [lo, hi] along ``axis`` (per row or column), from a prefix count with a leading
+    zero (``prefix[…, k]`` = allowed among indices < k). Empty ranges count 0."""
+    n = prefix.shape[axis] - 1
+    a = np.clip(lo, 0, n)
+    b = np.clip(hi + 1, 0, n)
+    other = np.arange(len(lo))
+    if axis == 1:
+        c = prefix[other, b] - prefix[other, a]
+    else:
+        c = prefix[b, other] - prefix[a, other]
+    return np.where(b > a, c, 0).astype(np.float64)
+
+
+def gram_for(design: Design, unit: TextUnit, allowed: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Head-independent quantities of one mask pattern: the within-row Gram matrix X_wᵀX_w, the pair count per
+    distance bucket, and the per-row feature counts C (T, p) (row i: Σ_j A_ij x_ij, which turns raw score sums
+    into row-centred ones: X_wᵀ s = Xᵀ s₀ − Cᵀ m for row means m).
+
+    Every count is a difference of two prefix counts of the mask (the buckets are runs of consecutive distances or
+    slots), so nothing larger than the (T, T) mask's prefix counts is built.
+    """
+    A = np.asarray(allowed, dtype=bool)
     T = A.shape[0]
-    FD = design.delta_features(T)                 # (2T−1, pD)
-    FJ = design.key_features(unit, T)             # (T, pJ)
-    diag_n = _skew_sums(torch.from_numpy(A)[None])[0].numpy()   # pairs per δ
-    col_n = A.sum(0)
-    # skewed mask: M[δ, j] = A[j + δ, j]
-    i = np.arange(T)
-    Msk = np.zeros((2 * T - 1, T))
-    for_j = np.arange(T)
-    for dlt in range(-(T - 1), T):
-        ii = for_j + dlt
-        ok = (ii >= 0) & (ii < T)
-        Msk[dlt + T - 1, ok] = A[ii[ok], for_j[ok]]
+    idx = np.arange(T)
+    row_pre = np.zeros((T, T + 1), dtype=np.int32)     # row_pre[i, k]: allowed keys j < k of query i
+    np.cumsum(A, axis=1, dtype=np.int32, out=row_pre[:, 1:])
+    col_pre = np.zeros((T + 1, T), dtype=np.int32)     # col_pre[k, j]: allowed queries i < k of key j
+    for i in range(T):                                 # row by row: much faster than numpy's axis-0 cumsum
+        np.add(col_pre[i], A[i], out=col_pre[i + 1])
+    n_i = row_pre[:, T].astype(np.float64)
+    col_n = col_pre[T].astype(np.float64)
+    pD = design.n_dist + 1
+    row_d = np.zeros((T, pD))                          # Σ_j A_ij φ(i − j): distance features per query
+    col_d = np.zeros((T, pD))                          # Σ_i A_ij φ(i − j): distance features per key
+    for b, lo, hi in _ranges(design.dist_b[:T]):
+        # δ in [lo, hi] → keys j in [i − hi, i − lo] of query i, queries i in [j + lo, j + hi] of key j
+        row_d[:, b] += _count_between(row_pre, idx - hi, idx - lo, axis=1)
+        col_d[:, b] += _count_between(col_pre, idx + lo, idx + hi, axis=0)
+        lo_n = max(lo, 1)                              # δ < 0 (encoders): buckets n_pos + bucket(|δ|)
+        if lo_n <= hi:
+            row_d[:, design.n_pos + b] += _count_between(row_pre, idx + lo_n, idx + hi, axis=1)
+            col_d[:, design.n_pos + b] += _count_between(col_pre, idx - hi, idx - lo_n, axis=0)
+    # Σ_j A_ij j = Σ_k #{allowed j > k} = T·n_i − Σ_k row_pre[i, k + 1] (exact in integers); same for columns
+    key_sum = T * n_i - row_pre[:, 1:].sum(1, dtype=np.int64)
+    query_sum = T * col_n - col_pre[1:].sum(0, dtype=np.int64)
+    row_d[:, design.n_dist] = idx * n_i - key_sum      # Σ_j A_ij (i − j)
+    col_d[:, design.n_dist] = query_sum - idx * col_n  # Σ_i A_ij (i − j)
+    FJ = design.key_features(unit, T)                  # (T, pJ) one-hot slot bucket + key token
+    causal = bool(np.array_equal(n_i, idx + 1.0)) and not np.triu(A, 1).any()   # exactly lower-triangular
+    if causal:                                         # Σ_j A_ij FJ[j] = Σ_{j ≤ i} FJ[j]
+        row_j = np.cumsum(FJ, axis=0)
+    else:                                              # counts: exact in float32
+        row_j = (torch.from_numpy(A).to(torch.float32) @ torch.from_numpy(FJ).to(torch.float32)).double().numpy()
+    # pairs per δ, then the distance block of the Gram matrix
+    FD = design.delta_features(T)                      # (2T − 1, pD)
+    diag_n = diagonal_sums(torch.from_numpy(A).to(torch.float32)[None], lower=causal)[0].double().numpy()
     G_DD = FD.T @ (diag_n[:, None] * FD)
     G_JJ = FJ.T @ (col_n[:, None] * FJ)
-    G_DJ = FD.T @ Msk @ FJ
-    # row term: per row, counts of each feature
-    # row-skewed: R[i, δ + T − 1] = A[i, i − δ]
-    R = np.zeros((T, 2 * T - 1))
-    jj = i[:, None] - np.arange(-(T - 1), T)[None, :]
-    ok = (jj >= 0) & (jj < T)
-    R[ok] = A[np.broadcast_to(i[:, None], jj.shape)[ok], jj[ok]]
-    C = np.concatenate([R @ FD, A @ FJ], axis=1)   # (T, p)
-    n_i = A.sum(1)
+    G_DJ = col_d.T @ FJ
+    C = np.concatenate([row_d, row_j], axis=1)         # (T, p)
     keep = n_i > 0
-    C, n_i = C[keep], n_i[keep]
-    G = np.block([[G_DD, G_DJ], [G_DJ.T, G_JJ]]) - C.T @ (C / n_i[:, None])
-    return G, np.diag(G_DD)[: design.n_dist].copy()
+    Ck = C[keep]
+    G = np.block([[G_DD, G_DJ], [G_DJ.T, G_JJ]]) - Ck.T @ (Ck / n_i[keep][:, None])
+    return G, np.diag(G_DD)[: design.n_dist].copy(), C
 
 
 class SplitStats(Reducer):
@@ -266,46 +366,55 @@ class SplitStats(Reducer):
         self.ssw = np.zeros((n, S, H))
         self.gram_key = np.zeros((n, S), dtype=np.int64)   # which Gram (mask pattern) each text/site used
         self.grams: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+        self._rows: dict[tuple, tuple] = {}               # per pattern: row feature counts C, keys per row, causal
+        self._layer_gram: dict[tuple, tuple] = {}         # (text, site) → its pattern key
         self._fd: dict[int, torch.Tensor] = {}
         self._fj: dict[int, torch.Tensor] = {}
 
     def _features(self, cap: LayerCapture, T: int):
         fk = (cap.text, cap.site.stack)
         if fk not in self._fj:
-            self._fj = {fk: torch.from_numpy(self.design.key_features(cap.unit, T)).float()}
+            self._fj = {fk: torch.from_numpy(self.design.key_features(cap.unit, T))}
         if T not in self._fd:
-            self._fd = {T: torch.from_numpy(self.design.delta_features(T)).float()}
+            self._fd = {T: torch.from_numpy(self.design.delta_features(T))}
         return self._fd[T], self._fj[fk]
+
+    def _gram(self, cap: LayerCapture, si: int) -> tuple:
+        """The Gram entry of this layer's mask pattern (computed once per pattern; all layers of a plain causal or
+        encoder model share one per text)."""
+        at = (cap.text, si)
+        if cap.head0 == 0 or at not in self._layer_gram:
+            a = cap.allowed.numpy()
+            key = (cap.text, cap.site.stack, hash(np.packbits(a).tobytes()))
+            if key not in self.grams:
+                G, counts, C = gram_for(self.design, cap.unit, a)
+                causal = not np.triu(a, 1).any()
+                self.grams[key] = (G, counts)
+                self._rows[key] = (torch.from_numpy(C), torch.from_numpy(a.sum(1).astype(np.float64)), causal)
+            self.gram_key[cap.text, si] = list(self.grams).index(key)
+            self._layer_gram[at] = key
+        return self._rows[self._layer_gram[at]]
 
     def update(self, cap: LayerCapture) -> None:
         if cap.offset:
             raise ValueError("SplitStats runs on unshifted recordings only")
-        s, A = cap.scores, cap.allowed
-        T = s.shape[-1]
+        s0 = cap.zeroed_scores()                     # (n, T, T), 0 on disallowed pairs
+        T = s0.shape[-1]
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
-        Af = A.to(s.dtype)
-        n_i = Af.sum(-1).clamp_min(1.0)
-        s0 = torch.where(A, s, torch.zeros((), dtype=s.dtype))
-        rowmean = s0.sum(-1) / n_i
-        sc = torch.where(A, s0 - rowmean[..., None], torch.zeros((), dtype=s.dtype))
-        del s0
-        ssw = (sc * sc).sum((-1, -2))
-        col = sc.sum(-2)                         # (n, T)
-        diag = _skew_sums(sc)                    # (n, 2T−1)
-        del sc
+        C, n_i, causal = self._gram(cap, si)
+        # raw sums over the allowed pairs, one read of the chunk each, accumulated further in float64
+        rows = s0.sum(-1).double()                   # Σ_j s_ij
+        sq = torch.linalg.vector_norm(s0, dim=-1).double() ** 2     # Σ_j s_ij²
+        col = s0.sum(-2).double()                    # Σ_i s_ij
+        diag = diagonal_sums(s0, lower=causal).double()             # Σ_i s_i,i−δ
+        # row-centred: with row means m, Σ (s − m)² = Σ s² − n·m² per row, and X_wᵀ s = Xᵀ s₀ − Cᵀ m
+        m = rows / n_i.clamp_min(1.0)
+        ssw = (sq - rows * m).sum(-1)
         FD, FJ = self._features(cap, T)
-        b = torch.cat([diag @ FD, col @ FJ], dim=-1)
-        self.b[cap.text, si, hs] = b.double().numpy()
-        self.ssw[cap.text, si, hs] = ssw.double().numpy()
-        if cap.head0 == 0:
-            # mask pattern → Gram (cached; all layers of a plain causal/encoder model share one per text)
-            a = A.numpy()
-            key = (cap.text, cap.site.stack, hash(np.packbits(a).tobytes()))
-            if key not in self.grams:
-                self.grams[key] = gram_for(self.design, cap.unit, a)
-            gi = list(self.grams).index(key)
-            self.gram_key[cap.text, si] = gi
+        b = torch.cat([diag @ FD, col @ FJ], dim=-1) - m @ C
+        self.b[cap.text, si, hs] = b.numpy()
+        self.ssw[cap.text, si, hs] = ssw.numpy()
 
     def result(self) -> dict:
         grams = list(self.grams.values())

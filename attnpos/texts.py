@@ -65,7 +65,11 @@ def default_texts() -> list[RawText]:
 
 
 def _decode(path: Path) -> str:
-    data = path.read_bytes()
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise AttnposError(f"Cannot read {path} ({exc.strerror or exc}). Check that the file exists and is readable "
+                           "by you, then try again.") from None
     if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
         raise AttnposError(f"{path} is UTF-16 text (it starts with a UTF-16 byte-order mark); attnpos reads UTF-8. "
                            "Convert it, e.g. `iconv -f utf-16 -t utf-8 in.txt > out.txt`.")

@@ -255,3 +255,19 @@ def test_folder_of_texts_is_read_in_name_order(tmp_path, gpt2):
     (d / "skip.csv").write_text("x,y", encoding="utf-8")
     raw = texts.read([d])
     assert [r.name for r in raw] == ["a", "b"] and raw[0].text == FERRY
+
+
+def test_unreadable_text_file_is_reported(tmp_path, gpt2_dir, cli, monkeypatch):
+    # permissions cannot be used to provoke this when tests run as root, so the read itself fails
+    f = tmp_path / "locked.txt"
+    f.write_text(FERRY, encoding="utf-8")
+    real = type(f).read_bytes
+
+    def denied(self):
+        if self.name == "locked.txt":
+            raise PermissionError(13, "Permission denied")
+        return real(self)
+
+    monkeypatch.setattr(type(f), "read_bytes", denied)
+    code, _, err = cli("scan", gpt2_dir, "--text", f, *FAST)
+    assert_clean_error(code, err, "locked.txt", "permission denied", "readable")

@@ -120,26 +120,50 @@ def print_table(scan, out=None) -> None:
     print("note: " + scan.caution, file=out)
 
 
+def check_output(path: Path | None, flag: str) -> None:
+    """Refuse an output path that cannot be written before any work is done (a scan can take minutes)."""
+    if path is None:
+        return
+    if path.is_dir():
+        raise AttnposError(f"{path} is a folder; {flag} takes a file path (e.g. {path / 'attnpos-scan'}"
+                           f"{'.json' if flag == '--json' else '.html'}).")
+    folder = path.expanduser().absolute().parent
+    if not folder.is_dir():
+        raise AttnposError(f"The folder {folder} for {flag} does not exist. Create it first, or give a path in an "
+                           "existing folder.")
+
+
+def _write(what: str, path: Path, write) -> None:
+    try:
+        write()
+    except OSError as exc:
+        raise AttnposError(f"Could not write the {what} to {path} ({exc.strerror or exc}). Check free space and "
+                           "permissions, then try again.") from None
+
+
 def run(args) -> int:
     from .scan import scan as do_scan
 
+    check_output(args.json, "--json")
+    check_output(args.html, "--html")
+    findings = None
+    if args.html and args.findings:
+        from .findings import Findings
+
+        findings = Findings(args.findings)
+        findings.all()          # a corrupt findings file is reported (and backed up) before the scan, not after
     subject = load_subject(args)
     raw = read_texts(args)
     result = do_scan(subject, raw, max_tokens=args.max_tokens, n_boot=args.boot, shift=not args.no_shift,
                      induction=not args.no_induction)
     print_table(result)
     if args.json:
-        result.save(args.json)
+        _write("scan JSON", args.json, lambda: result.save(args.json))
         print(f"wrote {args.json}")
     if args.html:
         from .report import write_report
 
-        findings = None
-        if args.findings:
-            from .findings import Findings
-
-            findings = Findings(args.findings)
-        write_report(result, args.html, findings=findings)
+        _write("HTML report", args.html, lambda: write_report(result, args.html, findings=findings))
         print(f"wrote {args.html}")
     return 0
 

@@ -271,3 +271,19 @@ def test_unreadable_text_file_is_reported(tmp_path, gpt2_dir, cli, monkeypatch):
     monkeypatch.setattr(type(f), "read_bytes", denied)
     code, _, err = cli("scan", gpt2_dir, "--text", f, *FAST)
     assert_clean_error(code, err, "locked.txt", "permission denied", "readable")
+
+
+@pytest.mark.parametrize("flag", ["--json", "--html"])
+def test_output_into_a_missing_folder_is_refused_before_scanning(tmp_path, gpt2_dir, cli, monkeypatch, flag):
+    import sys
+
+    calls = []
+    scan_mod = sys.modules["attnpos.scan"]
+    monkeypatch.setattr(scan_mod, "scan", lambda *a, **k: calls.append(1))
+    f = tmp_path / "t.txt"
+    f.write_text(FERRY, encoding="utf-8")
+    code, _, err = cli("scan", gpt2_dir, "--text", f, flag, tmp_path / "not-made-yet" / "out.file", *FAST)
+    assert_clean_error(code, err, "not-made-yet", "does not exist", flag)
+    code, _, err = cli("scan", gpt2_dir, "--text", f, flag, tmp_path, *FAST)
+    assert_clean_error(code, err, "is a folder", flag)
+    assert not calls                                    # refused before any work was done

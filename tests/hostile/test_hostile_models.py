@@ -333,3 +333,10 @@ def test_bloom_config_set_to_sdpa_is_recorded_eagerly_and_put_back():
     for site, att in zip(s.sites, atts):
         _, w, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
         torch.testing.assert_close(w, att[0].float(), atol=1e-5, rtol=1e-4)
+
+
+def test_unknown_or_miscounted_scheme_is_refused(llama_dir, cli):
+    code, _, err = cli("scan", llama_dir, "--scheme", "spiral", "--boot", "0")
+    assert_clean_error(code, err, "unknown scheme", "spiral")
+    code, _, err = cli("scan", llama_dir, "--scheme", "rope,none,rope", "--boot", "0")
+    assert_clean_error(code, err, "3 names", "2 attention layers")

@@ -75,43 +75,89 @@ def row_entropy(w: torch.Tensor) -> torch.Tensor:
     return torch.special.entr(w).sum(-1)
 
 
-def diagonal_sums(x: torch.Tensor, lower: bool = False) -> torch.Tensor:
-    """Sums along every diagonal of (n, T, T): ``out[:, δ + T − 1] = Σ_i x[:, i, i − δ]``, in one read of x.
+def _skew_accumulate(v: torch.Tensor, a: int, T: int, out: torch.Tensor, lower: bool) -> None:
+    """Add to ``out`` (n, 2T) the diagonal sums held by skew rows a … a + rows − 1 (``v``: (n, rows, T + 1)).
 
-    Laid out in rows of T + 1 elements, the first T² − 1 elements of a T × T matrix form a (T − 1, T + 1) array
-    (a strided view, no copy) whose column k holds diagonal δ = −k in rows i < T − k and diagonal δ = T + 1 − k in
-    the rows below; the last element (δ = 0) is added on its own. ``lower=True`` says x is zero above the main
-    diagonal (causal): then each column holds one diagonal and a single column sum gives them all. Otherwise the
-    column sums are taken over blocks of rows, split at the boundary.
+    Skew row i is a T × T matrix's elements (i, i), (i, i + 1), …, (i, T − 1), (i + 1, 0), …, (i + 1, i): in a
+    contiguous matrix, rows of T + 1 elements starting at (i, i). Column k holds diagonal δ = −k in rows i < T − k
+    and δ = T + 1 − k in the rows below (``out[:, δ + T − 1]``; the spare last entry takes δ = T, always 0).
+    ``lower=True``: the matrix is zero above its diagonal, so each column holds one diagonal.
     """
-    n, T, _ = x.shape
-    x = x.contiguous()
-    out = x.new_zeros(n, 2 * T - 1)
-    out[:, T - 1] = x[:, T - 1, T - 1]
-    if T == 1:
-        return out
-    v = x.as_strided((n, T - 1, T + 1), (T * T, T + 1, 1), x.storage_offset())
+    r1 = a + v.shape[1]
     if lower:
         cols = v.sum(1)                            # column 0: δ = 0; column k ≥ 2: δ = T + 1 − k
         out[:, T - 1] += cols[:, 0]
-        out[:, T:] = cols[:, 2:].flip(-1)
-        return out
-    step = max(1, min(T - 1, 512))
-    for r0 in range(0, T - 1, step):
-        r1 = min(T - 1, r0 + step)
-        # columns k ≤ T − r1: every row of the block is above the boundary → δ = −k (out index T − 1 − k)
-        out[:, r1 - 1:T] += v[:, r0:r1, :T - r1 + 1].sum(1).flip(-1)
-        # columns k ≥ T − r0: every row is below → δ = T + 1 − k (out index 2T − k)
-        out[:, T:T + r0 + 1] += v[:, r0:r1, T - r0:].sum(1).flip(-1)
-        # columns in between: split row by row
-        k = torch.arange(T - r1 + 1, T - r0)
-        if len(k):
-            part = v[:, r0:r1, T - r1 + 1:T - r0]
-            above = (torch.arange(r0, r1)[:, None] < (T - k)[None, :]).to(x.dtype)
-            up = (part * above).sum(1)
-            out[:, T - 1 - k] += up
-            out[:, 2 * T - k] += part.sum(1) - up
-    return out
+        out[:, T:2 * T - 1] += cols[:, 2:].flip(-1)
+        return
+    # columns k ≤ T − r1: every row is above the boundary → δ = −k (out index T − 1 − k)
+    out[:, r1 - 1:T] += v[:, :, :T - r1 + 1].sum(1).flip(-1)
+    # columns k ≥ T − a: every row is below → δ = T + 1 − k (out index 2T − k)
+    out[:, T:T + a + 1] += v[:, :, T - a:].sum(1).flip(-1)
+    # columns in between: split row by row
+    k = torch.arange(T - r1 + 1, T - a)
+    if len(k):
+        part = v[:, :, T - r1 + 1:T - a]
+        above = (torch.arange(a, r1)[:, None] < (T - k)[None, :]).to(v.dtype)
+        up = (part * above).sum(1)
+        out[:, T - 1 - k] += up
+        out[:, 2 * T - k] += part.sum(1) - up
+
+
+def diagonal_sums(x: torch.Tensor, lower: bool = False) -> torch.Tensor:
+    """Sums along every diagonal of (n, T, T): ``out[:, δ + T − 1] = Σ_i x[:, i, i − δ]``, in one read of x.
+
+    Laid out in rows of T + 1 elements, the first T² − 1 elements of a T × T matrix are its skew rows 0 … T − 2
+    (a strided view, no copy; see :func:`_skew_accumulate`); the last element (δ = 0) is added on its own.
+    ``lower=True`` says x is zero above the main diagonal (causal).
+    """
+    n, T, _ = x.shape
+    x = x.contiguous()
+    out = x.new_zeros(n, 2 * T)
+    out[:, T - 1] = x[:, T - 1, T - 1]
+    if T > 1:
+        v = x.as_strided((n, T - 1, T + 1), (T * T, T + 1, 1), x.storage_offset())
+        step = T - 1 if lower else 512
+        for a in range(0, T - 1, step):
+            _skew_accumulate(v[:, a:a + step], a, T, out, lower)
+    return out[:, :2 * T - 1]
+
+
+# the fast path of centred_sums holds while Σ n·m² (row means) ≤ this × Σ (s − m)² (spread) for every head: float32
+# sums of the raw scores then lose at most about this factor × float32's 6e-8 (≲ 1e-5) to the row constants
+ROW_CONSTANT_RATIO = 64.0
+
+
+def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, lower: bool, rows_c: torch.Tensor,
+                 scratch: torch.Tensor | None = None):
+    """Sums of the row-centred scores over the allowed pairs, per head.
+
+    With m_i the mean of row i over its allowed keys and c_ij = s_ij − m_i on allowed pairs (0 elsewhere), returns
+    float64 ``ssw`` (n,) = Σ c², and ``b`` (n, p) = Σ_ij c_ij x_ij for the split's features, in the form
+    (``diag`` (n, 2T − 1) = Σ_i c_i,i−δ, ``col`` (n, T) = Σ_i c_ij).
+
+    Fast path (row means small against the spread, the usual case): sums of the zeroed scores ``s0`` themselves,
+    one read each, centred afterwards in float64 — Σ c² = Σ s² − n·m² per row, and the per-row feature counts
+    ``rows_c`` (T, p) turn raw feature sums into centred ones (Xᵀc = Xᵀs − Cᵀm). Where a head's row constants
+    are large (ALiBi's −m·i, log-weights, an offset key bias), float32 sums of raw scores would lose the spread, so
+    the scores are centred first into ``scratch`` and summed from there.
+    """
+    n, T, _ = s0.shape
+    n_i = allowed.sum(-1).to(torch.float64)
+    rows = s0.sum(-1).double()
+    m = rows / n_i.clamp_min(1.0)
+    sq = torch.linalg.vector_norm(s0, dim=-1).double() ** 2
+    ssw = (sq - rows * m).sum(-1)
+    if bool(((rows * m).sum(-1) <= ROW_CONSTANT_RATIO * ssw).all()):
+        col = s0.sum(-2).double()
+        diag = diagonal_sums(s0, lower).double()
+        return ssw, (diag, col), m @ rows_c
+    c = torch.sub(s0, m.float()[..., None], out=scratch)
+    if lower:
+        c.tril_()
+    elif not bool(allowed.all()):
+        c.masked_fill_(~allowed, 0.0)
+    ssw = torch.linalg.vector_norm(c, dim=(-2, -1)).double() ** 2
+    return ssw, (diagonal_sums(c, lower).double(), c.sum(-2).double()), None
 
 
 class _PerHead:
@@ -296,9 +342,9 @@ def _count_between(prefix: np.ndarray, lo: np.ndarray, hi: np.ndarray, axis: int
 
 
 def gram_for(design: Design, unit: TextUnit, allowed: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Head-independent quantities of one mask pattern: the within-row Gram matrix X_wᵀX_w, the pair count per
-    distance bucket, and the per-row feature counts C (T, p) (row i: Σ_j A_ij x_ij, which turns raw score sums
-    into row-centred ones: X_wᵀ s = Xᵀ s₀ − Cᵀ m for row means m).
+    """Head-independent quantities of one text (mask pattern): the within-row Gram matrix X_wᵀX_w, the pair count
+    per distance bucket, and the per-row feature counts C (T, p) (row i: Σ_j A_ij x_ij); X_wᵀX_w = XᵀX − Σ_i
+    C_iᵀC_i / n_i.
 
     Every count is a difference of two prefix counts of the mask (the buckets are runs of consecutive distances or
     slots), so nothing larger than the (T, T) mask's prefix counts is built.
@@ -366,7 +412,8 @@ class SplitStats(Reducer):
         self.ssw = np.zeros((n, S, H))
         self.gram_key = np.zeros((n, S), dtype=np.int64)   # which Gram (mask pattern) each text/site used
         self.grams: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
-        self._rows: dict[tuple, tuple] = {}               # per pattern: row feature counts C, keys per row, causal
+        self._rows: dict[tuple, tuple] = {}               # per pattern: exactly causal?, per-row feature counts
+        self._scratch: torch.Tensor | None = None         # centred scores, when row constants are large
         self._layer_gram: dict[tuple, tuple] = {}         # (text, site) → its pattern key
         self._fd: dict[int, torch.Tensor] = {}
         self._fj: dict[int, torch.Tensor] = {}
@@ -379,18 +426,18 @@ class SplitStats(Reducer):
             self._fd = {T: torch.from_numpy(self.design.delta_features(T))}
         return self._fd[T], self._fj[fk]
 
-    def _gram(self, cap: LayerCapture, si: int) -> tuple:
-        """The Gram entry of this layer's mask pattern (computed once per pattern; all layers of a plain causal or
-        encoder model share one per text)."""
+    def _pattern(self, cap: LayerCapture, si: int) -> tuple[bool, torch.Tensor]:
+        """Record which Gram matrix (mask pattern) this layer uses — computed once per pattern; all layers of a
+        plain causal or encoder model share one per text. Returns whether the mask is exactly causal and the
+        pattern's per-row feature counts."""
         at = (cap.text, si)
         if cap.head0 == 0 or at not in self._layer_gram:
             a = cap.allowed.numpy()
             key = (cap.text, cap.site.stack, hash(np.packbits(a).tobytes()))
             if key not in self.grams:
                 G, counts, C = gram_for(self.design, cap.unit, a)
-                causal = not np.triu(a, 1).any()
                 self.grams[key] = (G, counts)
-                self._rows[key] = (torch.from_numpy(C), torch.from_numpy(a.sum(1).astype(np.float64)), causal)
+                self._rows[key] = (bool(np.array_equal(a, np.tri(*a.shape, dtype=bool))), torch.from_numpy(C))
             self.gram_key[cap.text, si] = list(self.grams).index(key)
             self._layer_gram[at] = key
         return self._rows[self._layer_gram[at]]
@@ -398,25 +445,24 @@ class SplitStats(Reducer):
     def update(self, cap: LayerCapture) -> None:
         if cap.offset:
             raise ValueError("SplitStats runs on unshifted recordings only")
-        s0 = cap.zeroed_scores()                     # (n, T, T), 0 on disallowed pairs
-        T = s0.shape[-1]
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
-        C, n_i, causal = self._gram(cap, si)
-        # raw sums over the allowed pairs, one read of the chunk each, accumulated further in float64
-        rows = s0.sum(-1).double()                   # Σ_j s_ij
-        sq = torch.linalg.vector_norm(s0, dim=-1).double() ** 2     # Σ_j s_ij²
-        col = s0.sum(-2).double()                    # Σ_i s_ij
-        diag = diagonal_sums(s0, lower=causal).double()             # Σ_i s_i,i−δ
-        # row-centred: with row means m, Σ (s − m)² = Σ s² − n·m² per row, and X_wᵀ s = Xᵀ s₀ − Cᵀ m
-        m = rows / n_i.clamp_min(1.0)
-        ssw = (sq - rows * m).sum(-1)
-        FD, FJ = self._features(cap, T)
-        b = torch.cat([diag @ FD, col @ FJ], dim=-1) - m @ C
+        lower, rows_c = self._pattern(cap, si)
+        s0 = cap.zeroed_scores()                     # (n, T, T), 0 on disallowed pairs
+        if self._scratch is None or self._scratch.numel() < s0.numel():
+            self._scratch = torch.empty(s0.numel(), dtype=s0.dtype)
+        ssw, (diag, col), correction = centred_sums(s0, cap.allowed, lower, rows_c,
+                                                    self._scratch[:s0.numel()].view(s0.shape))
+        FD, FJ = self._features(cap, s0.shape[-1])
+        b = torch.cat([diag @ FD, col @ FJ], dim=-1)
+        if correction is not None:
+            b -= correction
         self.b[cap.text, si, hs] = b.numpy()
         self.ssw[cap.text, si, hs] = ssw.numpy()
 
     def result(self) -> dict:
+        self._scratch = None
+        self._rows.clear()
         grams = list(self.grams.values())
         return {"keys": self.ph.keys, "design": self.design, "b": self.b, "ssw": self.ssw,
                 "gram_key": self.gram_key, "grams": [g for g, _ in grams], "dist_counts": [n for _, n in grams]}

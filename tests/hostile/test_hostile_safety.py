@@ -192,7 +192,8 @@ def hostile_scan(tmp_path_factory):
     model.resize_token_embeddings(len(tok))
     d = save_checkpoint(model, root / "\"><img src=x onerror=alert(2)>", tokenizer=tok)
     f = root / "<b onmouseover=alert(4)>\x1b[31m.txt"
-    f.write_text(" ".join(HOSTILE_TOKENS) + " the ferry " + " ".join(HOSTILE_TOKENS), encoding="utf-8")
+    # short enough that every slot is among a card's top keys: [CLS] + three hostile tokens + ferry + [SEP]
+    f.write_text(" ".join(HOSTILE_TOKENS) + " ferry", encoding="utf-8")
     s = attnpos.load(d)
     scan = attnpos.scan(s, [f], n_boot=0, shift=False, induction=False)
     assert {t for t in HOSTILE_TOKENS} <= set(scan.tokens[0])      # the tokens really are these strings
@@ -229,7 +230,7 @@ def test_widget_static_html_escapes_hostile_tokens(hostile_scan, tmp_path):
         assert_inert(html)
     card = htmls["card"]
     assert "&lt;script&gt;alert(1)&lt;/script&gt;" in card                  # a hostile top-key token, as text
-    assert "\\x1b[2J" in card or "\\x1b" in card                            # a control character made visible
+    assert "\\x1b[2J\\x00\\x07&lt;script&gt;x" in card                     # control characters made visible
     assert "&lt;script&gt;alert(7)&lt;/script&gt;" in htmls["panel"]
 
 
@@ -264,7 +265,7 @@ def test_findings_write_is_atomic_when_the_rename_fails(tmp_path, monkeypatch):
         store.add("L0.H2", "second note")
     monkeypatch.undo()
     assert path.read_bytes() == before
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.json", "notes.json.lock"]   # no temp file left
+    assert not [p for p in tmp_path.iterdir() if p.name.endswith(".tmp")]        # no temp file left
     assert [f.body for f in store.all()] == ["first note"]
 
 

@@ -41,7 +41,7 @@ from itertools import combinations
 
 import numpy as np
 
-from .reducers import Design
+from .reducers import Design, blas_one_thread
 
 PARTS = ("distance", "slot", "content", "residual")
 _GROUPS = ("distance", "slot", "content")
@@ -188,6 +188,10 @@ class Split:
 
     def fit(self, recording) -> SplitFit:
         res = recording.results["split"] if hasattr(recording, "results") else recording
+        with blas_one_thread():
+            return self._fit(res)
+
+    def _fit(self, res: dict) -> SplitFit:
         n = res["b"].shape[0]
         shares, prof, slope = self._fit_weights(res, np.ones(n))
         lo = lambda a: np.full_like(a, np.nan)  # noqa: E731
@@ -196,9 +200,13 @@ class Split:
         if self.n_boot > 0 and n >= 2:
             rng = np.random.default_rng(self.seed)
             bs = {"shares": [], "profile": [], "slope": []}
+            seen: dict[bytes, tuple] = {}        # a resample drawn again (likely with few texts) is not refitted
             for _ in range(self.n_boot):
                 w = np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
-                s_, p_, l_ = self._fit_weights(res, w)
+                key = w.tobytes()
+                if key not in seen:
+                    seen[key] = self._fit_weights(res, w)
+                s_, p_, l_ = seen[key]
                 bs["shares"].append(s_)
                 bs["profile"].append(p_)
                 bs["slope"].append(l_)

@@ -146,6 +146,19 @@ class _Run:
         self.score_maps: dict = {}
         self.nonfinite: set = set()
         self._buffers: dict[str, torch.Tensor] = {}
+        self._masks: dict[tuple, tuple] = {}
+
+    def mask_facts(self, attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
+        """:func:`_mask_facts`, once per mask: transformers hands every layer of a forward the same mask tensor, so
+        its layers share one ``allowed`` tensor (reducers may cache what they derive from it). The entry keeps a
+        reference to the mask, so the identity test cannot match a different tensor at a reused address."""
+        key = (id(attention_mask), q_len, k_len, causal)
+        hit = self._masks.get(key)
+        if hit is None or hit[0] is not attention_mask:
+            if len(self._masks) >= 8:
+                self._masks.clear()
+            hit = self._masks[key] = (attention_mask, _mask_facts(attention_mask, q_len, k_len, causal))
+        return hit[1]
 
     def buffer(self, name: str, shape: tuple[int, ...]) -> torch.Tensor:
         """A float32 work tensor of ``shape``, reused across chunks, layers and texts of this run (fresh pages for
@@ -225,15 +238,23 @@ def _allowed_from_mask(attention_mask, q_len: int, k_len: int, causal: bool) -> 
     return m > torch.finfo(m.dtype).min / 2
 
 
-def _mask_pattern(allowed: torch.Tensor) -> str:
-    """How the disallowed pairs lie: ``"none"`` (all allowed), ``"causal"`` (exactly above the diagonal, aligned
-    at the end of the keys) or ``"general"`` — the first two are zeroed without reading a mask."""
-    q_len, k_len = allowed.shape
+def _mask_facts(attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
+    """What the capture needs to know about a mask: ``allowed`` (q_len, k_len); how the disallowed pairs lie —
+    ``"none"`` (all allowed), ``"causal"`` (exactly above the diagonal, aligned at the end of the keys; zeroed
+    without reading a mask) or ``"general"``; whether some row allows no key; and whether a float mask holds
+    values other than 0 on allowed pairs (e.g. a bias folded into the mask), which are then part of the scores."""
+    allowed = _allowed_from_mask(attention_mask, q_len, k_len, causal if attention_mask is None else False)
     if bool(allowed.all()):
-        return "none"
-    if torch.equal(allowed, torch.ones(q_len, k_len, dtype=torch.bool).tril(k_len - q_len)):
-        return "causal"
-    return "general"
+        pattern = "none"
+    elif torch.equal(allowed, torch.ones(q_len, k_len, dtype=torch.bool).tril(k_len - q_len)):
+        pattern = "causal"
+    else:
+        pattern = "general"
+    empty_rows = not bool(allowed.any(-1).all())
+    has_values = False
+    if attention_mask is not None and attention_mask.dtype != torch.bool:
+        has_values = bool((attention_mask[..., :k_len].masked_fill(~allowed, 0) != 0).any())
+    return allowed, pattern, empty_rows, has_values
 
 
 def _capture_attention(module, query, key, value, attention_mask, scaling=None, dropout=0.0, **kwargs):
@@ -258,16 +279,9 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
     bias = kwargs.get("position_bias")
     softcap = kwargs.get("softcap")
     causal = site.causal if site is not None else bool(getattr(module, "is_causal", False))
-    allowed = _allowed_from_mask(attention_mask, q_len, k_len, causal if attention_mask is None else False)
-    pattern = _mask_pattern(allowed)
-    # a float mask's values on allowed pairs (0 for a plain causal/padding mask; e.g. a bias folded into the mask
-    # otherwise) are part of the scores
-    mask_add = None
-    if attention_mask is not None and attention_mask.dtype != torch.bool:
-        am = attention_mask[..., :k_len]
-        if bool((am.masked_fill(~allowed, 0) != 0).any()):
-            mask_add = am
-    empty_rows = not bool(allowed.any(-1).all())
+    facts = (run.mask_facts if run is not None else _mask_facts)(attention_mask, q_len, k_len, causal)
+    allowed, pattern, empty_rows, has_values = facts
+    mask_add = attention_mask[..., :k_len] if has_values else None
     not_allowed = ~allowed if pattern == "general" else None
     per_head = q_len * k_len * 4
     chunk = max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1)))

@@ -79,13 +79,23 @@ def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, near3: torch.Tensor) -
     return col
 
 
-# rows per block in row_entropy: a block of (heads, rows, T) float32 stays around this many bytes (cache-sized)
-_ENTROPY_BLOCK_BYTES = 4 * 2**20
+def row_entropy(w: torch.Tensor, s0: torch.Tensor) -> torch.Tensor:
+    """Entropy −Σ_j w_ij log w_ij of every row of (n, T, T) weights (0·log 0 = 0), as (n, T), given the scores
+    ``s0`` (0 on disallowed pairs) that the weights are a softmax of.
 
-
-def row_entropy(w: torch.Tensor) -> torch.Tensor:
-    """Entropy −Σ_j w_ij log w_ij of every row of a (n, T, T) weight tensor (0·log 0 = 0), as (n, T)."""
-    return torch.special.entr(w).sum(-1)
+    On its allowed keys a row has log w_ij = s_ij − L_i, with L_i the row's log-normaliser, read off where the
+    row's weight is largest (L_i = s_ij* − log w_ij*, no underflow there). So H_i = L_i·Σ_j w_ij − Σ_j w_ij s_ij:
+    a max, a sum and a batched dot product per row instead of a logarithm per pair (the logarithms cost more than
+    the rest of the weight statistics together). Accurate to float32 resolution of the scores themselves.
+    """
+    n, T, _ = w.shape
+    top, j = w.max(-1)
+    L = s0.gather(-1, j[..., None])[..., 0].double() - torch.log(top.double())
+    if w.is_contiguous() and s0.is_contiguous():
+        dot = torch.bmm(w.view(n * T, 1, T), s0.view(n * T, T, 1)).view(n, T)
+    else:
+        dot = (w * s0).sum(-1)
+    return (L * w.sum(-1).double() - dot.double()).float()
 
 
 def _skew_accumulate(v: torch.Tensor, a: int, T: int, out: torch.Tensor, lower: bool) -> None:
@@ -140,13 +150,14 @@ def diagonal_sums(x: torch.Tensor, lower: bool = False) -> torch.Tensor:
 ROW_CONSTANT_RATIO = 64.0
 
 
-def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, lower: bool, rows_c: torch.Tensor,
+def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, kind: str, n_i: torch.Tensor, rows_c: torch.Tensor,
                  scratch: torch.Tensor | None = None):
     """Sums of the row-centred scores over the allowed pairs, per head.
 
     With m_i the mean of row i over its allowed keys and c_ij = s_ij − m_i on allowed pairs (0 elsewhere), returns
     float64 ``ssw`` (n,) = Σ c², and ``b`` (n, p) = Σ_ij c_ij x_ij for the split's features, in the form
-    (``diag`` (n, 2T − 1) = Σ_i c_i,i−δ, ``col`` (n, T) = Σ_i c_ij).
+    (``diag`` (n, 2T − 1) = Σ_i c_i,i−δ, ``col`` (n, T) = Σ_i c_ij). ``kind`` is the mask's layout (``"causal"``,
+    ``"none"`` disallowed, or ``"general"``), ``n_i`` (T,) its allowed keys per row (float64).
 
     Fast path (row means small against the spread, the usual case): sums of the zeroed scores ``s0`` themselves,
     one read each, centred afterwards in float64 — Σ c² = Σ s² − n·m² per row, and the per-row feature counts
@@ -154,8 +165,7 @@ def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, lower: bool, rows_c: t
     are large (ALiBi's −m·i, log-weights, an offset key bias), float32 sums of raw scores would lose the spread, so
     the scores are centred first into ``scratch`` and summed from there.
     """
-    n, T, _ = s0.shape
-    n_i = allowed.sum(-1).to(torch.float64)
+    lower = kind == "causal"
     rows = s0.sum(-1).double()
     m = rows / n_i.clamp_min(1.0)
     sq = torch.linalg.vector_norm(s0, dim=-1).double() ** 2
@@ -167,7 +177,7 @@ def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, lower: bool, rows_c: t
     c = torch.sub(s0, m.float()[..., None], out=scratch)
     if lower:
         c.tril_()
-    elif not bool(allowed.all()):
+    elif kind == "general":
         c.masked_fill_(~allowed, 0.0)
     ssw = torch.linalg.vector_norm(c, dim=(-2, -1)).double() ** 2
     return ssw, (diagonal_sums(c, lower).double(), c.sum(-2).double()), None
@@ -201,48 +211,60 @@ class WeightStats(Reducer):
         self.near_w = z(S, H, 2 * NEAR + 1)
         self.near_n = z(S, 2 * NEAR + 1)
         self._counted: set = set()
+        self._mask = None
 
     def update(self, cap: LayerCapture) -> None:
         o = cap.offset
-        w, A = cap.weights, cap.allowed
+        w, A, s0 = cap.weights, cap.allowed, cap.zeroed_scores()
         if o:  # renormalise over the text's own keys
             w = w[:, o:, o:]
             w = w / w.sum(-1, keepdim=True).clamp_min(1e-30)
-            A = A[o:, o:]
+            A, s0 = A[o:, o:], s0[:, o:, o:]
         T = w.shape[-1]
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
-        ordinary = torch.from_numpy(~cap.unit.special[:T])
-        ordf = ordinary.to(w.dtype)
-        n_allowed = A.sum(-1)
-        qe = ordinary & (n_allowed >= 4)           # entropy: queries with at least 4 keys
-        okf = ordinary & A[:, 0]                   # first: ordinary queries that see slot 0 …
-        if T > 1:
-            okf[0] = False                         # … except the first token looking at itself (that is `self`)
+        ordf, n_allowed, qe, okf = self._queries(cap, A)
         if (si, cap.text) not in self._counted:    # head-independent counts, once per layer and text
             self._counted.add((si, cap.text))
             self._count(si, A, ordf, qe, okf)
         # mean weight by distance, |δ| ≤ NEAR, over ordinary queries (weights are 0 on disallowed pairs); the
         # previous / next / self masses are its δ = 1, −1, 0 entries
         nb = band(w, NEAR)                          # (n, T, 2·NEAR+1)
-        near = (nb * ordf[None, :, None]).sum(1).double().numpy()
+        near = torch.matmul(ordf, nb).double().numpy()
         self.near_w[si, hs] += near
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
             self.mass[name][si, hs] += near[:, NEAR + d]
         self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
         # entropy relative to log(number of allowed keys)
         if qe.any():
-            ent = row_entropy(w)[:, qe] / torch.log(n_allowed[qe].double()).float()
+            ent = row_entropy(w, s0)[:, qe] / torch.log(n_allowed[qe].double()).float()
             self.ent[si, hs] += ent.sum(-1).double().numpy()
         # weight per slot over queries at least two tokens away (so previous-token heads are not anchors)
         self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb[:, :, NEAR - 1:NEAR + 2]).double().numpy()
+
+    def _queries(self, cap: LayerCapture, A: torch.Tensor) -> tuple:
+        """Which queries enter each statistic: ordinary ones (as 0/1 floats), the allowed keys per query, entropy
+        queries (≥ 4 keys), first-token queries. Kept while the capture hands over the same mask tensor (every
+        chunk and layer of a text); the reference held keeps the identity test sound."""
+        key = (cap.text, cap.site.stack, cap.offset)
+        hit = self._mask
+        if hit is None or hit[0] is not cap.allowed or hit[1] != key:
+            T = A.shape[-1]
+            ordinary = torch.from_numpy(~np.asarray(cap.unit.special[:T], dtype=bool))
+            n_allowed = A.sum(-1)
+            qe = ordinary & (n_allowed >= 4)       # entropy: queries with at least 4 keys
+            okf = ordinary & A[:, 0]               # first: ordinary queries that see slot 0 …
+            if T > 1:
+                okf[0] = False                     # … except the first token looking at itself (that is `self`)
+            hit = self._mask = (cap.allowed, key, (ordinary.to(torch.float32), n_allowed, qe, okf))
+        return hit[2]
 
     def _count(self, si: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor, okf: torch.Tensor) -> None:
         """How many (ordinary query, allowed key) pairs enter each mean: the same sums as above, over the mask."""
         T = A.shape[-1]
         Af = A.to(ordf.dtype)[None]
         nb = band(Af, NEAR)
-        near_n = (nb * ordf[None, :, None]).sum(1)[0].double().numpy()
+        near_n = torch.matmul(ordf, nb)[0].double().numpy()
         self.near_n[si] += near_n
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
             self.mass_n[name][si] += near_n[NEAR + d]
@@ -251,6 +273,7 @@ class WeightStats(Reducer):
         self.slot_n[si, :T] += _far_column_sums(Af, ordf, nb[:, :, NEAR - 1:NEAR + 2])[0].double().numpy()
 
     def result(self) -> dict:
+        self._mask = None
         div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
         mass = {k: div(self.mass[k], self.mass_n[k][:, None]) for k in self.mass}
         slot_mean = div(self.slot_w, self.slot_n[:, None, :])
@@ -430,7 +453,7 @@ class SplitStats(Reducer):
         self.ssw = np.zeros((n, S, H))
         self.gram_key = np.zeros((n, S), dtype=np.int64)   # which Gram (mask pattern) each text/site used
         self.grams: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
-        self._rows: dict[tuple, tuple] = {}               # per pattern: exactly causal?, per-row feature counts
+        self._rows: dict[tuple, tuple] = {}               # per pattern: layout, keys per row, row feature counts
         self._scratch: torch.Tensor | None = None         # centred scores, when row constants are large
         self._layer_gram: dict[tuple, tuple] = {}         # (text, site) → its pattern key
         self._fd: dict[int, torch.Tensor] = {}
@@ -444,10 +467,10 @@ class SplitStats(Reducer):
             self._fd = {T: torch.from_numpy(self.design.delta_features(T))}
         return self._fd[T], self._fj[fk]
 
-    def _pattern(self, cap: LayerCapture, si: int) -> tuple[bool, torch.Tensor]:
+    def _pattern(self, cap: LayerCapture, si: int) -> tuple[str, torch.Tensor, torch.Tensor]:
         """Record which Gram matrix (mask pattern) this layer uses — computed once per pattern; all layers of a
-        plain causal or encoder model share one per text. Returns whether the mask is exactly causal and the
-        pattern's per-row feature counts."""
+        plain causal or encoder model share one per text. Returns the mask's layout for :func:`centred_sums`, its
+        allowed keys per row and its per-row feature counts."""
         at = (cap.text, si)
         if cap.head0 == 0 or at not in self._layer_gram:
             a = cap.allowed.numpy()
@@ -455,7 +478,9 @@ class SplitStats(Reducer):
             if key not in self.grams:
                 G, counts, C = gram_for(self.design, cap.unit, a)
                 self.grams[key] = (G, counts)
-                self._rows[key] = (bool(np.array_equal(a, np.tri(*a.shape, dtype=bool))), torch.from_numpy(C))
+                kind = ("none" if a.all() else "causal" if np.array_equal(a, np.tri(*a.shape, dtype=bool))
+                        else "general")
+                self._rows[key] = (kind, torch.from_numpy(a.sum(1).astype(np.float64)), torch.from_numpy(C))
             self.gram_key[cap.text, si] = list(self.grams).index(key)
             self._layer_gram[at] = key
         return self._rows[self._layer_gram[at]]
@@ -465,11 +490,11 @@ class SplitStats(Reducer):
             raise ValueError("SplitStats runs on unshifted recordings only")
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
-        lower, rows_c = self._pattern(cap, si)
+        kind, n_i, rows_c = self._pattern(cap, si)
         s0 = cap.zeroed_scores()                     # (n, T, T), 0 on disallowed pairs
         if self._scratch is None or self._scratch.numel() < s0.numel():
             self._scratch = torch.empty(s0.numel(), dtype=s0.dtype)
-        ssw, (diag, col), correction = centred_sums(s0, cap.allowed, lower, rows_c,
+        ssw, (diag, col), correction = centred_sums(s0, cap.allowed, kind, n_i, rows_c,
                                                     self._scratch[:s0.numel()].view(s0.shape))
         FD, FJ = self._features(cap, s0.shape[-1])
         b = torch.cat([diag @ FD, col @ FJ], dim=-1)

@@ -35,7 +35,6 @@ Example::
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass
 from itertools import combinations
 
@@ -46,6 +45,24 @@ from .reducers import Design, blas_one_thread
 PARTS = ("distance", "slot", "content", "residual")
 _GROUPS = ("distance", "slot", "content")
 _SUBSETS = [frozenset(c) for r in (1, 2, 3) for c in combinations(range(3), r)]
+
+
+def _nan_percentiles(arr: np.ndarray, qs) -> list[np.ndarray]:
+    """``np.nanpercentile(arr, q, axis=0)`` (linear interpolation) for each q, vectorised: numpy falls back to a
+    per-element Python loop when NaNs are present, which took longer than the whole bootstrap. All-NaN → NaN."""
+    a = np.sort(arr, axis=0)                                # NaNs sort last
+    n = (~np.isnan(arr)).sum(0)
+    out = []
+    for q in qs:
+        pos = np.maximum(n - 1, 0) * (q / 100.0)
+        i0 = np.floor(pos).astype(np.int64)
+        i1 = np.minimum(i0 + 1, np.maximum(n - 1, 0))
+        v0 = np.take_along_axis(a, i0[None], 0)[0]
+        v1 = np.take_along_axis(a, i1[None], 0)[0]
+        with np.errstate(invalid="ignore"):
+            val = v0 + (pos - i0) * (v1 - v0)
+        out.append(np.where(n > 0, np.where(pos == i0, v0, val), np.nan))
+    return out
 
 
 def _pinv_solve(G: np.ndarray, B: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
@@ -212,10 +229,7 @@ class Split:
                 bs["slope"].append(l_)
             for k, stack in bs.items():
                 arr = np.stack(stack)
-                with np.errstate(all="ignore"), warnings.catch_warnings():
-                    warnings.simplefilter("ignore", RuntimeWarning)
-                    out[f"{k}_lo"] = np.nanpercentile(arr, 5, axis=0) if np.isfinite(arr).any() else lo(arr[0])
-                    out[f"{k}_hi"] = np.nanpercentile(arr, 95, axis=0) if np.isfinite(arr).any() else lo(arr[0])
+                out[f"{k}_lo"], out[f"{k}_hi"] = _nan_percentiles(arr, (5, 95))
         design: Design = res["design"]
         return SplitFit(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
                         n_texts=n, n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

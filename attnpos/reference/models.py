@@ -15,8 +15,8 @@ none               SmolLM3ForCausalLM           nowhere: every layer rope-free (
 =================  ===========================  ==================================================================
 
 Size: 4 layers, hidden 128, 4 heads of 32, feed-forward 512 (gated feed-forwards use 344 so their three matrices
-hold about as many weights as two of 512), tied input/output embeddings over the 259-token byte vocabulary,
-no dropout. Each model has about 0.8 M parameters.
+hold about as many weights as two of 512), tied input/output embeddings over the 259-token byte vocabulary
+(except ``sinusoidal``, see ``build_model``), no dropout. Each model has 0.82-0.93 M parameters.
 """
 
 from __future__ import annotations
@@ -34,6 +34,11 @@ SCHEMES = ("learned-absolute", "sinusoidal", "relative-bias", "alibi", "rope", "
 #: hard context limit for the schemes that have one (absolute tables); the others get the same nominal value
 CONTEXT_LIMIT = 512
 DEFAULT_CONTEXT = 128
+
+#: initial std of the sinusoidal model's token table, and the learning-rate multiplier the trainer gives it
+#: (0.5 / 0.02, GPT-2's initializer range: the same relative step size as a normally initialised table)
+SINUSOIDAL_TOKEN_STD = 0.5
+SINUSOIDAL_TOKEN_LR_SCALE = 25.0
 
 _COMMON_TOKENS = dict(vocab_size=VOCAB_SIZE, bos_token_id=BOS_ID, eos_token_id=EOS_ID, pad_token_id=PAD_ID)
 
@@ -80,7 +85,10 @@ def build_config(scheme: str, context: int = DEFAULT_CONTEXT, n_layers: int = 4,
 
         cfg = GPT2Config(
             n_positions=limit, n_embd=hidden, n_layer=n_layers, n_head=heads, n_inner=ff,
-            resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0, tie_word_embeddings=True,
+            resid_pdrop=0.0, embd_pdrop=0.0, attn_pdrop=0.0,
+            # sinusoidal: the token table must be on the scale of the fixed position table (see build_model),
+            # which a tied output head cannot share, so that one model keeps a separate head
+            tie_word_embeddings=(scheme == "learned-absolute"),
             use_cache=False, **_COMMON_TOKENS, **extra,
         )
     elif scheme == "relative-bias":
@@ -145,6 +153,12 @@ def build_model(scheme: str, context: int = DEFAULT_CONTEXT, seed: int = 0, n_la
     if scheme == "sinusoidal":
         with torch.no_grad():
             model.transformer.wpe.weight.copy_(sinusoidal_table(cfg.n_positions, cfg.n_embd))
+            # Vaswani et al. scale token embeddings by sqrt(d) so they are not drowned by the table (whose entries
+            # have variance 1/2); GPT-2 has no such multiplier, so the token table starts at that scale instead
+            # and the trainer gives it a matching learning-rate multiplier (SINUSOIDAL_TOKEN_LR_SCALE)
+            g = torch.Generator().manual_seed(int(seed) + 1)
+            model.transformer.wte.weight.copy_(
+                torch.randn(model.transformer.wte.weight.shape, generator=g) * SINUSOIDAL_TOKEN_STD)
         freeze_sinusoidal(model)
     model.to(torch.float32)
     model.eval()

@@ -19,6 +19,7 @@ import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer
+from .thresholds import ANCHOR_MIN_DISTANCE
 from .texts import TextUnit
 
 EXACT = 16          # distances / slots below this are their own bucket
@@ -68,14 +69,21 @@ def band(x: torch.Tensor, N: int) -> torch.Tensor:
     return x.reshape(n, T * T).index_select(1, idx).view(n, T, 2 * N + 1) * ok.to(x.dtype)
 
 
-def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, near3: torch.Tensor) -> torch.Tensor:
-    """Σ over ordinary queries i with |i − j| ≥ 2 of x[:, i, j], per key j: all ordinary rows (one matrix-vector
-    product) minus the three diagonals δ = −1, 0, 1 (``near3`` = band entries d = −1, 0, 1)."""
+def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, nb: torch.Tensor) -> torch.Tensor:
+    """Σ over ordinary queries i with |i − j| ≥ ANCHOR_MIN_DISTANCE of x[:, i, j], per key j: all ordinary rows
+    (one matrix-vector product) minus the diagonals |δ| < ANCHOR_MIN_DISTANCE, read from the band ``nb``
+    (``band(x, NEAR)``). Near queries are left out so that a head that looks a few tokens back is not mistaken
+    for one that looks at a fixed slot."""
+    T = x.shape[-1]
     col = torch.matmul(ordf, x)                    # (n, T)
-    b = near3 * ordf[None, :, None]
-    col -= b[:, :, 1]                              # δ = 0: key j = i
-    col[:, :-1] -= b[:, 1:, 2]                     # δ = 1: key j = i − 1
-    col[:, 1:] -= b[:, :-1, 0]                     # δ = −1: key j = i + 1
+    b = nb * ordf[None, :, None]
+    for d in range(-(ANCHOR_MIN_DISTANCE - 1), ANCHOR_MIN_DISTANCE):
+        if abs(d) >= T:
+            continue
+        if d >= 0:                                 # key j = i − d for queries i = d … T−1
+            col[:, :T - d] -= b[:, d:, NEAR + d]
+        else:                                      # key j = i + |d| for queries i = 0 … T−1−|d|
+            col[:, -d:] -= b[:, :T + d, NEAR + d]
     return col
 
 
@@ -239,8 +247,8 @@ class WeightStats(Reducer):
         if qe.any():
             ent = row_entropy(w, s0)[:, qe] / torch.log(n_allowed[qe].double()).float()
             self.ent[si, hs] += ent.sum(-1).double().numpy()
-        # weight per slot over queries at least two tokens away (so previous-token heads are not anchors)
-        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb[:, :, NEAR - 1:NEAR + 2]).double().numpy()
+        # weight per slot over queries at least ANCHOR_MIN_DISTANCE tokens away (local heads are not anchors)
+        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb).double().numpy()
 
     def _queries(self, cap: LayerCapture, A: torch.Tensor) -> tuple:
         """Which queries enter each statistic: ordinary ones (as 0/1 floats), the allowed keys per query, entropy
@@ -270,7 +278,7 @@ class WeightStats(Reducer):
             self.mass_n[name][si] += near_n[NEAR + d]
         self.mass_n["first"][si] += int(okf.sum())
         self.ent_n[si] += int(qe.sum())
-        self.slot_n[si, :T] += _far_column_sums(Af, ordf, nb[:, :, NEAR - 1:NEAR + 2])[0].double().numpy()
+        self.slot_n[si, :T] += _far_column_sums(Af, ordf, nb)[0].double().numpy()
 
     def result(self) -> dict:
         self._mask = None

@@ -9,10 +9,12 @@ here only, and the README's role table (generated from :data:`ROLE_RULES`) follo
 # describe such heads in trained encoders and translation models).
 NEIGHBOUR_MASS = 0.5
 
-# anchor: mean weight on one fixed slot, over queries at least two tokens away from it, of at least 0.3. In an
+# anchor: mean weight on one fixed slot, over queries at least ANCHOR_MIN_DISTANCE tokens away from it (so a head
+# that looks a few tokens back is not mistaken for one that looks at a slot), of at least 0.3. In an
 # untrained causal model the first token gets about 1/(i+1) (under 0.1 on average for texts of 50+ tokens), so 0.3 is
 # well above that default while heads that sink onto the first token (Xiao et al. 2024) exceed it by far.
 ANCHOR_WEIGHT = 0.3
+ANCHOR_MIN_DISTANCE = 8
 
 # induction: mean weight on the token after the earlier copy of the current token, on random tokens repeated twice
 # (Olsson et al. 2022). Uniform attention over a 2×48-token prefix gives about 0.01-0.02; 0.3 means a deliberate copy.
@@ -48,7 +50,7 @@ ROLE_RULES = {
     "previous-token": f"mass.previous ≥ {NEIGHBOUR_MASS}",
     "next-token": f"mass.next ≥ {NEIGHBOUR_MASS}",
     "local": f"slope ≥ {LOCAL_SLOPE} per token and shares.distance ≥ {LOCAL_SHARE}",
-    "anchor": f"mean weight on one slot (queries ≥ 2 tokens away) ≥ {ANCHOR_WEIGHT}",
+    "anchor": f"mean weight on one slot (queries ≥ {ANCHOR_MIN_DISTANCE} tokens away) ≥ {ANCHOR_WEIGHT}",
     "counting": f"entropy ≥ {COUNTING_ENTROPY} × log(visible keys) (causal models)",
     "content": (f"shares.distance + shares.slot < {CONTENT_MAX_POSITIONAL} and shares.content + shares.residual "
                 f"≥ {CONTENT_MIN_SHARE}"),

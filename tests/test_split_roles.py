@@ -195,7 +195,7 @@ def test_minilm_roles_agree_with_direct_statistics(minilm):
             out = minilm.model(input_ids=torch.tensor([u.ids]), output_attentions=True)
         T = len(u.ids)
         q = np.arange(1, T - 1)
-        far = q[q >= 2]
+        far = q[q >= th.ANCHOR_MIN_DISTANCE]
         for layer, att in enumerate(out.attentions):
             w = att[0].numpy()
             prev_sum[layer] += w[:, q, q - 1].sum(-1)

@@ -162,6 +162,14 @@ def _display(tokenizer, ids: Sequence[int]) -> list[str]:
     return out
 
 
+def _encode(tokenizer, text: str) -> list[int]:
+    """Token ids without special tokens, quietly (the length check against the model's limit is ours)."""
+    try:
+        return list(tokenizer(text, add_special_tokens=False, verbose=False)["input_ids"])
+    except TypeError:  # a tokenizer-like object without the verbose switch
+        return list(tokenizer(text, add_special_tokens=False)["input_ids"])
+
+
 def _template(tokenizer) -> tuple[list[int], list[int]]:
     """The special tokens the tokenizer puts before and after a text (e.g. [CLS] … [SEP], or BOS …)."""
     probe = "x y"
@@ -193,18 +201,17 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
     if unk is not None and unk not in structural:
         special_ids.discard(unk)
     units: list[TextUnit] = []
+    split: list[str] = []
     for r in check(raw):
-        body = list(tok(r.text, add_special_tokens=False)["input_ids"])
+        body = _encode(tok, r.text)
         if not body:
             raise AttnposError(f"The text {r.name} produced no tokens with this tokenizer.")
         room = (limit - len(prefix) - len(suffix)) if limit else len(body)
         if room < 1:
             raise AttnposError(f"The limit of {limit} tokens leaves no room for text after the special tokens.")
         starts = list(range(0, len(body), room))
-        if len(starts) > 1 and warn:
-            warnings.warn(f"{r.name}: {len(body)} tokens is more than the limit of {limit}; split into "
-                          f"{len(starts)} windows of at most {limit} tokens (each scanned as its own text).",
-                          WindowNotice, stacklevel=2)
+        if len(starts) > 1:
+            split.append(f"{r.name} ({len(body)} tokens → {len(starts)})")
         for k, a in enumerate(starts):
             chunk = body[a:a + room]
             ids = prefix + chunk + suffix
@@ -216,6 +223,9 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
             name = r.name if len(starts) == 1 else f"{r.name}#{k + 1}"
             units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=_display(tok, ids),
                                   special=special, window=(a, a + len(chunk)) if len(starts) > 1 else None))
+    if split and warn:
+        warnings.warn(f"{len(split)} text(s) longer than the limit of {limit} tokens were split into windows, each "
+                      f"scanned as its own text: {', '.join(split)}.", WindowNotice, stacklevel=3)
     return units
 
 

@@ -22,7 +22,16 @@ from attnpos.reference.models import build_model
 from attnpos.reference.tokenizer import BOS_ID, VOCAB_SIZE
 from attnpos.reference.train import train
 
-torch.set_num_threads(2)
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _one_thread():
+    # one torch thread for this file: on a busy 2-core machine two OpenMP threads spin-wait on each other and a
+    # forward pass gets several times slower (see attnpos/reference/TRAINING.md); restored afterwards
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
 
 EXPECTED_CLASS = {
     "learned-absolute": "GPT2LMHeadModel",

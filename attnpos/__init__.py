@@ -13,6 +13,13 @@ The pieces, in the order data flows: :func:`load` → :func:`record` → :class:
 
 __version__ = "0.1.0"
 
+import os as _os
+
+# Before torch starts its OpenMP runtime: threads that sleep instead of spinning while they wait. On a small,
+# shared CPU machine spinning threads made training steps 4x slower (measured on the 2-core machine, see
+# attnpos/reference/TRAINING.md). Has no effect when torch was imported first; set it yourself to override.
+_os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
 from .errors import AttnposError  # noqa: E402
 from .subject import Subject, load, from_model  # noqa: E402
 from .capture import record, Recording, Reducer  # noqa: E402

@@ -5,6 +5,7 @@ import os
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
 os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")   # before torch: no spinning threads on a shared machine
 
 import pytest  # noqa: E402
 import torch  # noqa: E402

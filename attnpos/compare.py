@@ -193,7 +193,8 @@ def to_json(table: pd.DataFrame) -> dict:
                    "heads": heads, "notes": table.attrs.get("notes", []), "caution": CAUTION})
 
 
-def print_table(table: pd.DataFrame, out=sys.stdout) -> None:
+def print_table(table: pd.DataFrame, out=None) -> None:
+    out = out or sys.stdout
     a, b = table.attrs.get("a") or {}, table.attrs.get("b") or {}
     s = table.attrs.get("summary") or {}
     print(f"A: {a.get('name')} ({a.get('architecture')}, fingerprint {str(a.get('fingerprint'))[:12]})", file=out)

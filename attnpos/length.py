@@ -133,6 +133,7 @@ class LengthResult:
         else:
             lines.append("loss: not available (" + self.summary.get("loss_note", "no language-model head") + ")")
         lines.append("")
+        lines.extend(self._curve_lines(f))
         ch = self.summary.get("head_changes") or []
         if ch:
             lines.append("heads whose attention changes most beyond the training length (entropy / first-token "
@@ -151,6 +152,31 @@ class LengthResult:
             lines.append("notice: " + n)
         lines.append("note: " + self.caution)
         return "\n".join(lines)
+
+    def _curve_lines(self, f) -> list[str]:
+        """Per layer, mean over its heads of entropy and first-token weight in a few query-position bins."""
+        nb = len(self.bins)
+        if not nb or not self.heads:
+            return []
+        cols = sorted(set(np.linspace(0, nb - 1, min(nb, 6)).round().astype(int).tolist()))
+        L = self.training_length
+        names = [f"{self.bins[c][0]}–{self.bins[c][1]}" + ("*" if L and self.bins[c][0] >= L else "") for c in cols]
+        out = ["attention by query position (mean over each layer's heads; entropy 1 = uniform over the visible "
+               "keys; first = weight on the first token" + ("; * beyond the training length" if L else "") + "):",
+               f"{'queries':<14}" + "".join(f"{n:>10}" for n in names)]
+        groups: dict[tuple, list[dict]] = {}
+        for h in self.heads:
+            groups.setdefault((h["stack"], h["layer"]), []).append(h)
+        for (stack, layer), hs in groups.items():
+            tag = (f"{stack[:3]}:" if stack != "main" else "") + f"L{layer}"
+            for key, label in (("entropy", "entropy"), ("first_weight", "first")):
+                arr = np.array([[np.nan if v is None else v for v in h[key]] for h in hs], dtype=float)
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", RuntimeWarning)
+                    mean = np.nanmean(arr, axis=0)
+                out.append(f"{tag + ' ' + label:<14}" + "".join(f(mean[c], 10, 2) for c in cols))
+        out.append("")
+        return out
 
 
 # --------------------------------------------------------------------------------------------------- reducers

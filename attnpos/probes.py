@@ -406,7 +406,7 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
     if max_tokens is None and subject.training_length:
         max_tokens = subject.training_length
         notes.append(f"Texts were cut into windows of the training length ({subject.training_length} tokens) so "
-                     "the probe sees only positions the model was trained on; pass max_tokens to change this.")
+                     "the probe sees only positions the model was trained on; pass max_tokens (CLI --max-tokens) to change this.")
     units = prepare(subject, as_raw(texts), max_tokens=max_tokens, warn=False)
     groups_u, n_texts, gnotes = _group_keys(units)
     notes += gnotes

@@ -126,8 +126,10 @@ def test_alibi_against_sinusoidal_past_training_length(capsys):
     for la in out.values():
         assert all(np.isfinite(v) for v in la.values())
     rise = {k: la["4x"] - la["1x"] for k, la in out.items()}
-    # qualitative fact observed with the shipped weights (see the issue note): ALiBi's rise is the smaller
+    # qualitative facts observed with the shipped weights (measured: ALiBi 1x 1.70 → 4x 1.88, sinusoidal 1.03 → 4.23
+    # nats with `attnpos length ref:<scheme> --to 512`): ALiBi's rise is the smaller, and at 4x its loss is lower
     assert rise["alibi"] < rise["sinusoidal"]
+    assert out["alibi"]["4x"] < out["sinusoidal"]["4x"]
 
 
 def test_minilm_within_its_limit(minilm, tmp_path, capsys):

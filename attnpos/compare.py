@@ -204,14 +204,14 @@ def print_table(table: pd.DataFrame, out=None) -> None:
           "the two 90% intervals do not overlap)", file=out)
     shown = table[table["changed"]] if "changed" in table else table
     if len(shown):
-        hdr = f"{'head':<12} {'role A':<15} {'role B':<15} {'shares changed':<28} {'slope A':>8} {'slope B':>8}"
+        hdr = f"{'head':<12} {'role A':<15} {'role B':<15} {'shares changed':<34} {'slope A':>8} {'slope B':>8}"
         print(hdr, file=out)
         print("-" * len(hdr), file=out)
         for _, r in shown.iterrows():
             name = (f"{r['stack'][:3]}:" if r["stack"] != "main" else "") + f"L{r['layer']}.H{r['head']}"
             sl = lambda x: "—" if not np.isfinite(x) else f"{x:.3f}"  # noqa: E731
             mark = "*" if r["slope_changed"] else " "
-            print(f"{name:<12} {r['role_a']:<15} {r['role_b']:<15} {', '.join(r['changed_shares']) or '—':<28} "
+            print(f"{name:<12} {r['role_a']:<15} {r['role_b']:<15} {', '.join(r['changed_shares']) or '—':<34} "
                   f"{sl(r['slope_a']):>8} {sl(r['slope_b']):>7}{mark}", file=out)
         print("(* slope changed beyond its intervals)", file=out)
     for n in table.attrs.get("notes", []):

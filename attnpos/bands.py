@@ -34,7 +34,6 @@ from __future__ import annotations
 
 import contextlib
 import math
-from typing import Any
 
 import numpy as np
 import torch
@@ -142,15 +141,10 @@ def _accumulate(run: _Run, site, module, query, key, attention_mask) -> None:
 
 @contextlib.contextmanager
 def _installed(subject, run: _Run):
-    from transformers import AttentionInterface
-    from transformers.masking_utils import AttentionMaskInterface, eager_mask
+    """The bands attention function installed (see :func:`attnpos.capture.attention_function`), plus a pre-hook
+    on every RoPE attention module that keeps the cos/sin tables it is handed."""
+    from .capture import attention_function
 
-    from .capture import _all_configs
-
-    configs = _all_configs(subject.model)
-    saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
-    had_fn = FUNCTION_NAME in AttentionInterface._global_mapping
-    had_mask = FUNCTION_NAME in AttentionMaskInterface._global_mapping
     handles = []
 
     def pre_hook(module, args, kwargs):
@@ -159,25 +153,16 @@ def _installed(subject, run: _Run):
             run.rope[id(module)] = (pe[0].detach(), pe[1].detach())
         return None
 
-    AttentionInterface.register(FUNCTION_NAME, _bands_attention)
-    AttentionMaskInterface.register(FUNCTION_NAME, eager_mask)
     _ACTIVE.append(run)
     try:
-        for s in subject.sites:
-            if s.scheme == "rope":
-                handles.append(s.module.register_forward_pre_hook(pre_hook, with_kwargs=True))
-        for c in configs:
-            c._attn_implementation_internal = FUNCTION_NAME
-        yield
+        with attention_function(subject, _bands_attention, FUNCTION_NAME):
+            for s in subject.sites:
+                if s.scheme == "rope":
+                    handles.append(s.module.register_forward_pre_hook(pre_hook, with_kwargs=True))
+            yield
     finally:
         for h in handles:
             h.remove()
-        for c, v in saved:
-            c._attn_implementation_internal = v
-        if not had_fn:
-            AttentionInterface._global_mapping.pop(FUNCTION_NAME, None)
-        if not had_mask:
-            AttentionMaskInterface._global_mapping.pop(FUNCTION_NAME, None)
         if _ACTIVE and _ACTIVE[-1] is run:
             _ACTIVE.pop()
 

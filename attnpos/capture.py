@@ -326,32 +326,43 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
 
 
 @contextlib.contextmanager
-def _registry_path(subject: Subject):
-    """Register the capture function + an eager mask under our name and switch the model to it; undo after."""
+def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
+    """Run ``subject`` through the attention function ``fn`` for the duration of the block.
+
+    ``fn`` is registered under ``name`` in transformers' attention-function registry together with the eager mask
+    function (without it transformers would hand over no causal mask), and every config of the model is switched
+    to it. On exit, also on error, each config's implementation and both registry entries are put back exactly as
+    they were (an entry of the same name, e.g. from an enclosing run, is restored). Used by :func:`record` and by
+    :mod:`attnpos.bands`.
+    """
     from transformers import AttentionInterface
     from transformers.masking_utils import AttentionMaskInterface, eager_mask
 
     configs = _all_configs(subject.model)
     saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
     missing = object()
-    had_fn = AttentionInterface._global_mapping.get(FUNCTION_NAME, missing)
-    had_mask = AttentionMaskInterface._global_mapping.get(FUNCTION_NAME, missing)
-    AttentionInterface.register(FUNCTION_NAME, _capture_attention)
-    AttentionMaskInterface.register(FUNCTION_NAME, eager_mask)
+    had_fn = AttentionInterface._global_mapping.get(name, missing)
+    had_mask = AttentionMaskInterface._global_mapping.get(name, missing)
+    AttentionInterface.register(name, fn)
+    AttentionMaskInterface.register(name, eager_mask)
     try:
         for c in configs:
-            c._attn_implementation_internal = FUNCTION_NAME
+            c._attn_implementation_internal = name
         yield
     finally:
         for c, v in saved:
             c._attn_implementation_internal = v
-        # put back exactly what was there (an entry of the same name, e.g. from an enclosing run, is restored)
         for mapping, prev in ((AttentionInterface._global_mapping, had_fn),
                               (AttentionMaskInterface._global_mapping, had_mask)):
             if prev is missing:
-                mapping.pop(FUNCTION_NAME, None)
+                mapping.pop(name, None)
             else:
-                mapping[FUNCTION_NAME] = prev
+                mapping[name] = prev
+
+
+def _registry_path(subject: Subject):
+    """Switch the model to the capture function for the duration of a run."""
+    return attention_function(subject, _capture_attention)
 
 
 def _all_configs(model) -> list:

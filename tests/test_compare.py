@@ -21,14 +21,7 @@ TEXTS = [
 FAST = dict(n_boot=30, shift=False, induction=False)
 
 
-def _reference(scheme):
-    from attnpos import reference
-
-    try:
-        reference.weights_dir(scheme)
-    except attnpos.AttnposError as exc:
-        pytest.skip(f"trained reference weights missing: {exc}")
-    return attnpos.load(f"ref:{scheme}")
+_reference = tiny.reference
 
 
 def test_model_against_itself_changes_nothing():

@@ -16,14 +16,7 @@ from attnpos.reference.tokenizer import build_tokenizer
 import tiny
 
 
-def _reference(scheme):
-    from attnpos import reference
-
-    try:
-        reference.weights_dir(scheme)
-    except attnpos.AttnposError as exc:
-        pytest.skip(f"trained reference weights missing: {exc}")
-    return attnpos.load(f"ref:{scheme}")
+_reference = tiny.reference
 
 
 @pytest.fixture(scope="module")

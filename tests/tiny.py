@@ -83,3 +83,17 @@ def subject(arch: str, **kw):
     import attnpos
 
     return attnpos.subject.from_model(build(arch, **kw), tokenizer(), name=f"tiny-{arch}")
+
+
+def reference(scheme: str):
+    """A shipped reference model as a subject, or skip the test when its trained weights are missing."""
+    import pytest
+
+    import attnpos
+    from attnpos import reference as ref
+
+    try:
+        ref.weights_dir(scheme)
+    except attnpos.AttnposError as exc:
+        pytest.skip(f"trained reference weights missing: {exc}")
+    return attnpos.load(f"ref:{scheme}")

@@ -97,3 +97,24 @@ def reference(scheme: str):
     except attnpos.AttnposError as exc:
         pytest.skip(f"trained reference weights missing: {exc}")
     return attnpos.load(f"ref:{scheme}")
+
+
+def keep_reducer():
+    """A reducer that keeps every capture whole, keyed (text, stack, layer, head0) → (scores, weights, allowed,
+    score_kind). Small models only."""
+    from attnpos.capture import Reducer
+
+    class Keep(Reducer):
+        name = "keep"
+
+        def begin(self, subject, units):
+            self.d = {}
+
+        def update(self, cap):
+            self.d[(cap.text, cap.site.stack, cap.site.layer, cap.head0)] = (
+                cap.scores.clone(), cap.weights.clone(), cap.allowed.clone(), cap.score_kind)
+
+        def result(self):
+            return self.d
+
+    return Keep()

@@ -23,20 +23,8 @@ from conftest import FERRY, HARBOUR, assert_clean_error, save_checkpoint
 pytestmark = pytest.mark.hostile
 
 
-class Keep(Reducer):
-    """Keeps every capture (small models only)."""
-
-    name = "keep"
-
-    def begin(self, subject, units):
-        self.d = {}
-
-    def update(self, cap):
-        self.d[(cap.text, cap.site.stack, cap.site.layer, cap.head0)] = (
-            cap.scores.clone(), cap.weights.clone(), cap.allowed.clone())
-
-    def result(self):
-        return self.d
+def Keep():
+    return tiny.keep_reducer()
 
 
 def eager_attentions(model, ids):
@@ -150,7 +138,7 @@ def test_sdpa_model_is_captured_through_a_capturing_path_with_a_notice(tmp_path,
     ids = rec.units[0].ids
     atts = eager_attentions(model, ids)
     for site, att in zip(s.sites, atts):
-        _, w, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
+        _, w, _, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
         torch.testing.assert_close(w, att[0].float(), atol=1e-5, rtol=1e-4)
     # a second recording gives no second notice
     with warnings.catch_warnings(record=True) as again:
@@ -175,12 +163,12 @@ def test_grouped_query_attention_matches_eager(kv_heads):
     rec = record(s, [FERRY], [Keep()])
     atts = eager_attentions(s.model, rec.units[0].ids)
     for site, att in zip(s.sites, atts):
-        sc, w, allowed = rec.results["keep"][(0, site.stack, site.layer, 0)]
+        sc, w, allowed, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
         assert w.shape[0] == 4                                 # every query head, not one per key/value group
         torch.testing.assert_close(w, att[0].float(), atol=1e-5, rtol=1e-4)
         torch.testing.assert_close(torch.softmax(sc, -1), w, atol=1e-6, rtol=1e-5)
     # heads sharing a key/value group still differ (their queries differ): nothing was collapsed
-    _, w, _ = rec.results["keep"][(0, "main", 0, 0)]
+    _, w, _, _ = rec.results["keep"][(0, "main", 0, 0)]
     assert not torch.allclose(w[0], w[1])
 
 
@@ -197,7 +185,7 @@ def test_sliding_window_mask_and_weights_match_eager():
     expected = (i - j >= 0) & (i - j < W)
     atts = eager_attentions(s.model, rec.units[0].ids)
     for site, att in zip(s.sites, atts):
-        sc, w, allowed = rec.results["keep"][(0, site.stack, site.layer, 0)]
+        sc, w, allowed, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
         assert torch.equal(allowed, expected)
         torch.testing.assert_close(w, att[0].float(), atol=1e-5, rtol=1e-4)
         assert (w[:, ~expected] == 0).all() and torch.isinf(sc[:, ~expected]).all()
@@ -316,7 +304,7 @@ def test_model_on_an_accelerator_is_refused_clearly_or_captured_exactly():
         return
     rec = record(s, [FERRY], [Keep()])
     atts = eager_attentions(s.model, rec.units[0].ids)
-    _, w, _ = rec.results["keep"][(0, "main", 0, 0)]
+    _, w, _, _ = rec.results["keep"][(0, "main", 0, 0)]
     torch.testing.assert_close(w.cpu(), atts[0][0].float().cpu(), atol=1e-4, rtol=1e-3)
 
 
@@ -331,7 +319,7 @@ def test_bloom_config_set_to_sdpa_is_recorded_eagerly_and_put_back():
     s.model.config._attn_implementation_internal = "eager"
     atts = eager_attentions(s.model, rec.units[0].ids)
     for site, att in zip(s.sites, atts):
-        _, w, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
+        _, w, _, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
         torch.testing.assert_close(w, att[0].float(), atol=1e-5, rtol=1e-4)
 
 

@@ -43,21 +43,6 @@ CHUNK_BYTES = 256 * 2**20
 
 
 @dataclass
-class QueryKey:
-    """The factors of the scores, given where the scores are exactly ``scale · query · keyᵀ`` on the allowed pairs
-    (no bias, softcap or values in the mask): ``query`` and ``key`` (n, T, d) float32, and — from the same matrix
-    product as the attention output — ``weighted_keys`` Σ_j w_ij k_j (n, T, d) and ``weight_sums`` Σ_j w_ij (n, T).
-    Reducers may use them for sums that would otherwise read an (n, T, T) tensor (e.g. Σ_j w_ij s_ij =
-    scale · q_i · Σ_j w_ij k_j)."""
-
-    query: torch.Tensor
-    key: torch.Tensor
-    scale: float
-    weighted_keys: torch.Tensor
-    weight_sums: torch.Tensor
-
-
-@dataclass
 class LayerCapture:
     """What a reducer sees: one attention layer, one text, a chunk of heads.
 
@@ -69,8 +54,7 @@ class LayerCapture:
     Reducers read these tensors and must not modify or keep them: the capture reuses their memory for the next
     chunk (copy what you keep). For sums over the allowed pairs, :meth:`zeroed_scores` gives the same scores with
     0 on disallowed pairs. The registry path computes that form anyway and passes it as ``zeroed`` with
-    ``scores=None``; ``scores`` (with ``-inf``) is then built only if a reducer reads it. ``qk`` holds the scores'
-    factors where the scores are a plain scaled q·kᵀ (:class:`QueryKey`), else None.
+    ``scores=None``; ``scores`` (with ``-inf``) is then built only if a reducer reads it.
     """
 
     site: AttentionSite
@@ -84,7 +68,6 @@ class LayerCapture:
     score_kind: str
     offset: int = 0
     zeroed: torch.Tensor | None = None
-    qk: QueryKey | None = None
 
     def zeroed_scores(self) -> torch.Tensor:
         """The scores with 0 instead of ``-inf`` on disallowed pairs (read-only)."""
@@ -101,9 +84,7 @@ def _get_scores(cap: LayerCapture) -> torch.Tensor:
 
 def _set_scores(cap: LayerCapture, value: torch.Tensor | None) -> None:
     cap._scores = value
-    # set again by __init__ when given; a reducer that replaces the scores drops what was derived from the old ones
-    cap.zeroed = None
-    cap.qk = None
+    cap.zeroed = None          # set again by __init__ when given; a reducer that replaces the scores drops it
 
 
 # installed after the dataclass is made, so ``scores`` stays an ordinary required field of __init__
@@ -192,7 +173,7 @@ class _Run:
 
     def deliver(self, site: AttentionSite, scores: torch.Tensor | None, weights: torch.Tensor,
                 allowed: torch.Tensor, head0: int, *, zeroed: torch.Tensor | None = None,
-                weights_checked: bool = False, qk: QueryKey | None = None) -> None:
+                weights_checked: bool = False) -> None:
         """Hand one chunk of heads to the reducers. Give ``scores`` (-inf on disallowed pairs) or ``zeroed`` (0
         there); ``weights_checked`` says the weights are finite whenever the scores are (a softmax of them)."""
         self.seen.add(id(site.module))
@@ -210,7 +191,7 @@ class _Run:
             unit = _decoder_view(self.subject, unit)
         cap = LayerCapture(site=site, text=self.text, unit=unit, head0=head0, n_heads=n,
                            scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
-                           offset=self.offset, zeroed=zeroed, qk=qk)
+                           offset=self.offset, zeroed=zeroed)
         for r in self.reducers:
             r.update(cap)
         if self.keep is not None:
@@ -303,7 +284,6 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
     facts = (run.mask_facts if run is not None else _mask_facts)(attention_mask, q_len, k_len, causal)
     allowed, pattern, empty_rows, has_values = facts
     mask_add = attention_mask[..., :k_len] if has_values else None
-    plain = bias is None and not softcap and mask_add is None          # then the scores are scaling·q·kᵀ
     not_allowed = ~allowed if pattern == "general" else None
     per_head = q_len * k_len * 4
     n_chunks = -(-n_heads // max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1))))
@@ -339,20 +319,9 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
             torch.softmax(w, dim=-1, out=w)
             if empty_rows:
                 w.nan_to_num_(nan=0.0)  # rows with no allowed key
-            qk = None
-            if site is not None and b == 0 and plain:
-                # one product gives the output, Σ_j w_ij k_j and Σ_j w_ij (the weights are read once either way)
-                q_, k_ = query[b, h0:h1].float(), key[b, h0:h1].float()
-                vk1 = torch.cat([value[b, h0:h1].float(), k_, torch.ones(h1 - h0, k_len, 1)], -1)
-                prod = torch.matmul(w, vk1)
-                dv = value.shape[-1]
-                out[b, h0:h1] = prod[..., :dv]
-                qk = QueryKey(query=q_, key=k_, scale=float(scaling), weighted_keys=prod[..., dv:-1],
-                              weight_sums=prod[..., -1])
-            else:
-                torch.matmul(w.to(value.dtype), value[b, h0:h1], out=out[b, h0:h1])
+            torch.matmul(w.to(value.dtype), value[b, h0:h1], out=out[b, h0:h1])
             if site is not None and b == 0:
-                run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True, qk=qk)
+                run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True)
     return out.transpose(1, 2).contiguous(), None
 
 

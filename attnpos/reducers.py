@@ -92,7 +92,7 @@ def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, nb: torch.Tensor) -> t
 _NORMAL_WEIGHT = 1e-30
 
 
-def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = None, qk=None) -> torch.Tensor:
+def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = None) -> torch.Tensor:
     """Entropy −Σ_j w_ij log w_ij of every row of (n, T, T) weights (0·log 0 = 0), as (n, T), given the scores
     ``s0`` (0 on disallowed pairs) that the weights are a softmax of.
 
@@ -100,11 +100,9 @@ def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = N
     H_i = L_i·Σ_j w_ij − Σ_j w_ij s_ij: a sum and a batched dot product per row instead of a logarithm per pair (the
     logarithms cost more than the rest of the weight statistics together). L_i = s_ij − log w_ij at any key whose
     weight is a normal float; we take the largest weight within |δ| ≤ NEAR (``near``: :func:`band` of w, already at
-    hand) and search the whole row only where that is too small. With the scores' factors (``qk``, a
-    :class:`~attnpos.capture.QueryKey`), Σ_j w_ij s_ij = scale · q_i · Σ_j w_ij k_j and Σ_j w_ij come with the
-    attention output, and w is read only where the band has no normal weight. The error is that of float32 sums
-    of w·s: about 1e-7 × the row's largest |score| × a small factor (measured: 1e-4 with scores near 150; the
-    per-pair logarithm gives 1e-6) — far below anything the roles read from entropy.
+    hand) and search the whole row only where that is too small. The error is that of float32 sums of w·s: about
+    1e-7 × the row's largest |score| × a small factor (measured: 1e-4 with scores near 150; the per-pair logarithm
+    gives 1e-6) — far below anything the roles read from entropy.
     """
     n, T, _ = w.shape
     if near is not None:
@@ -118,16 +116,11 @@ def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = N
     else:
         top, j = w.max(-1)
     L = s0.gather(-1, j.clamp(0, T - 1)[..., None])[..., 0].double() - torch.log(top.double())
-    if qk is not None:
-        dot = qk.scale * (qk.query.double() * qk.weighted_keys.double()).sum(-1)
-        total = qk.weight_sums.double()
+    if w.is_contiguous() and s0.is_contiguous():
+        dot = torch.bmm(w.view(n * T, 1, T), s0.view(n * T, T, 1)).view(n, T)
     else:
-        if w.is_contiguous() and s0.is_contiguous():
-            dot = torch.bmm(w.view(n * T, 1, T), s0.view(n * T, T, 1)).view(n, T)
-        else:
-            dot = (w * s0).sum(-1)
-        total = w.sum(-1).double()
-    return (L * total - dot.double()).float()
+        dot = (w * s0).sum(-1)
+    return (L * w.sum(-1).double() - dot.double()).float()
 
 
 def _skew_accumulate(v: torch.Tensor, a: int, T: int, out: torch.Tensor, lower: bool) -> None:
@@ -182,29 +175,8 @@ def diagonal_sums(x: torch.Tensor, lower: bool = False) -> torch.Tensor:
 ROW_CONSTANT_RATIO = 64.0
 
 
-def _qk_sums(qk, lower: bool) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
-    """Row, column and diagonal sums of the scores scale·q·kᵀ over a causal (``lower``) or full mask, in float64
-    from the factors alone: rows and columns through running sums of keys and queries, the diagonals
-    Σ_i q_i·k_{i−δ} as the cross-correlation of the query and key sequences (FFT, O(T log T) per head)."""
-    q, k, sc = qk.query.double(), qk.key.double(), qk.scale
-    T = q.shape[1]
-    if lower:
-        rows = sc * (q * k.cumsum(1)).sum(-1)
-        col = sc * (k * q.flip(1).cumsum(1).flip(1)).sum(-1)
-    else:
-        rows = sc * (q * k.sum(1, keepdim=True)).sum(-1)
-        col = sc * (k * q.sum(1, keepdim=True)).sum(-1)
-    L = 1 << (2 * T - 2).bit_length()               # ≥ 2T − 1: no wrap-around
-    spec = (torch.fft.rfft(q, n=L, dim=1) * torch.fft.rfft(k, n=L, dim=1).conj()).sum(-1)
-    corr = sc * torch.fft.irfft(spec, n=L, dim=1)   # corr[:, δ mod L] = scale · Σ_i q_i·k_{i−δ}
-    diag = torch.cat([corr[:, L - T + 1:], corr[:, :T]], 1)   # δ = −(T − 1) … T − 1
-    if lower:
-        diag[:, :T - 1] = 0.0
-    return rows, col, diag
-
-
 def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, kind: str, n_i: torch.Tensor, rows_c: torch.Tensor,
-                 scratch: torch.Tensor | None = None, qk=None):
+                 scratch: torch.Tensor | None = None):
     """Sums of the row-centred scores over the allowed pairs, per head.
 
     With m_i the mean of row i over its allowed keys and c_ij = s_ij − m_i on allowed pairs (0 elsewhere), returns
@@ -216,22 +188,16 @@ def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, kind: str, n_i: torch.
     one read each, centred afterwards in float64 — Σ c² = Σ s² − n·m² per row, and the per-row feature counts
     ``rows_c`` (T, p) turn raw feature sums into centred ones (Xᵀc = Xᵀs − Cᵀm). Where a head's row constants
     are large (ALiBi's −m·i, log-weights, an offset key bias), float32 sums of raw scores would lose the spread, so
-    the scores are centred first into ``scratch`` and summed from there. Given the scores' factors (``qk``) and a
-    causal or full mask, the fast path takes row, column and diagonal sums from them (:func:`_qk_sums`) and reads
-    ``s0`` once only, for Σ s².
+    the scores are centred first into ``scratch`` and summed from there.
     """
     lower = kind == "causal"
-    if qk is not None and kind != "general":
-        rows, col, diag = _qk_sums(qk, lower)
-    else:
-        rows, col, diag = s0.sum(-1).double(), None, None
+    rows = s0.sum(-1).double()
     m = rows / n_i.clamp_min(1.0)
     sq = torch.linalg.vector_norm(s0, dim=-1).double() ** 2
     ssw = (sq - rows * m).sum(-1)
     if bool(((rows * m).sum(-1) <= ROW_CONSTANT_RATIO * ssw).all()):
-        if col is None:
-            col = s0.sum(-2).double()
-            diag = diagonal_sums(s0, lower).double()
+        col = s0.sum(-2).double()
+        diag = diagonal_sums(s0, lower).double()
         return ssw, (diag, col), m @ rows_c
     c = torch.sub(s0, m.float()[..., None], out=scratch)
     if lower:
@@ -296,8 +262,7 @@ class WeightStats(Reducer):
         self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
         # entropy relative to log(number of allowed keys)
         if qe.any():
-            H = row_entropy(w, s0, nb, None if o else cap.qk)
-            ent = H[:, qe] / torch.log(n_allowed[qe].double()).float()
+            ent = row_entropy(w, s0, nb)[:, qe] / torch.log(n_allowed[qe].double()).float()
             self.ent[si, hs] += ent.sum(-1).double().numpy()
         # weight per slot over queries at least ANCHOR_MIN_DISTANCE tokens away (local heads are not anchors)
         self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb).double().numpy()
@@ -555,7 +520,7 @@ class SplitStats(Reducer):
         if self._scratch is None or self._scratch.numel() < s0.numel():
             self._scratch = torch.empty(s0.numel(), dtype=s0.dtype)
         ssw, (diag, col), correction = centred_sums(s0, cap.allowed, kind, n_i, rows_c,
-                                                    self._scratch[:s0.numel()].view(s0.shape), cap.qk)
+                                                    self._scratch[:s0.numel()].view(s0.shape))
         FD, FJ = self._features(cap, s0.shape[-1])
         b = torch.cat([diag @ FD, col @ FJ], dim=-1)
         if correction is not None:

@@ -231,6 +231,33 @@ def run_case(case: str, T: int, args) -> dict:
             "torch_threads": torch.get_num_threads(), **extra}
 
 
+def profile_scan(T: int, args) -> int:
+    """Case C once, in this process, under pyinstrument (``pip install pyinstrument``): where a scan's time goes."""
+    try:
+        from pyinstrument import Profiler
+    except ImportError:
+        print("--profile needs pyinstrument: pip install pyinstrument", file=sys.stderr)
+        return 2
+    import torch
+
+    import attnpos
+    from attnpos.reference.tokenizer import build_tokenizer
+
+    max_len = max(T, 128) + 64
+    model = build_model(args.layers, args.heads, args.hidden, max_len, "eager")
+    subject = attnpos.subject.from_model(model, build_tokenizer(model_max_length=max_len), name="bench")
+    texts = make_texts(args.texts, T)
+    attnpos.scan(subject, make_texts(1, 64, seed=1), n_boot=2, shift=False, induction=False, progress=False)
+    profiler = Profiler(interval=0.005)
+    profiler.start()
+    attnpos.scan(subject, texts, n_boot=args.boot, shift=False, induction=False, progress=False)
+    profiler.stop()
+    print(f"attnpos.scan, llama {args.layers}x{args.heads}x{args.hidden}, {args.texts} texts of T={T}, "
+          f"n_boot {args.boot}, {torch.get_num_threads()} torch threads")
+    print(profiler.output_text(unicode=True, color=False))
+    return 0
+
+
 def child_main(args) -> None:
     try:
         res = run_case(args.child, args.T, args)
@@ -411,6 +438,8 @@ def main(argv=None) -> int:
                    help="skip B where its all-layer maps would need more than this (default 6 GB)")
     p.add_argument("--timeout", type=int, default=3600, help="seconds before a case is abandoned")
     p.add_argument("--out", type=Path, help="JSON output (default bench/results.json, quick: bench/results-quick.json)")
+    p.add_argument("--profile", type=int, metavar="T",
+                   help="instead of the benchmark: profile one attnpos scan (case C) at length T with pyinstrument")
     p.add_argument("--child", choices=CASES, help=argparse.SUPPRESS)
     p.add_argument("--T", type=int, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
@@ -426,6 +455,8 @@ def main(argv=None) -> int:
     if args.child:
         child_main(args)
         return 0
+    if args.profile:
+        return profile_scan(args.profile, args)
     out_path = args.out or HERE / ("results-quick.json" if args.quick else "results.json")
 
     import torch

@@ -14,7 +14,7 @@ Every case runs in its own child process so each peak RSS (VmHWM) is its own. Th
 C, then again), so a change of load on a shared machine hits them alike; times are the best over rounds, each after
 a short warm-up. The figures go to a JSON file and a table on the terminal.
 
-    python bench/scan_bench.py                 # full run: T = 512, 1024, 2048, 4096 (about 20-40 min on 2 cores)
+    python bench/scan_bench.py                 # full run: T = 512 … 4096 (about 10 min on 2 idle cores)
     python bench/scan_bench.py --quick         # CI smoke run: small T, 2 layers, under 2 minutes
 
 See bench/README.md for what is measured and how to read it.

@@ -180,9 +180,10 @@ def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, kind: str, n_i: torch.
     """Sums of the row-centred scores over the allowed pairs, per head.
 
     With m_i the mean of row i over its allowed keys and c_ij = s_ij − m_i on allowed pairs (0 elsewhere), returns
-    float64 ``ssw`` (n,) = Σ c², and ``b`` (n, p) = Σ_ij c_ij x_ij for the split's features, in the form
-    (``diag`` (n, 2T − 1) = Σ_i c_i,i−δ, ``col`` (n, T) = Σ_i c_ij). ``kind`` is the mask's layout (``"causal"``,
-    ``"none"`` disallowed, or ``"general"``), ``n_i`` (T,) its allowed keys per row (float64).
+    float64 ``(ssw, (diag, col), correction)``: ``ssw`` (n,) = Σ c², and the split's feature sums Σ_ij c_ij x_ij =
+    [diag @ FD, col @ FJ] − correction, from ``diag`` (n, 2T − 1) and ``col`` (n, T), the diagonal and column sums,
+    and ``correction`` (n, p) (None when the sums are already centred). ``kind`` is the mask's layout
+    (``"causal"``, ``"none"`` disallowed, or ``"general"``), ``n_i`` (T,) its allowed keys per row (float64).
 
     Fast path (row means small against the spread, the usual case): sums of the zeroed scores ``s0`` themselves,
     one read each, centred afterwards in float64 — Σ c² = Σ s² − n·m² per row, and the per-row feature counts

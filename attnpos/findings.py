@@ -431,19 +431,30 @@ def _fsync_dir(folder: Path) -> None:
         os.close(fd)
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` so that readers see either the old file or the new one, never a part."""
+def _temp_copy(path: Path, data: bytes) -> Path:
+    """``data`` written and fsynced to a new temporary file beside ``path`` (same directory, so a rename is atomic)."""
     tmp = path.parent / f".{path.name}.{uuid.uuid4().hex[:8]}.tmp"
-    try:
-        mode = stat.S_IMODE(path.stat().st_mode)
-    except FileNotFoundError:
-        mode = None
     fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
+    except BaseException:
+        with suppress(OSError):
+            os.unlink(tmp)
+        raise
+    return tmp
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that readers see either the old file or the new one, never a part."""
+    try:
+        mode = stat.S_IMODE(path.stat().st_mode)
+    except FileNotFoundError:
+        mode = None
+    tmp = _temp_copy(path, data)
+    try:
         if mode is not None:
             os.chmod(tmp, mode)
         os.replace(tmp, path)
@@ -456,13 +467,8 @@ def _atomic_write(path: Path, data: bytes) -> None:
 
 def _write_new(path: Path, data: bytes) -> None:
     """Write ``data`` to a new file at ``path``; raises FileExistsError rather than replace anything."""
-    tmp = path.parent / f".{path.name}.{uuid.uuid4().hex[:8]}.tmp"
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+    tmp = _temp_copy(path, data)
     try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
         os.link(tmp, path)  # fails if path exists: a backup is never overwritten
     finally:
         with suppress(OSError):

@@ -513,7 +513,11 @@ def _md_rows(markdown: str) -> list[str]:
 
 
 def _gfm_cells(row: str) -> list[str]:
-    """Split a table row the way GitHub-flavoured Markdown does: a pipe ends a cell unless backslash-escaped."""
+    """Split a table row the way GitHub-flavoured Markdown does: a pipe ends a cell unless backslash-escaped.
+
+    Source: the GitHub Flavored Markdown spec (0.29-gfm), "Tables (extension)": "include a pipe in a cell’s
+    content by escaping it". Written from that rule, not from our exporter.
+    """
     cells, current, k = [], "", 0
     inner = row.strip()
     assert inner.startswith("|") and inner.endswith("|")

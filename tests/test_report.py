@@ -49,6 +49,8 @@ def test_report_is_one_self_contained_file(tmp_path):
     # the only URLs are XML namespace names, which are never fetched
     urls = set(re.findall(r"https?://[^\s\"'<>]+", html))
     assert urls <= {"http://www.w3.org/2000/svg"}, urls
+    # W3C Content Security Policy Level 3: a <meta http-equiv="Content-Security-Policy"> element delivers the
+    # policy in a document opened from a file, where no HTTP header exists
     csp = [a for t, a in doc.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
     assert csp and "default-src 'none'" in csp[0]["content"]
 

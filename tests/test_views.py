@@ -331,7 +331,9 @@ def test_nbconvert_html_of_an_executed_notebook_contains_the_static_atlas(tmp_pa
 
 # ------------------------------------------------------------------ small pieces
 def test_colour_ramp_is_monotone_in_perceived_lightness():
-    # OKLab lightness (Ottosson 2020) must rise along a sequential map, from the dark to the bright end.
+    # OKLab lightness (Ottosson 2020, "A perceptual color space for image processing") must rise along a
+    # sequential map, from the dark to the bright end. The ramp's end stops are viridis control points
+    # (van der Walt & Smith 2015, matplotlib's default colormap; the hex values were written from memory).
     lab = _common.srgb_to_oklab(_common.RAMP / 255.0)
     # 8-bit rounding may tie or dip neighbours by a hair; over 8 steps lightness must rise strictly
     assert np.all(np.diff(lab[:, 0]) > -1e-3)
@@ -341,6 +343,8 @@ def test_colour_ramp_is_monotone_in_perceived_lightness():
 
 
 def test_role_palette_keeps_roles_apart_and_labels_readable():
+    # the role palette derives from Okabe & Ito 2008 ("Color Universal Design"), a colour-blind-safe set (common
+    # practice); distinctness is measured in OKLab (Ottosson 2020). The 0.05 floor is our own judgement.
     cols = [np.array(_common._hex_rgb(_common.ROLE_COLOURS[r])) / 255 for r in _common.ROLES]
     lab = _common.srgb_to_oklab(np.array(cols))
     dist = [np.linalg.norm(lab[i] - lab[j]) for i in range(len(lab)) for j in range(i)]
@@ -366,6 +370,7 @@ def test_show_token_and_escape_never_pass_markup_or_control_characters(token):
 
 
 def test_map_view_block_mean_matches_numpy():
+    # reference: numpy's own mean over each block (a general-purpose library as the reference implementation)
     w = np.random.default_rng(0).random((10, 7)).astype(np.float32)
     mv = _common.map_view(w, max_side=4)
     assert (mv["step_q"], mv["step_k"], mv["rows"], mv["cols"]) == (3, 2, 4, 4)
@@ -379,6 +384,8 @@ def test_png_is_a_valid_image():
     import zlib
     rgb = _common.colourise(np.array([[0, 127], [254, 255]], dtype=np.uint8))
     png = _common.png_bytes(rgb)
+    # W3C PNG specification (2nd ed.): §5.2 the 8-byte signature, §11.2.2 IHDR width/height as big-endian
+    # uint32 after the chunk length and type; IDAT holds a zlib stream (RFC 1950), read with Python's zlib
     assert png[:8] == b"\x89PNG\r\n\x1a\n"
     w, h = struct.unpack(">II", png[16:24])
     assert (w, h) == (2, 2)

@@ -136,6 +136,7 @@ def test_sdpa_model_is_captured_through_a_capturing_path_with_a_notice(tmp_path,
     assert rec.capture == "registry"
     assert model.config._attn_implementation == "sdpa"         # restored
     ids = rec.units[0].ids
+    # reference implementation: transformers' own eager attention with output_attentions
     atts = eager_attentions(model, ids)
     for site, att in zip(s.sites, atts):
         _, w, _, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
@@ -161,6 +162,7 @@ def test_grouped_query_attention_matches_eager(kv_heads):
     s = tiny.subject("llama", heads=4, num_key_value_heads=kv_heads)
     assert s.model.config.num_key_value_heads == kv_heads and s.n_heads == 4
     rec = record(s, [FERRY], [Keep()])
+    # reference implementation: transformers' own eager attention with output_attentions
     atts = eager_attentions(s.model, rec.units[0].ids)
     for site, att in zip(s.sites, atts):
         sc, w, allowed, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
@@ -182,7 +184,9 @@ def test_sliding_window_mask_and_weights_match_eager():
     # when 0 <= i - j < W (common practice; rule read from that reference implementation)
     i = torch.arange(T)[:, None]
     j = torch.arange(T)[None, :]
+    # sliding-window attention (Jiang et al. 2023, Mistral 7B): query i sees keys i - W < j <= i
     expected = (i - j >= 0) & (i - j < W)
+    # reference implementation: transformers' own eager attention with output_attentions
     atts = eager_attentions(s.model, rec.units[0].ids)
     for site, att in zip(s.sites, atts):
         sc, w, allowed, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
@@ -224,6 +228,7 @@ def test_pad_strings_in_user_text_are_special_and_never_queries():
     is_pad = np.asarray(u.ids) == pad
     assert is_pad.sum() == 4 and u.special[is_pad].all()
     rec = record(s, units=[u], reducers=[WeightStats()])
+    # reference implementation: transformers' own eager attention with output_attentions
     w_all = eager_attentions(s.model, u.ids)
     ordinary = ~u.special
     q = np.flatnonzero(ordinary)
@@ -303,6 +308,7 @@ def test_model_on_an_accelerator_is_refused_clearly_or_captured_exactly():
         assert dev in str(exc) and "cpu" in str(exc).lower()
         return
     rec = record(s, [FERRY], [Keep()])
+    # reference implementation: transformers' own eager attention with output_attentions
     atts = eager_attentions(s.model, rec.units[0].ids)
     _, w, _, _ = rec.results["keep"][(0, "main", 0, 0)]
     torch.testing.assert_close(w.cpu(), atts[0][0].float().cpu(), atol=1e-4, rtol=1e-3)
@@ -317,6 +323,7 @@ def test_bloom_config_set_to_sdpa_is_recorded_eagerly_and_put_back():
         rec = record(s, [FERRY], [Keep()])
     assert rec.capture == "eager-weights" and s.model.config._attn_implementation == "sdpa"
     s.model.config._attn_implementation_internal = "eager"
+    # reference implementation: transformers' own eager attention with output_attentions
     atts = eager_attentions(s.model, rec.units[0].ids)
     for site, att in zip(s.sites, atts):
         _, w, _, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]

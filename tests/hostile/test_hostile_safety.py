@@ -75,6 +75,8 @@ def test_pickle_that_runs_code_never_runs_even_with_opt_in(tmp_path, llama_state
     with pytest.raises(AttnposError, match="pickle"):
         attnpos.load(d)
     assert not marker.exists()
+    # torch.load(weights_only=True) unpickles only tensors and plain containers and refuses other callables
+    # (PyTorch documentation, torch.load; the default since torch 2.6)
     with pytest.raises(AttnposError, match="weights_only"):
         attnpos.load(d, allow_pickle=True)
     assert not marker.exists()
@@ -82,7 +84,8 @@ def test_pickle_that_runs_code_never_runs_even_with_opt_in(tmp_path, llama_state
     assert_clean_error(code, err, "refused the pickle", "safetensors")
     assert not marker.exists()
 
-    # control: the payload is live; an unrestricted torch.load in a throw-away interpreter does run it
+    # control: the payload is live; an unrestricted torch.load in a throw-away interpreter does run it (pickle
+    # calls __reduce__ on load: Python documentation, "pickle — not secure against erroneous or malicious data")
     control = tmp_path / "control-ran.txt"
     state["lm_head.weight"] = _RunsCode(control)
     torch.save(state, tmp_path / "control.bin")

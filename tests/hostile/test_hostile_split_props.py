@@ -97,6 +97,8 @@ def _ok(fit):
 @SETTINGS
 @given(recordings())
 def test_shares_lie_in_unit_interval_and_sum_to_one(rec):
+    # Shapley 1953: the values of a game sum to the value of the whole (efficiency), and nested least-squares fits
+    # never lose R² (textbook regression), so every increment, and every share, is ≥ 0
     scores, tokens, causal, _ = rec
     fit = split_of(scores, tokens, causal)
     sh = fit.shares[0]
@@ -109,6 +111,8 @@ def test_shares_lie_in_unit_interval_and_sum_to_one(rec):
 @SETTINGS
 @given(recordings(), st.integers(-64, 64))
 def test_adding_a_constant_to_each_row_changes_nothing(rec, offset):
+    # a free per-row effect a_i absorbs any row constant (Frisch–Waugh–Lovell: fitting with row fixed effects equals
+    # fitting the within-row-demeaned data; textbook econometrics, common practice) — and softmax is invariant to it
     scores, tokens, causal, rng = rec
     base = split_of(scores, tokens, causal)
     shifted_scores = []
@@ -143,7 +147,8 @@ def test_profile_does_not_depend_on_the_order_of_texts(rec, random):
 @SETTINGS
 @given(recordings(max_len=15))
 def test_scores_built_from_the_named_parts_leave_no_residual(rec):
-    # below 16 every distance and slot is its own bucket, so a_i + d(δ) + g(j) + c(tok_j) is fitted exactly
+    # a worked example: below 16 every distance and slot is its own bucket, so scores built as
+    # a_i + d(δ) + g(j) + c(tok_j) lie in the model's span and least squares reproduces them exactly (R² = 1)
     _, tokens, causal, rng = rec
     scores = []
     vocab = max(max(t) for t in tokens) + 1

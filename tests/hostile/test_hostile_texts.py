@@ -88,6 +88,8 @@ def test_binary_file_is_refused(tmp_path, gpt2_dir, cli):
 
 def test_latin1_file_is_refused_with_the_offending_byte(tmp_path, gpt2_dir, cli):
     f = tmp_path / "menu.txt"
+    # ISO 8859-1 encodes é as the single byte 0xE9, which is not valid UTF-8 (RFC 3629: a lead byte 0xE0-0xEF
+    # needs two continuation bytes); "caf" is 3 bytes after "the " (4), so the byte is at offset 7
     f.write_bytes("the caf\u00e9 opens at eight".encode("latin-1"))
     code, _, err = cli("scan", gpt2_dir, "--text", f, *FAST)
     assert_clean_error(code, err, "menu.txt", "utf-8", "0xe9", "offset 7")
@@ -95,6 +97,7 @@ def test_latin1_file_is_refused_with_the_offending_byte(tmp_path, gpt2_dir, cli)
 
 def test_utf16_file_is_named_as_utf16(tmp_path):
     f = tmp_path / "wide.txt"
+    # Python's utf-16 codec writes a byte-order mark first (FF FE on little-endian machines; Unicode Standard §23.8)
     f.write_bytes("the ferry leaves at seven".encode("utf-16"))
     with pytest.raises(AttnposError, match="UTF-16"):
         texts.read([f])
@@ -102,6 +105,7 @@ def test_utf16_file_is_named_as_utf16(tmp_path):
 
 def test_utf8_byte_order_mark_is_not_part_of_the_text(tmp_path, gpt2):
     a, b = tmp_path / "bom.txt", tmp_path / "plain.txt"
+    # EF BB BF is U+FEFF encoded in UTF-8, the UTF-8 byte-order mark (Unicode Standard §23.8; RFC 3629 §6)
     a.write_bytes(b"\xef\xbb\xbf" + FERRY.encode("utf-8"))
     b.write_bytes(FERRY.encode("utf-8"))
     ua, ub = texts.prepare(gpt2, texts.read([a, b]))

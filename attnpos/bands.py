@@ -180,7 +180,7 @@ def rope_bands(subject, texts=None, *, units=None, max_tokens: int | None = None
         "wavelength","band"}], "layout", "rotary_dims", "head_dim", "context", "energy", "summary", "caution"}``.
     """
     from .capture import _forward
-    from .result import _clean
+    from .result import json_safe
     from .subject import Subject, load
     from .texts import as_raw, prepare
 
@@ -235,7 +235,7 @@ def rope_bands(subject, texts=None, *, units=None, max_tokens: int | None = None
                           "band": band})
             name = (f"{s.stack[:3]}:" if s.stack != "main" else "") + f"L{s.layer}.H{h}"
             summary[band].append(name)
-    return _clean({
+    return json_safe({
         "heads": heads, "pairs": pairs, "layout": run.layout, "rotary_dims": run.rotary_dims,
         "head_dim": run.head_dim, "context": context, "n_texts": len(units),
         "energy": ("share of pair m = mean over allowed (i, j) of (q_i^(m)·k_j^(m))², rotated pieces, "

@@ -52,7 +52,7 @@ def add_text_arguments(p: argparse.ArgumentParser) -> None:
 
 def add_model_arguments(p: argparse.ArgumentParser, default: str | None = "ref:rope") -> None:
     p.add_argument("model", nargs="?" if default else None, default=default,
-                   help=f"model folder (config.json + *.safetensors) or ref:<scheme>" +
+                   help="model folder (config.json + *.safetensors) or ref:<scheme>" +
                         (f" (default {default})" if default else ""))
     p.add_argument("--scheme", default=None,
                    help="state the position scheme by hand (one name, or comma-separated per layer): "

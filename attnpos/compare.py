@@ -26,7 +26,6 @@ from __future__ import annotations
 import json
 import sys
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -179,7 +178,7 @@ def compare(a, b, texts=None, *, all_heads: bool = False, **scan_kwargs) -> pd.D
 
 def to_json(table: pd.DataFrame) -> dict:
     """JSON-safe form of a comparison."""
-    from .result import _clean
+    from .result import json_safe
 
     heads = []
     for _, r in table.iterrows():
@@ -188,7 +187,7 @@ def to_json(table: pd.DataFrame) -> dict:
                       "changed_shares": list(r["changed_shares"]),
                       "slope": {"a": r["slope_a"], "b": r["slope_b"], "changed": bool(r["slope_changed"])},
                       "changed": bool(r["changed"]), "detail": r["detail"]})
-    return _clean({"a": table.attrs.get("a"), "b": table.attrs.get("b"), "summary": table.attrs.get("summary"),
+    return json_safe({"a": table.attrs.get("a"), "b": table.attrs.get("b"), "summary": table.attrs.get("summary"),
                    "rule": "changed = role differs, or a share's / the slope's 90% bootstrap intervals do not overlap",
                    "heads": heads, "notes": table.attrs.get("notes", []), "caution": CAUTION})
 

@@ -39,7 +39,7 @@ import sys
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Sequence
+from typing import Any
 
 import numpy as np
 import torch
@@ -90,9 +90,9 @@ class LengthResult:
     caution: str = CAUTION
 
     def to_json(self) -> dict:
-        from .result import _clean
+        from .result import json_safe
 
-        return _clean({
+        return json_safe({
             "model": self.model.get("name"), "subject": self.model,
             "position": self.position, "loss": self.loss, "loss_lo": self.loss_lo, "loss_hi": self.loss_hi,
             "training_length": self.training_length, "training_length_source": self.training_length_source,
@@ -116,10 +116,6 @@ class LengthResult:
             return ("—" if x is None or not np.isfinite(x) else f"{x:.{nd}f}").rjust(w)
 
         if self.loss is not None:
-            loss = np.asarray(self.loss, dtype=float)
-            lo = np.asarray(self.loss_lo, dtype=float)
-            hi = np.asarray(self.loss_hi, dtype=float)
-            pos = np.asarray(self.position)
             lines.append("next-token loss (nats) by position, mean over sequences, with the 90% bootstrap interval "
                          "of the bin mean (sequences resampled):")
             lines.append(f"{'positions':>13}  {'loss':>7}  {'interval':>17}")
@@ -211,7 +207,6 @@ class PositionCurves(Reducer):
         w, A = cap.weights, cap.allowed
         T = w.shape[-1]
         si = self.index[(cap.site.stack, cap.site.layer)]
-        hs = slice(cap.head0, cap.head0 + cap.n_heads)
         ordinary = ~np.asarray(cap.unit.special[:T], dtype=bool)
         n_allowed = A.sum(-1).numpy()
         b = self._bins(T)

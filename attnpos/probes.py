@@ -88,7 +88,7 @@ class ProbeResult:
     caution: str = CAUTION
 
     def to_json(self) -> dict:
-        from .result import _clean
+        from .result import json_safe
 
         out: dict[str, Any] = {
             "model": self.model.get("name"),
@@ -103,7 +103,7 @@ class ProbeResult:
             out["bands"] = self.bands
         out["notes"] = self.notes
         out["caution"] = self.caution
-        return _clean(out)
+        return json_safe(out)
 
     def save(self, path: str | Path) -> Path:
         path = Path(path)

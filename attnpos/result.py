@@ -47,8 +47,9 @@ HEAD_COLUMNS = [
 SHARE_PARTS = ("distance", "slot", "content", "residual")
 
 
-def _clean(x: Any) -> Any:
-    """JSON-safe value: NaN/inf become None, numpy scalars become Python ones."""
+def json_safe(x: Any) -> Any:
+    """JSON-safe value (for files and widget state alike): NaN/inf become None, numpy scalars and arrays become
+    Python numbers and lists, dict keys become strings."""
     if isinstance(x, (np.floating, float)):
         x = float(x)
         return None if not math.isfinite(x) else x
@@ -57,11 +58,11 @@ def _clean(x: Any) -> Any:
     if isinstance(x, np.bool_):
         return bool(x)
     if isinstance(x, np.ndarray):
-        return [_clean(v) for v in x.tolist()]
+        return [json_safe(v) for v in x.tolist()]
     if isinstance(x, (list, tuple)):
-        return [_clean(v) for v in x]
+        return [json_safe(v) for v in x]
     if isinstance(x, dict):
-        return {k: _clean(v) for k, v in x.items()}
+        return {str(k): json_safe(v) for k, v in x.items()}
     return x
 
 
@@ -156,7 +157,7 @@ class Scan:
                                 "low": prof["low"][i] if "low" in prof else None,
                                 "high": prof["high"][i] if "high" in prof else None}
             heads.append(e)
-        return _clean({
+        return json_safe({
             "schema": SCHEMA,
             "model": self.model,
             "versions": self.versions,

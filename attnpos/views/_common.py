@@ -17,6 +17,8 @@ from typing import Any, Iterable
 
 import numpy as np
 
+from ..result import json_safe
+
 # ------------------------------------------------------------------ roles
 ROLES = ("previous-token", "next-token", "local", "anchor", "counting", "content", "induction", "mixed")
 
@@ -257,21 +259,7 @@ def num(x: Any) -> float:
         return float("nan")
 
 
-def clean(x: Any) -> Any:
-    """JSON-safe for traitlets: NaN -> None, numpy scalars -> Python."""
-    if isinstance(x, (np.floating, float)):
-        return float(x) if math.isfinite(float(x)) else None
-    if isinstance(x, (np.integer,)):
-        return int(x)
-    if isinstance(x, np.bool_):
-        return bool(x)
-    if isinstance(x, np.ndarray):
-        return [clean(v) for v in x.tolist()]
-    if isinstance(x, (list, tuple)):
-        return [clean(v) for v in x]
-    if isinstance(x, dict):
-        return {str(k): clean(v) for k, v in x.items()}
-    return x
+clean = json_safe   # the same JSON-safe conversion the scan files use
 
 
 def text_of(x: Any) -> str:

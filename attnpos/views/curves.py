@@ -6,7 +6,7 @@ import anywidget
 import numpy as np
 import traitlets as t
 
-from . import _data, static
+from . import _common, _data, static
 from ._base import StaticFallback, css, esm
 
 
@@ -50,7 +50,7 @@ class Curves(StaticFallback, anywidget.AnyWidget):
             fields = [k for k in ln if k != "training_length"]
             tl = ln.get("training_length")
             series["length"] = {"fields": fields, "n": int(len(ln["position"])),
-                                "training_length": float(tl) if _data.finite(tl) else None}
+                                "training_length": float(tl) if _common.finite(tl) else None}
             lv = np.concatenate([ln[f] for f in fields]).astype("<f4").tobytes()
         with self.hold_sync():
             self.series = series

@@ -53,14 +53,23 @@ def _facts_table(rows: list[tuple[str, Any]], caption: str) -> str:
 
 
 def _texts_table(scan) -> str:
-    rows = []
+    """One row per source text; the windows a long text was split into are counted, not listed one by one."""
+    groups: dict = {}
     for i, t in enumerate(scan.texts):
-        win = t.get("window")
-        rows.append(f"<tr><td>{i}</td><td>{esc(t.get('name', ''))}</td><td>{esc(t.get('source', ''))}</td>"
-                    f"<td>{esc_plain(t.get('n_tokens', len(scan.tokens[i]) if i < len(scan.tokens) else '—'))}</td>"
-                    f"<td>{esc_plain(win) if win else '—'}</td></tr>")
+        key = (t.get("source", ""), t.get("name", "").split("#")[0] if t.get("window") else t.get("name", ""))
+        n = t.get("n_tokens", len(scan.tokens[i]) if i < len(scan.tokens) else 0)
+        g = groups.setdefault(key, {"first": i, "units": 0, "tokens": 0})
+        g["units"] += 1
+        g["tokens"] += n or 0
+    rows = []
+    for (source, name), g in groups.items():
+        last = g["first"] + g["units"] - 1
+        idx = f"{g['first']}" if g["units"] == 1 else f"{g['first']}–{last}"
+        rows.append(f"<tr><td>{idx}</td><td>{esc(name)}</td><td>{esc(source)}</td>"
+                    f"<td>{esc_plain(g['tokens'])}</td><td>{esc_plain(g['units'])}</td></tr>")
     return ("<table><caption style='text-align:left;font-weight:600;padding:4px 0'>texts</caption>"
-            "<tr><th>#</th><th>name</th><th>source</th><th>tokens</th><th>window</th></tr>" + "".join(rows) + "</table>")
+            "<tr><th>#</th><th>name</th><th>source</th><th>tokens</th><th>windows</th></tr>" + "".join(rows)
+            + "</table>")
 
 
 def _head_table(scan) -> str:

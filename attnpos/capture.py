@@ -22,6 +22,7 @@ Example::
 from __future__ import annotations
 
 import contextlib
+import functools
 import sys
 import warnings
 from dataclasses import dataclass, field
@@ -41,6 +42,16 @@ FUNCTION_NAME = "attnpos_capture"
 # matters most on a busy machine, where every parallel operation waits for its threads.
 CHUNK_BYTES = 256 * 2**20
 
+# rows per block of a causal layer: block r0:r1 only forms keys < r1, so q·kᵀ, the softmax, weights·v and the
+# reducers' sums touch about (1 + 1/blocks)/2 of the (T, T) pairs, and one block's rows stay in cache between steps
+ROW_BLOCK = 256
+
+
+def causal_blocks(T: int, rows: int | None = None) -> tuple[tuple[int, int, int], ...]:
+    """Row blocks ``(r0, r1, k1)`` of a causal (T, T) layer: rows r0:r1 allow keys < k1 = r1 only."""
+    rows = rows or ROW_BLOCK
+    return tuple((r0, min(T, r0 + rows), min(T, r0 + rows)) for r0 in range(0, T, rows))
+
 
 @dataclass
 class LayerCapture:
@@ -55,6 +66,10 @@ class LayerCapture:
     chunk (copy what you keep). For sums over the allowed pairs, :meth:`zeroed_scores` gives the same scores with
     0 on disallowed pairs. The registry path computes that form anyway and passes it as ``zeroed`` with
     ``scores=None``; ``scores`` (with ``-inf``) is then built only if a reducer reads it.
+
+    ``row_blocks`` (see :meth:`blocks`) says where the allowed pairs lie: rows r0:r1 allow keys < k1 only, so a
+    sum over the allowed pairs may read ``x[:, r0:r1, :k1]`` block by block instead of the whole tensor (about half
+    of it in a causal layer). Everything beyond holds 0 weight and 0 zeroed score all the same.
     """
 
     site: AttentionSite
@@ -68,6 +83,14 @@ class LayerCapture:
     score_kind: str
     offset: int = 0
     zeroed: torch.Tensor | None = None
+    row_blocks: tuple | None = None
+
+    def blocks(self) -> tuple[tuple[int, int, int], ...]:
+        """Row blocks ``(r0, r1, k1)`` covering all rows; rows r0:r1 have no allowed key at or beyond k1."""
+        if self.row_blocks is not None:
+            return self.row_blocks
+        q, k = self.weights.shape[-2:]
+        return ((0, q, k),)
 
     def zeroed_scores(self) -> torch.Tensor:
         """The scores with 0 instead of ``-inf`` on disallowed pairs (read-only)."""
@@ -148,6 +171,7 @@ class _Run:
         self.score_maps: dict = {}
         self.nonfinite: set = set()
         self._buffers: dict[str, torch.Tensor] = {}
+        self._zero_outside: dict[str, tuple] = {}       # buffer name → (shape, blocks) it is known to be 0 outside
         self._masks: dict[tuple, tuple] = {}
 
     def mask_facts(self, attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
@@ -162,25 +186,38 @@ class _Run:
             hit = self._masks[key] = (attention_mask, _mask_facts(attention_mask, q_len, k_len, causal))
         return hit[1]
 
-    def buffer(self, name: str, shape: tuple[int, ...]) -> torch.Tensor:
+    def buffer(self, name: str, shape: tuple[int, ...], blocks: tuple | None = None) -> torch.Tensor:
         """A float32 work tensor of ``shape``, reused across chunks, layers and texts of this run (fresh pages for
-        every chunk would cost about as much as the arithmetic)."""
+        every chunk would cost about as much as the arithmetic). With ``blocks`` (row blocks ``(r0, r1, k1)``) the
+        caller writes only ``[:, r0:r1, :k1]`` and the rest is 0: zeroed here once, kept while the buffer serves
+        the same shape and blocks."""
         n = int(np.prod(shape))
         buf = self._buffers.get(name)
         if buf is None or buf.numel() < n:
             self._buffers[name] = buf = torch.empty(n, dtype=torch.float32)
-        return buf[:n].view(shape)
+            self._zero_outside.pop(name, None)
+        view = buf[:n].view(shape)
+        if blocks is None:
+            self._zero_outside.pop(name, None)
+        elif self._zero_outside.get(name) != (shape, blocks):
+            _zero_outside(view, blocks)
+            self._zero_outside[name] = (shape, blocks)
+        return view
 
     def deliver(self, site: AttentionSite, scores: torch.Tensor | None, weights: torch.Tensor,
                 allowed: torch.Tensor, head0: int, *, zeroed: torch.Tensor | None = None,
-                weights_checked: bool = False) -> None:
+                weights_checked: bool = False, blocks: tuple | None = None, finite: bool | None = None) -> None:
         """Hand one chunk of heads to the reducers. Give ``scores`` (-inf on disallowed pairs) or ``zeroed`` (0
-        there); ``weights_checked`` says the weights are finite whenever the scores are (a softmax of them)."""
+        there); ``weights_checked`` says the weights are finite whenever the scores are (a softmax of them);
+        ``blocks``: row blocks outside which every pair is disallowed (see :class:`LayerCapture`); ``finite``:
+        the caller has already checked the zeroed scores for NaN and ±inf (the result)."""
         self.seen.add(id(site.module))
         n = weights.shape[0]
         # NaN anywhere, or ±inf on an allowed pair (the capture function turns NaN weights of such rows into 0, so
         # the scores are what shows an overflow or a NaN weight); min and max propagate NaN and show ±inf
-        if zeroed is not None:
+        if finite is not None:
+            ok = finite
+        elif zeroed is not None:
             ok = _all_finite(zeroed)
         else:
             ok = bool((torch.isfinite(scores) | ~allowed).all())
@@ -191,7 +228,7 @@ class _Run:
             unit = _decoder_view(self.subject, unit)
         cap = LayerCapture(site=site, text=self.text, unit=unit, head0=head0, n_heads=n,
                            scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
-                           offset=self.offset, zeroed=zeroed)
+                           offset=self.offset, zeroed=zeroed, row_blocks=blocks)
         for r in self.reducers:
             r.update(cap)
         if self.keep is not None:
@@ -201,6 +238,12 @@ class _Run:
                     self.maps[key] = weights[h].detach().to(torch.float32).numpy().copy()
                     if self.keep_scores:
                         self.score_maps[key] = cap.scores[h].detach().to(torch.float32).numpy().copy()
+
+
+def _zero_outside(x: torch.Tensor, blocks: tuple) -> None:
+    """Set ``x[:, r0:r1, k1:]`` to 0 for every row block."""
+    for r0, r1, k1 in blocks:
+        x[:, r0:r1, k1:].zero_()
 
 
 def _all_finite(x: torch.Tensor) -> bool:
@@ -259,12 +302,20 @@ def _mask_facts(attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
     return allowed, pattern, empty_rows, has_values
 
 
+@functools.lru_cache(maxsize=4)
+def _upper(n: int) -> torch.Tensor:
+    """(n, n) boolean: True strictly above the diagonal."""
+    return torch.ones(n, n, dtype=torch.bool).triu(1)
+
+
 def _capture_attention(module, query, key, value, attention_mask, scaling=None, dropout=0.0, **kwargs):
     """Eager attention that also hands scores and weights to the active run (registered in the registry).
 
     Per chunk of heads, in two reused buffers: scores = scaling·q·kᵀ (+ bias, softcap, a mask's finite values), set
     to 0 on disallowed pairs in place (the form the reducers sum over); weights = softmax over the allowed keys,
-    computed in place in the second buffer; out = weights·v.
+    computed in place in the second buffer; out = weights·v. A causal layer is computed in row blocks
+    (:func:`causal_blocks`) that form only the keys each block may see, each in a contiguous scratch tensor and
+    copied into the two buffers, which hold 0 beyond the blocks.
     """
     run = _ACTIVE[-1] if _ACTIVE else None
     site = run.site_of.get(id(module)) if run else None
@@ -290,38 +341,67 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
     chunk = -(-n_heads // n_chunks)          # equal chunks: 12 heads in 3 × 4 rather than 5 + 5 + 2
     out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype)
     neg_inf = torch.tensor(float("-inf"))
+    # causal and square (the usual case): row blocks, each forming only the keys it may see
+    blocks = causal_blocks(q_len) if pattern == "causal" and q_len == k_len else None
     for b in range(bsz):
+        pb = ma = None
+        if bias is not None:
+            pb = bias[min(b, bias.shape[0] - 1)]
+        if mask_add is not None:
+            ma = mask_add[min(b, mask_add.shape[0] - 1)]
         for h0 in range(0, n_heads, chunk):
             h1 = min(n_heads, h0 + chunk)
             shape = (h1 - h0, q_len, k_len)
-            s = run.buffer("scores", shape) if run is not None else torch.empty(shape)
-            w = run.buffer("weights", shape) if run is not None else torch.empty(shape)
-            torch.baddbmm(s, query[b, h0:h1].float(), key[b, h0:h1].float().transpose(-1, -2), beta=0.0,
-                          alpha=scaling, out=s)
-            if bias is not None:
-                pb = bias[min(b, bias.shape[0] - 1)]
-                s += (pb[h0:h1] if pb.shape[0] > 1 else pb).float()
-            if softcap:
-                s.div_(softcap).tanh_().mul_(softcap)
-            if mask_add is not None:
-                ma = mask_add[min(b, mask_add.shape[0] - 1)]
-                s += (ma[h0:h1] if ma.shape[0] > 1 else ma).float()
-            # scores with 0 on disallowed pairs
-            if pattern == "causal":
-                s.tril_(k_len - q_len)
-            elif pattern == "general":
-                s.masked_fill_(not_allowed, 0.0)
-            # weights: softmax over the allowed keys (-inf elsewhere), in place
-            if pattern == "none":
-                w.copy_(s)
+            if run is not None:
+                s, w = run.buffer("scores", shape, blocks), run.buffer("weights", shape, blocks)
             else:
-                torch.where(allowed, s, neg_inf, out=w)
-            torch.softmax(w, dim=-1, out=w)
-            if empty_rows:
-                w.nan_to_num_(nan=0.0)  # rows with no allowed key
-            torch.matmul(w.to(value.dtype), value[b, h0:h1], out=out[b, h0:h1])
+                s, w = torch.zeros(shape), torch.zeros(shape)
+            qb, kb, vb = query[b, h0:h1].float(), key[b, h0:h1].float(), value[b, h0:h1]
+            pbh = None if pb is None else (pb[h0:h1] if pb.shape[0] > 1 else pb)
+            mah = None if ma is None else (ma[h0:h1] if ma.shape[0] > 1 else ma)
+            finite = True
+            for r0, r1, k1 in blocks or ((0, q_len, k_len),):
+                # c: this block's scores, in a contiguous scratch when blocked (a strided view of s would slow
+                # the softmax below), then the weights in place
+                if blocks is None:
+                    c = s
+                else:
+                    bshape = (h1 - h0, r1 - r0, k1)
+                    c = run.buffer("block", bshape) if run is not None else torch.empty(bshape)
+                torch.baddbmm(c, qb[:, r0:r1], kb[:, :k1].transpose(-1, -2), beta=0.0, alpha=scaling, out=c)
+                if pbh is not None:
+                    c += pbh[..., r0:r1, :k1].float()
+                if softcap:
+                    c.div_(softcap).tanh_().mul_(softcap)
+                if mah is not None:
+                    c += mah[..., r0:r1, :k1].float()
+                # scores with 0 on disallowed pairs (only the block's diagonal square has any when blocked)
+                if blocks is not None:
+                    c[:, :, r0:r1].tril_()
+                elif pattern == "causal":
+                    c.tril_(k_len - q_len)
+                elif pattern == "general":
+                    c.masked_fill_(not_allowed, 0.0)
+                # NaN anywhere, or ±inf on an allowed pair (min and max propagate NaN and show ±inf)
+                finite = finite and _all_finite(c)
+                # weights: softmax over the allowed keys (-inf elsewhere), in place
+                if blocks is not None:
+                    s[:, r0:r1, :k1].copy_(c)
+                    c[:, :, r0:r1].masked_fill_(_upper(r1 - r0), float("-inf"))
+                    wb = c
+                elif pattern == "none":
+                    wb = w.copy_(s)
+                else:
+                    wb = torch.where(allowed, s, neg_inf, out=w)
+                torch.softmax(wb, dim=-1, out=wb)
+                if empty_rows:
+                    wb.nan_to_num_(nan=0.0)  # rows with no allowed key
+                if blocks is not None:
+                    w[:, r0:r1, :k1].copy_(wb)
+                torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
             if site is not None and b == 0:
-                run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True)
+                run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True, blocks=blocks,
+                            finite=finite)
     return out.transpose(1, 2).contiguous(), None
 
 

@@ -69,13 +69,15 @@ def band(x: torch.Tensor, N: int) -> torch.Tensor:
     return x.reshape(n, T * T).index_select(1, idx).view(n, T, 2 * N + 1) * ok.to(x.dtype)
 
 
-def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, nb: torch.Tensor) -> torch.Tensor:
+def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, nb: torch.Tensor, blocks=None) -> torch.Tensor:
     """Σ over ordinary queries i with |i − j| ≥ ANCHOR_MIN_DISTANCE of x[:, i, j], per key j: all ordinary rows
-    (one matrix-vector product) minus the diagonals |δ| < ANCHOR_MIN_DISTANCE, read from the band ``nb``
-    (``band(x, NEAR)``). Near queries are left out so that a head that looks a few tokens back is not mistaken
-    for one that looks at a fixed slot."""
+    (a matrix-vector product per row block, see :meth:`LayerCapture.blocks`) minus the diagonals
+    |δ| < ANCHOR_MIN_DISTANCE, read from the band ``nb`` (``band(x, NEAR)``). Near queries are left out so that a
+    head that looks a few tokens back is not mistaken for one that looks at a fixed slot."""
     T = x.shape[-1]
-    col = torch.matmul(ordf, x)                    # (n, T)
+    col = x.new_zeros(x.shape[0], T)               # (n, T)
+    for r0, r1, k1 in blocks or ((0, T, T),):
+        col[:, :k1] += torch.matmul(ordf[r0:r1], x[:, r0:r1, :k1])
     b = nb * ordf[None, :, None]
     for d in range(-(ANCHOR_MIN_DISTANCE - 1), ANCHOR_MIN_DISTANCE):
         if abs(d) >= T:
@@ -92,7 +94,7 @@ def _far_column_sums(x: torch.Tensor, ordf: torch.Tensor, nb: torch.Tensor) -> t
 _NORMAL_WEIGHT = 1e-30
 
 
-def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = None) -> torch.Tensor:
+def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = None, blocks=None) -> torch.Tensor:
     """Entropy −Σ_j w_ij log w_ij of every row of (n, T, T) weights (0·log 0 = 0), as (n, T), given the scores
     ``s0`` (0 on disallowed pairs) that the weights are a softmax of.
 
@@ -102,7 +104,8 @@ def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = N
     weight is a normal float; we take the largest weight within |δ| ≤ NEAR (``near``: :func:`band` of w, already at
     hand) and search the whole row only where that is too small. The error is that of float32 sums of w·s: about
     1e-7 × the row's largest |score| × a small factor (measured: 1e-4 with scores near 150; the per-pair logarithm
-    gives 1e-6) — far below anything the roles read from entropy.
+    gives 1e-6) — far below anything the roles read from entropy. ``blocks``: row blocks beyond which w is 0
+    (:meth:`LayerCapture.blocks`); the sums read only inside them.
     """
     n, T, _ = w.shape
     if near is not None:
@@ -116,11 +119,16 @@ def row_entropy(w: torch.Tensor, s0: torch.Tensor, near: torch.Tensor | None = N
     else:
         top, j = w.max(-1)
     L = s0.gather(-1, j.clamp(0, T - 1)[..., None])[..., 0].double() - torch.log(top.double())
-    if w.is_contiguous() and s0.is_contiguous():
+    if blocks is None and w.is_contiguous() and s0.is_contiguous():
         dot = torch.bmm(w.view(n * T, 1, T), s0.view(n * T, T, 1)).view(n, T)
+        mass = w.sum(-1)
     else:
-        dot = (w * s0).sum(-1)
-    return (L * w.sum(-1).double() - dot.double()).float()
+        dot, mass = w.new_empty(n, T), w.new_empty(n, T)
+        for r0, r1, k1 in blocks or ((0, T, T),):
+            wb = w[:, r0:r1, :k1]
+            dot[:, r0:r1] = torch.linalg.vecdot(wb, s0[:, r0:r1, :k1])
+            mass[:, r0:r1] = wb.sum(-1)
+    return (L * mass.double() - dot.double()).float()
 
 
 def _skew_accumulate(v: torch.Tensor, a: int, T: int, out: torch.Tensor, lower: bool) -> None:
@@ -129,13 +137,16 @@ def _skew_accumulate(v: torch.Tensor, a: int, T: int, out: torch.Tensor, lower: 
     Skew row i is a T × T matrix's elements (i, i), (i, i + 1), …, (i, T − 1), (i + 1, 0), …, (i + 1, i): in a
     contiguous matrix, rows of T + 1 elements starting at (i, i). Column k holds diagonal δ = −k in rows i < T − k
     and δ = T + 1 − k in the rows below (``out[:, δ + T − 1]``; the spare last entry takes δ = T, always 0).
-    ``lower=True``: the matrix is zero above its diagonal, so each column holds one diagonal.
+    ``lower=True``: the matrix is zero above its diagonal, so each column holds one diagonal and the rows read
+    only the columns that reach below it.
     """
     r1 = a + v.shape[1]
     if lower:
-        cols = v.sum(1)                            # column 0: δ = 0; column k ≥ 2: δ = T + 1 − k
-        out[:, T - 1] += cols[:, 0]
-        out[:, T:2 * T - 1] += cols[:, 2:].flip(-1)
+        # column 0: δ = 0; column k ≥ 2: δ = T + 1 − k, from matrix row i + 1 at key i + k − T, which is inside
+        # the matrix (and may be non-zero) only for k ≥ T − i: rows i < r1 need columns k ≥ T + 1 − r1 alone
+        k0 = max(2, T + 1 - r1)
+        out[:, T - 1] += v[:, :, 0].sum(1)
+        out[:, T:2 * T - k0 + 1] += v[:, :, k0:].sum(1).flip(-1)
         return
     # columns k ≤ T − r1: every row is above the boundary → δ = −k (out index T − 1 − k)
     out[:, r1 - 1:T] += v[:, :, :T - r1 + 1].sum(1).flip(-1)
@@ -164,7 +175,7 @@ def diagonal_sums(x: torch.Tensor, lower: bool = False) -> torch.Tensor:
     out[:, T - 1] = x[:, T - 1, T - 1]
     if T > 1:
         v = x.as_strided((n, T - 1, T + 1), (T * T, T + 1, 1), x.storage_offset())
-        step = T - 1 if lower else 512
+        step = 256 if lower else 512
         for a in range(0, T - 1, step):
             _skew_accumulate(v[:, a:a + step], a, T, out, lower)
     return out[:, :2 * T - 1]
@@ -176,7 +187,7 @@ ROW_CONSTANT_RATIO = 64.0
 
 
 def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, kind: str, n_i: torch.Tensor, rows_c: torch.Tensor,
-                 scratch: torch.Tensor | None = None):
+                 scratch: torch.Tensor | None = None, blocks=None):
     """Sums of the row-centred scores over the allowed pairs, per head.
 
     With m_i the mean of row i over its allowed keys and c_ij = s_ij − m_i on allowed pairs (0 elsewhere), returns
@@ -189,17 +200,23 @@ def centred_sums(s0: torch.Tensor, allowed: torch.Tensor, kind: str, n_i: torch.
     one read each, centred afterwards in float64 — Σ c² = Σ s² − n·m² per row, and the per-row feature counts
     ``rows_c`` (T, p) turn raw feature sums into centred ones (Xᵀc = Xᵀs − Cᵀm). Where a head's row constants
     are large (ALiBi's −m·i, log-weights, an offset key bias), float32 sums of raw scores would lose the spread, so
-    the scores are centred first into ``scratch`` and summed from there.
+    the scores are centred first into ``scratch`` and summed from there. ``blocks``: row blocks beyond which s0 is
+    0 (:meth:`LayerCapture.blocks`); the row and column sums read only inside them.
     """
     lower = kind == "causal"
-    rows = s0.sum(-1).double()
+    n, T, _ = s0.shape
+    rows, sq, col = s0.new_empty(n, T), s0.new_empty(n, T), s0.new_zeros(n, T)
+    for r0, r1, k1 in blocks or ((0, T, T),):
+        sb = s0[:, r0:r1, :k1]
+        rows[:, r0:r1] = sb.sum(-1)
+        sq[:, r0:r1] = torch.linalg.vector_norm(sb, dim=-1)
+        col[:, :k1] += sb.sum(-2)
+    rows = rows.double()
     m = rows / n_i.clamp_min(1.0)
-    sq = torch.linalg.vector_norm(s0, dim=-1).double() ** 2
-    ssw = (sq - rows * m).sum(-1)
+    ssw = (sq.double() ** 2 - rows * m).sum(-1)
     if bool(((rows * m).sum(-1) <= ROW_CONSTANT_RATIO * ssw).all()):
-        col = s0.sum(-2).double()
         diag = diagonal_sums(s0, lower).double()
-        return ssw, (diag, col), m @ rows_c
+        return ssw, (diag, col.double()), m @ rows_c
     c = torch.sub(s0, m.float()[..., None], out=scratch)
     if lower:
         c.tril_()
@@ -242,10 +259,12 @@ class WeightStats(Reducer):
     def update(self, cap: LayerCapture) -> None:
         o = cap.offset
         w, A, s0 = cap.weights, cap.allowed, cap.zeroed_scores()
+        blocks = cap.blocks()
         if o:  # renormalise over the text's own keys
             w = w[:, o:, o:]
             w = w / w.sum(-1, keepdim=True).clamp_min(1e-30)
             A, s0 = A[o:, o:], s0[:, o:, o:]
+            blocks = None
         T = w.shape[-1]
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
@@ -263,10 +282,10 @@ class WeightStats(Reducer):
         self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
         # entropy relative to log(number of allowed keys)
         if qe.any():
-            ent = row_entropy(w, s0, nb)[:, qe] / torch.log(n_allowed[qe].double()).float()
+            ent = row_entropy(w, s0, nb, blocks)[:, qe] / torch.log(n_allowed[qe].double()).float()
             self.ent[si, hs] += ent.sum(-1).double().numpy()
         # weight per slot over queries at least ANCHOR_MIN_DISTANCE tokens away (local heads are not anchors)
-        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb).double().numpy()
+        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb, blocks).double().numpy()
 
     def _queries(self, cap: LayerCapture, A: torch.Tensor) -> tuple:
         """Which queries enter each statistic: ordinary ones (as 0/1 floats), the allowed keys per query, entropy
@@ -521,7 +540,7 @@ class SplitStats(Reducer):
         if self._scratch is None or self._scratch.numel() < s0.numel():
             self._scratch = torch.empty(s0.numel(), dtype=s0.dtype)
         ssw, (diag, col), correction = centred_sums(s0, cap.allowed, kind, n_i, rows_c,
-                                                    self._scratch[:s0.numel()].view(s0.shape))
+                                                    self._scratch[:s0.numel()].view(s0.shape), cap.blocks())
         FD, FJ = self._features(cap, s0.shape[-1])
         b = torch.cat([diag @ FD, col @ FJ], dim=-1)
         if correction is not None:

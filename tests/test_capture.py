@@ -97,7 +97,7 @@ def test_capture_matches_eager(arch):
 
 def _rope_reference(x, n_heads, base=10000.0):
     """RoPE (Su et al., RoFormer) in the rotate-half layout: pairs (k, k + d/2) rotate by angle p·base^(-2k/d)."""
-    T, H, d = x.shape[0], n_heads, x.shape[-1]
+    T, d = x.shape[0], x.shape[-1]
     pos = torch.arange(T, dtype=torch.float64)[:, None]
     inv = base ** (-torch.arange(0, d, 2, dtype=torch.float64) / d)
     ang = pos * inv[None, :]                        # (T, d/2)

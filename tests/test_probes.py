@@ -5,7 +5,6 @@ facts from the papers, with margins wide enough for a small CPU-trained model.
 """
 
 import json
-import math
 
 import numpy as np
 import pytest
@@ -98,7 +97,7 @@ def test_learned_absolute_layer0_decodes_position(tmp_path, corpus_texts, capsys
     assert code == 0
     data = json.loads(out.read_text())
     r0 = data["layers"][0]
-    print(f"\nref:learned-absolute probe: " + ", ".join(f"L{r['layer']} R² {r['r2']:.3f} (control "
+    print("\nref:learned-absolute probe: " + ", ".join(f"L{r['layer']} R² {r['r2']:.3f} (control "
                                                      f"{r['control_r2']:.3f})" for r in data["layers"]))
     assert r0["r2"] > 0.8
     assert abs(r0["control_r2"]) < 0.05

@@ -6,7 +6,7 @@ import torch
 
 import attnpos
 from attnpos.capture import record
-from attnpos.reducers import SplitStats, WeightStats
+from attnpos.reducers import SplitStats
 from attnpos.split import Split
 
 import tiny

@@ -11,7 +11,7 @@ from attnpos.errors import AttnposError
 from attnpos.reducers import SplitStats, WeightStats
 
 import tiny
-from conftest import FERRY, HARBOUR, assert_same_state, model_state
+from hostile_kit import FERRY, HARBOUR, assert_same_state, model_state
 
 pytestmark = pytest.mark.hostile
 

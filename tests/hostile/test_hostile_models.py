@@ -18,7 +18,7 @@ from attnpos.reducers import SplitStats, WeightStats
 from attnpos.split import Split
 
 import tiny
-from conftest import FERRY, HARBOUR, assert_clean_error, save_checkpoint
+from hostile_kit import FERRY, HARBOUR, assert_clean_error, save_checkpoint
 
 pytestmark = pytest.mark.hostile
 

@@ -5,7 +5,6 @@ from __future__ import annotations
 import json
 import os
 import re
-import shutil
 import threading
 from html.parser import HTMLParser
 from pathlib import Path
@@ -18,7 +17,7 @@ from attnpos.errors import AttnposError
 from attnpos.findings import Findings
 
 import tiny
-from conftest import FERRY, assert_clean_error, run_subprocess, save_checkpoint, start_subprocess
+from hostile_kit import FERRY, assert_clean_error, run_subprocess, save_checkpoint, start_subprocess
 
 pytestmark = pytest.mark.hostile
 
@@ -366,7 +365,7 @@ def test_two_processes_writing_findings_lose_nothing(tmp_path):
     import subprocess
     import sys
 
-    from conftest import ROOT
+    from hostile_kit import ROOT
 
     path = tmp_path / "shared.json"
     n = 15

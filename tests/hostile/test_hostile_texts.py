@@ -3,11 +3,9 @@
 from __future__ import annotations
 
 import json
-import warnings
 
 import numpy as np
 import pytest
-import torch
 
 import attnpos
 from attnpos import texts
@@ -16,7 +14,7 @@ from attnpos.errors import AttnposError
 from attnpos.reducers import WeightStats
 
 import tiny
-from conftest import FERRY, HARBOUR, assert_clean_error
+from hostile_kit import FERRY, HARBOUR, assert_clean_error
 
 pytestmark = pytest.mark.hostile
 

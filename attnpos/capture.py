@@ -479,6 +479,11 @@ def _weights_path(subject: Subject, run_ref: list):
                     T = w.shape[-1]
                     allowed = (torch.ones(T, T, dtype=torch.bool).tril() if site.causal
                                else torch.ones(T, T, dtype=torch.bool))
+                    if site.causal and bool((w.triu(1) > 0).any()):
+                        raise AttnposError(
+                            f"{site.stack}:L{site.layer} ({site.name}) gives weight to later tokens, but attnpos "
+                            "took the model for a causal one. Please report the architecture; attnpos will not "
+                            "mask weights the model uses.")
                     s = torch.log(w.clamp_min(1e-30)).masked_fill(~allowed, float("-inf"))
                     run.deliver(site, s, w.masked_fill(~allowed, 0.0), allowed, 0)
                     return tuple(None if j == k else x for j, x in enumerate(output))

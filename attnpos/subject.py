@@ -336,10 +336,15 @@ def _is_causal_module(model, module, stack) -> bool:
     v = getattr(module, "is_causal", None)
     if isinstance(v, bool):
         return v
-    mt = getattr(model.config, "model_type", "")
-    if mt in ENCODER_TYPES:
+    config = model.config
+    if getattr(config, "is_decoder", False):
+        return True
+    if getattr(config, "model_type", "") in ENCODER_TYPES:
         return False
-    return True
+    # an architecture with no causal-LM class in transformers is an encoder (DeBERTa-v2, …)
+    from transformers.models.auto.modeling_auto import MODEL_FOR_CAUSAL_LM_MAPPING
+
+    return type(config) in MODEL_FOR_CAUSAL_LM_MAPPING
 
 
 # ---------------------------------------------------------------------------------------------------- schemes
@@ -385,15 +390,18 @@ def _detect_schemes(model, sites) -> list[str | None]:
     if mt == "smollm3":
         flags = list(getattr(config, "no_rope_layers", None) or [1] * n)
         return ["rope" if flags[s.layer] else "none" for s in sites]
-    if mt == "bloom" or getattr(config, "alibi", False) or getattr(config, "position_embedding_type", "") == "alibi":
+    if (mt == "bloom" or getattr(config, "alibi", False) or getattr(config, "position_embedding_type", "") == "alibi"
+            or _attn_config_alibi(config)):
         return ["alibi"] * n
     if mt in ("t5", "mt5", "umt5", "longt5") or hasattr(config, "relative_attention_num_buckets"):
         return ["relative-bias"] * n
+    # a learned relative-position embedding inside attention (older BERT-style "relative_key" variants; DeBERTa's
+    # disentangled attention, with or without an absolute table beside it) is none of our schemes: say so rather
+    # than report only the table
+    if _relative_embedding(model):
+        return [None] * n
     table = _position_table(model)
     if table is not None:
-        # older BERT-style "relative_key" variants add a distance embedding inside attention: not one of ours
-        if any(nm.endswith("distance_embedding") for nm, _ in model.named_modules()):
-            return [None] * n
         return ["sinusoidal" if _is_sinusoidal(table) else "learned-absolute"] * n
     has_rotary = any("rotary" in nm.lower() for nm, _ in model.named_modules())
     if has_rotary or getattr(config, "rope_parameters", None) or getattr(config, "rope_theta", None):
@@ -403,12 +411,31 @@ def _detect_schemes(model, sites) -> list[str | None]:
     return [None] * n
 
 
+def _relative_embedding(model) -> str | None:
+    """The name of a learned relative-position embedding module used inside attention, if there is one."""
+    for nm, _ in model.named_modules():
+        if nm.split(".")[-1] in ("distance_embedding", "rel_embeddings"):
+            return nm
+    return None
+
+
+def _attn_config_alibi(config) -> bool:
+    """MPT keeps its ALiBi flag in a nested attention config (an object, or a dict in older files)."""
+    ac = getattr(config, "attn_config", None)
+    flag = ac.get("alibi") if isinstance(ac, dict) else getattr(ac, "alibi", None)
+    return flag is True
+
+
 def _scheme_clues(model) -> str:
     config = model.config
     clues = [f"model_type={getattr(config, 'model_type', '?')}"]
     t = _position_table(model)
     clues.append("a position table" if t is not None else "no position table")
     clues.append("rotary modules" if any("rotary" in n.lower() for n, _ in model.named_modules()) else "no rotary modules")
+    rel = _relative_embedding(model)
+    if rel:
+        clues.append(f"a learned relative-position embedding inside attention ({rel}), which is none of attnpos's "
+                     "schemes (the nearest is relative-bias)")
     pet = getattr(config, "position_embedding_type", None)
     if pet:
         clues.append(f"position_embedding_type={pet}")

@@ -92,7 +92,7 @@ def test_capture_matches_eager(arch):
         site = next(x for x in s.sites if (x.stack, x.layer) == (stack, layer))
         if site.causal:
             assert not allowed.triu(1).any()
-    assert rec.capture == ("eager-weights" if arch == "bloom" else "registry")
+    assert rec.capture == ("eager-weights" if arch in ("bloom", "mpt") else "registry")
 
 
 def _rope_reference(x, n_heads, base=10000.0):
@@ -208,3 +208,30 @@ def test_minilm_masses_match_direct_weights(minilm):
         np.testing.assert_allclose(rows.mass_self, self_, atol=1e-5)
     assert sc.model["scheme"] == "learned-absolute" and sc.model["causal"] is False
     assert len(sc.heads) == 6 * 12
+
+
+@pytest.mark.parametrize("absolute_too", [True, False])
+def test_relative_embedding_inside_attention_is_not_guessed(absolute_too):
+    # DeBERTa's disentangled attention (He et al. 2021) adds learned relative-position terms inside attention,
+    # with or without an absolute table beside it: none of the six schemes, so attnpos must not report the table
+    import transformers as tf
+
+    torch.manual_seed(0)
+    cfg = tf.DebertaV2Config(num_hidden_layers=2, num_attention_heads=4, hidden_size=32, intermediate_size=64,
+                             vocab_size=tiny.VOCAB, max_position_embeddings=128, relative_attention=True,
+                             position_buckets=32, pos_att_type=["p2c", "c2p"], position_biased_input=absolute_too)
+    model = tf.DebertaV2Model(cfg)
+    with pytest.raises(attnpos.AttnposError, match="relative-position embedding inside attention"):
+        attnpos.from_model(model, tiny.tokenizer())
+    s = attnpos.from_model(model, tiny.tokenizer(), scheme="relative-bias")
+    rec = record(s, [TEXT], [Keep()])
+    out = _direct(s, rec.units[0].ids)
+    # transformers' eager attention with output_attentions is the reference implementation
+    for site, att in zip(s.sites, out.attentions):
+        _, w, _, _ = rec.results["keep"][(0, site.stack, site.layer, 0)]
+        assert torch.allclose(w, att[0].float(), atol=1e-5)
+    assert not any(site.causal for site in s.sites)          # an encoder: no causal-LM class in transformers
+    # were it taken for causal, the capture must stop rather than mask weights the model uses
+    s.sites[0].causal = True
+    with pytest.raises(attnpos.AttnposError, match="later tokens"):
+        record(s, [TEXT], [Keep()])

@@ -32,11 +32,23 @@ def _zero_qk_bloom(heads=4):
     return attnpos.from_model(m, tiny.tokenizer())
 
 
+def _zero_qk_mpt(heads=4):
+    m = tiny.build("mpt", heads=heads, layers=2, hidden=8 * heads)
+    with torch.no_grad():
+        for blk in m.transformer.blocks:
+            d_model = blk.attn.Wqkv.weight.shape[1]
+            blk.attn.Wqkv.weight[: 2 * d_model] = 0        # fused [q; k; v] rows: q and k
+    s = attnpos.from_model(m, tiny.tokenizer())
+    assert set(s.schemes) == {"alibi"}                      # detected from attn_config.alibi
+    return s
+
+
+@pytest.mark.parametrize("arch", ["bloom", "mpt"])
 @pytest.mark.parametrize("heads", [4, 8])
-def test_alibi_slopes_recovered(heads):
+def test_alibi_slopes_recovered(heads, arch):
     # Press, Smith & Lewis 2022 (ICLR), ALiBi: for n heads (a power of two) the slopes are the geometric sequence
     # starting at 2^(-8/n) with ratio 2^(-8/n). With q = k = 0 the scores are the ALiBi bias alone.
-    s = _zero_qk_bloom(heads)
+    s = _zero_qk_bloom(heads) if arch == "bloom" else _zero_qk_mpt(heads)
     rec = record(s, TEXTS[:3], [SplitStats()])
     fit = Split(n_boot=10).fit(rec)
     expected = np.array([2 ** (-8 / heads * (k + 1)) for k in range(heads)])

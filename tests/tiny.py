@@ -10,12 +10,12 @@ import functools
 import torch
 
 VOCAB = 30522
-ARCHS = ("gpt2", "gpt_neox", "llama", "mistral", "qwen2", "bloom", "smollm3", "smollm3-nope", "bert", "t5")
+ARCHS = ("gpt2", "gpt_neox", "llama", "mistral", "qwen2", "bloom", "mpt", "smollm3", "smollm3-nope", "bert", "t5")
 
 # the scheme each architecture must be detected as (from each architecture's published design)
 EXPECTED_SCHEME = {
     "gpt2": "learned-absolute", "gpt_neox": "rope", "llama": "rope", "mistral": "rope", "qwen2": "rope",
-    "bloom": "alibi", "smollm3": None, "smollm3-nope": "none", "bert": "learned-absolute", "t5": "relative-bias",
+    "bloom": "alibi", "mpt": "alibi", "smollm3": None, "smollm3-nope": "none", "bert": "learned-absolute", "t5": "relative-bias",
 }
 
 
@@ -54,6 +54,9 @@ def build(arch: str, *, layers: int = 2, heads: int = 4, hidden: int = 32, seed:
     elif arch == "bloom":
         cfg = tf.BloomConfig(n_layer=layers, n_head=heads, hidden_size=hidden, **common)
         model = tf.BloomForCausalLM(cfg)
+    elif arch == "mpt":                      # ALiBi, flagged inside the nested attn_config
+        cfg = tf.MptConfig(n_layers=layers, n_heads=heads, d_model=hidden, max_seq_len=256, **common)
+        model = tf.MptForCausalLM(cfg)
     elif arch in ("smollm3", "smollm3-nope"):
         cfg = tf.SmolLM3Config(num_hidden_layers=max(layers, 4) if arch == "smollm3" else layers,
                                num_attention_heads=heads, num_key_value_heads=heads, hidden_size=hidden,

@@ -9,10 +9,14 @@ Quick start::
 
 The pieces, in the order data flows: :func:`load` → :func:`record` → :class:`Split` / :class:`ShiftTest` /
 :func:`induction_scores` → :func:`head_table` → :class:`Scan` (views, report, findings).
+
+The names below are imported when first used, so reading a saved scan, the findings file or the views does not
+start torch (about 1.5 s).
 """
 
 __version__ = "0.1.0"
 
+import importlib as _importlib
 import os as _os
 
 # Before torch starts its OpenMP runtime: threads that sleep instead of spinning while they wait. On a small,
@@ -21,14 +25,32 @@ import os as _os
 _os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 from .errors import AttnposError  # noqa: E402
-from .subject import Subject, load, from_model  # noqa: E402
-from .capture import record, Recording, Reducer  # noqa: E402
-from .split import Split  # noqa: E402
-from .shift import ShiftTest  # noqa: E402
-from .induction import induction_scores  # noqa: E402
-from .roles import head_table  # noqa: E402
-from .result import Scan  # noqa: E402
-from .scan import scan  # noqa: E402
 
-__all__ = ["AttnposError", "Subject", "load", "from_model", "record", "Recording", "Reducer", "Split",
-           "ShiftTest", "induction_scores", "head_table", "Scan", "scan", "__version__"]
+# public name → the module that defines it
+_EXPORTS = {
+    "Subject": "subject", "load": "subject", "from_model": "subject",
+    "record": "capture", "Recording": "capture", "Reducer": "capture",
+    "Split": "split", "ShiftTest": "shift", "induction_scores": "induction", "head_table": "roles",
+    "Scan": "result", "scan": "pipeline",
+}
+
+__all__ = ["AttnposError", *_EXPORTS, "__version__"]
+
+
+def __getattr__(name: str):
+    """Import a public name, or a submodule (``attnpos.texts``), on first use."""
+    if name in _EXPORTS:
+        value = getattr(_importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    if not name.startswith("_"):
+        try:
+            return _importlib.import_module(f".{name}", __name__)
+        except ModuleNotFoundError as exc:
+            if exc.name != f"{__name__}.{name}":
+                raise
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_EXPORTS))

@@ -142,7 +142,7 @@ def _write(what: str, path: Path, write) -> None:
 
 
 def run(args) -> int:
-    from .scan import scan as do_scan
+    from .pipeline import scan as do_scan
 
     check_output(args.json, "--json")
     check_output(args.html, "--html")

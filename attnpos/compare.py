@@ -130,7 +130,7 @@ def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> pd.DataFrame:
 
 
 def _as_scan(x, texts, scan_kwargs) -> Scan:
-    from .scan import scan as do_scan
+    from .pipeline import scan as do_scan
     from .subject import Subject
 
     if isinstance(x, Scan):

@@ -15,7 +15,7 @@ def build_real_scan(text: str = SHORT_TEXT):
     If the trained weights are not in this checkout, the same pipeline runs on an untrained model of the same
     build (the numbers are then an untrained model's; the views do not care)."""
     from attnpos.errors import AttnposError
-    from attnpos.scan import scan as run_scan
+    from attnpos.pipeline import scan as run_scan
     try:
         return run_scan("ref:rope", [text], n_boot=20, progress=False), "ref:rope"
     except AttnposError:

@@ -166,9 +166,7 @@ def test_a_record_inside_a_reducer_leaves_the_outer_run_intact():
 
 
 def test_command_line_interrupt_and_unexpected_errors_show_no_traceback(gpt2_dir, tmp_path, cli, monkeypatch):
-    import sys
-
-    scan_mod = sys.modules["attnpos.scan"]          # attnpos.scan the attribute is the function
+    from attnpos import pipeline as scan_mod
 
     text = tmp_path / "t.txt"
     text.write_text(FERRY, encoding="utf-8")

@@ -277,10 +277,8 @@ def test_unreadable_text_file_is_reported(tmp_path, gpt2_dir, cli, monkeypatch):
 
 @pytest.mark.parametrize("flag", ["--json", "--html"])
 def test_output_into_a_missing_folder_is_refused_before_scanning(tmp_path, gpt2_dir, cli, monkeypatch, flag):
-    import sys
-
     calls = []
-    scan_mod = sys.modules["attnpos.scan"]
+    from attnpos import pipeline as scan_mod
     monkeypatch.setattr(scan_mod, "scan", lambda *a, **k: calls.append(1))
     f = tmp_path / "t.txt"
     f.write_text(FERRY, encoding="utf-8")

@@ -1,8 +1,9 @@
 """The command line: ``attnpos scan | probe | length | compare | train``.
 
-Each sub-command lives in the module that owns its stage and exposes ``HELP``, ``add_arguments(parser)`` and
-``run(args) -> int``; this file only wires them and turns :class:`~attnpos.errors.AttnposError` into a short
-message and a non-zero exit (``--debug`` shows the traceback).
+Each sub-command lives in the module that owns its stage and exposes ``add_arguments(parser)`` and
+``run(args) -> int``; this file only wires them (one line of help each, in :data:`COMMANDS`) and turns
+:class:`~attnpos.errors.AttnposError` into a short message and a non-zero exit (``--debug`` shows the traceback).
+Only the chosen sub-command's module is imported, so ``attnpos --help`` and ``attnpos compare`` do not start torch.
 """
 
 from __future__ import annotations
@@ -16,16 +17,18 @@ from pathlib import Path
 
 from .errors import AttnposError
 
-# sub-command → module that implements it
+# sub-command → (module that implements it, one line of help)
 COMMANDS = {
-    "scan": "attnpos.cli",
-    "probe": "attnpos.probes",
-    "length": "attnpos.length",
-    "compare": "attnpos.compare",
-    "train": "attnpos.reference.train",
+    "scan": ("attnpos.cli", "scan a model: per-head masses, score split, slope, shift test, induction, roles"),
+    "probe": ("attnpos.probes", "ridge probes for absolute position per layer, with a shuffled control and an "
+                                "untrained copy"),
+    "length": ("attnpos.length", "behaviour past the training length: per-position loss, entropy and first-token "
+                                 "weight per head, role drift"),
+    "compare": ("attnpos.compare", "compare two checkpoints head by head: role, score-split shares and slope "
+                                   "changes beyond their intervals"),
+    "train": ("attnpos.reference.train", "Train one reference model on CPU: ``attnpos train SCHEME --out DIR "
+                                         "[--minutes M] [--context N] [--seed S] [--steps N]``."),
 }
-
-HELP = "scan a model: per-head masses, score split, slope, shift test, induction, roles"
 
 
 def _count(minimum: int):
@@ -168,7 +171,9 @@ def run(args) -> int:
     return 0
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(command: str | None = "*") -> argparse.ArgumentParser:
+    """The parser; ``command`` says whose arguments to add: ``"*"`` every sub-command's, a name that one's (the
+    others get their line of help only), None none (the top-level help)."""
     from . import __version__
 
     parser = argparse.ArgumentParser(
@@ -178,18 +183,13 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"attnpos {__version__}")
     parser.add_argument("--debug", action="store_true", help="show tracebacks")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    for name, modname in COMMANDS.items():
-        try:
-            mod = importlib.import_module(modname)
-        except ImportError:
-            continue
-        if not hasattr(mod, "add_arguments") or not hasattr(mod, "run"):
-            continue
-        text = getattr(mod, "HELP", None) or ((mod.__doc__ or "").strip().splitlines() or [None])[0]
+    for name, (modname, text) in COMMANDS.items():
         p = sub.add_parser(name, help=text, description=text)
         p.add_argument("--debug", action="store_true", help="show tracebacks")
-        mod.add_arguments(p)
-        p.set_defaults(_run=mod.run)
+        if command in ("*", name):
+            mod = importlib.import_module(modname)
+            mod.add_arguments(p)
+            p.set_defaults(_run=mod.run)
     return parser
 
 
@@ -214,8 +214,10 @@ def cli_reference() -> str:
 def main(argv: list[str] | None = None) -> int:
     os.environ.setdefault("HF_HUB_OFFLINE", "1")
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    words = sys.argv[1:] if argv is None else list(argv)
+    command = next((w for w in words if not w.startswith("-")), None)
+    parser = build_parser(command if command in COMMANDS else None)
+    args = parser.parse_args(words)
     if not getattr(args, "_run", None):
         parser.print_help()
         return 2

@@ -33,7 +33,6 @@ import pandas as pd
 from .errors import AttnposError
 from .result import CAUTION as SCAN_CAUTION, SHARE_PARTS, Scan
 
-HELP = "compare two checkpoints head by head: role, score-split shares and slope changes beyond their intervals"
 
 CAUTION = ("A changed role or share says the attention pattern moved on these texts, which is evidence, not "
            "explanation; " + SCAN_CAUTION.split(": ", 1)[-1])
@@ -129,14 +128,19 @@ def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> pd.DataFrame:
     return out
 
 
+def _is_scan(x) -> bool:
+    """A Scan, or a path to a scan JSON file (neither needs torch)."""
+    return isinstance(x, Scan) or (isinstance(x, (str, Path)) and str(x).endswith(".json") and Path(x).is_file())
+
+
 def _as_scan(x, texts, scan_kwargs) -> Scan:
+    if isinstance(x, Scan):
+        return x
+    if _is_scan(x):
+        return Scan.from_json(x)
     from .pipeline import scan as do_scan
     from .subject import Subject
 
-    if isinstance(x, Scan):
-        return x
-    if isinstance(x, (str, Path)) and str(x).endswith(".json") and Path(x).is_file():
-        return Scan.from_json(x)
     if isinstance(x, (str, Path, Subject)):
         from threadpoolctl import threadpool_limits
 
@@ -157,6 +161,8 @@ def compare(a, b, texts=None, *, all_heads: bool = False, **scan_kwargs) -> pd.D
         all_heads: return every head (with a ``changed`` column) instead of only the changed ones.
         scan_kwargs: passed to :func:`attnpos.scan` (e.g. ``n_boot``, ``shift``, ``induction``, ``max_tokens``).
     """
+    if _is_scan(a) and _is_scan(b):                 # two saved scans: no model, no torch
+        return compare_scans(_as_scan(a, None, {}), _as_scan(b, None, {}), all_heads=all_heads)
     from .subject import Subject, load
 
     if not isinstance(a, (Scan, Subject)) and not str(a).endswith(".json"):
@@ -237,14 +243,17 @@ def add_arguments(p) -> None:
 
 def run(args) -> int:
     from .cli import read_texts
-    from .subject import load
 
     def side(x):
-        if str(x).endswith(".json") and Path(x).is_file():
+        if _is_scan(x):
             return Scan.from_json(x)
+        from .subject import load
+
         return load(x, allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code)
 
-    table = compare(side(args.a), side(args.b), read_texts(args), all_heads=args.all, n_boot=args.boot,
+    a, b = side(args.a), side(args.b)
+    texts = None if _is_scan(a) and _is_scan(b) else read_texts(args)
+    table = compare(a, b, texts, all_heads=args.all, n_boot=args.boot,
                     shift=not args.no_shift, induction=not args.no_induction, max_tokens=args.max_tokens)
     print_table(table)
     if args.json:

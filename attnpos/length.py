@@ -47,7 +47,6 @@ import torch
 from .capture import LayerCapture, Reducer
 from .errors import AttnposError
 
-HELP = "behaviour past the training length: per-position loss, entropy and first-token weight per head, role drift"
 
 CAUTION = (
     "Attention weights are evidence, not explanation (Jain & Wallace 2019; Wiegreffe & Pinter 2019): a head whose "

@@ -48,7 +48,6 @@ import torch
 
 from .errors import AttnposError
 
-HELP = "ridge probes for absolute position per layer, with a shuffled control and an untrained copy"
 
 CAUTION = (
     "A probe shows that position can be decoded from a layer's hidden states, not that the model uses it "

@@ -34,3 +34,20 @@ def test_unknown_name_is_an_attribute_error():
         assert "no_such_thing" in str(exc)
     else:
         raise AssertionError("expected AttributeError")
+
+
+def test_cli_help_and_comparing_saved_scans_do_not_start_torch(tmp_path):
+    from attnpos.views._synthetic import synthetic_scan
+
+    a, b = tmp_path / "a.json", tmp_path / "b.json"
+    synthetic_scan(seed=0).save(a)
+    synthetic_scan(seed=1).save(b)
+    _run("import sys, contextlib, io\n"
+         "from attnpos.cli import main\n"
+         "with contextlib.redirect_stdout(io.StringIO()):\n"
+         "    try:\n"
+         "        main(['--help'])\n"
+         "    except SystemExit:\n"
+         "        pass\n"
+         f"    assert main(['compare', {str(a)!r}, {str(b)!r}]) == 0\n"
+         "assert 'torch' not in sys.modules, 'torch was imported'")

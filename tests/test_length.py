@@ -119,8 +119,8 @@ def test_alibi_against_sinusoidal_past_training_length(capsys):
     for la in out.values():
         assert all(np.isfinite(v) for v in la.values())
     rise = {k: la["4x"] - la["1x"] for k, la in out.items()}
-    # qualitative facts observed with the shipped weights (measured: ALiBi 1x 1.70 → 4x 1.88, sinusoidal 1.03 → 4.23
-    # nats with `attnpos length ref:<scheme> --to 512`): ALiBi's rise is the smaller, and at 4x its loss is lower
+    # qualitative facts observed with the shipped weights (measured by this test, 600-step models: ALiBi 1x 0.53,
+    # 2x 0.77, 4x 0.37; sinusoidal 1.17, 3.76, 4.77 nats): ALiBi's rise is the smaller, and at 4x its loss is lower
     assert rise["alibi"] < rise["sinusoidal"]
     assert out["alibi"]["4x"] < out["sinusoidal"]["4x"]
 

@@ -18,7 +18,8 @@ from pathlib import Path
 from typing import Any
 
 from .views import _data, static
-from .views._common import esc, esc_plain, fmt, head_key
+from .keys import head_key
+from .views._common import esc, esc_plain, fmt
 
 REPORT_CSS = """
 body{margin:0;background:#F3F1EC;color:#1B1F24;font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif}

@@ -17,7 +17,8 @@ Example::
     Survey(scan, findings="rope-findings.json")
 """
 
-from ._common import RAMP, ROLE_COLOURS, ROLES, head_key, layer_key, parse_key, show_token
+from ..keys import head_key, layer_key, parse_key
+from ._common import RAMP, ROLE_COLOURS, ROLES, show_token
 from .atlas import Atlas
 from .card import HeadCard
 from .curves import Curves

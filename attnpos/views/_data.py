@@ -12,8 +12,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ._common import (ROLES, clean, head_key, layer_key, map_view, block_labels, num, parse_key,
-                      role_index, spark_codes, tags_of, text_of, top_keys)
+from ..keys import head_key, layer_key, parse_key
+from ._common import (ROLES, clean, map_view, block_labels, num, role_index, spark_codes, tags_of, text_of, top_keys)
 
 # Numbers per head that the atlas sends (float32, NaN = missing) and shows on hover.
 ATLAS_FIELDS = [

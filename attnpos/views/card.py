@@ -8,7 +8,8 @@ import traitlets as t
 
 from . import _data, static
 from ._base import StaticFallback, css, esm
-from ._common import PART_COLOURS, RAMP, clean, head_key, layer_key, parse_key, role_palette
+from ..keys import head_key, layer_key, parse_key
+from ._common import PART_COLOURS, RAMP, clean, role_palette
 
 
 class HeadCard(StaticFallback, anywidget.AnyWidget):

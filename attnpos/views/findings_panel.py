@@ -9,7 +9,7 @@ import traitlets as t
 
 from . import _data, static
 from ._base import StaticFallback, css, esm
-from ._common import layer_key, parse_key
+from ..keys import layer_key, parse_key
 
 DEFAULT_STATUSES = ("open", "supported", "ruled-out")
 

@@ -8,7 +8,8 @@ Quick start::
     scan.save("rope-scan.json")
 
 The pieces, in the order data flows: :func:`load` → :func:`record` → :class:`Split` / :class:`ShiftTest` /
-:func:`induction_scores` → :func:`head_table` → :class:`Scan` (views, report, findings).
+:func:`induction_scores` → :func:`head_table` → :class:`Scan` (views, report, findings); :func:`ablate` checks
+whether the model needs a head.
 
 The names below are imported when first used, so reading a saved scan, the findings file or the views does not
 start torch (about 1.5 s).
@@ -31,7 +32,7 @@ _EXPORTS = {
     "Subject": "subject", "load": "subject", "from_model": "subject",
     "record": "capture", "Recording": "capture", "Reducer": "capture",
     "Split": "split", "ShiftTest": "shift", "induction_scores": "induction", "head_table": "roles",
-    "Scan": "result", "scan": "pipeline",
+    "Scan": "result", "scan": "pipeline", "ablate": "ablation",
 }
 
 __all__ = ["AttnposError", *_EXPORTS, "__version__"]

@@ -24,6 +24,8 @@ COMMANDS = {
                                 "untrained copy"),
     "length": ("attnpos.length", "behaviour past the training length: per-position loss, entropy and first-token "
                                  "weight per head, role drift"),
+    "ablate": ("attnpos.ablation", "ablate heads one at a time: change of loss (with an interval) and of the final "
+                                   "hidden states — the intervention that backs a role"),
     "compare": ("attnpos.compare", "compare two checkpoints head by head: role, score-split shares and slope "
                                    "changes beyond their intervals"),
     "train": ("attnpos.reference.train", "Train one reference model on CPU: ``attnpos train SCHEME --out DIR "

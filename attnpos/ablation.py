@@ -1,0 +1,333 @@
+"""Head ablation: take one head's output away and measure what the model loses — the intervention that backs a role.
+
+Attention weights say where a head looks, not whether the model uses what it reads. Ablation asks the second
+question. A head's output enters its layer's output projection as its own slice of the concatenated heads
+(Vaswani et al. 2017, §3.2.2: MultiHead = Concat(head_1, …, head_h) W^O); ablating head h replaces that slice,
+just before W^O, in every position of every text:
+
+* ``mean`` (default) — by the slice's mean over every token of the texts, measured in a first, clean pass: the
+  head keeps its average contribution but no longer carries anything token-specific (common practice; it keeps the
+  next layers' inputs near their usual range, which zeros may not);
+* ``zero`` — by zeros.
+
+Measured per head against the clean run on the same texts:
+
+* ``delta_loss`` — change of the mean next-token loss (nats per token; models with a language-model head), with a
+  90% bootstrap interval over texts; positive = the model is worse without the head;
+* ``output_change`` — mean over ordinary tokens of ‖h′ − h‖ / ‖h‖ for the last hidden state (every model,
+  encoders included).
+
+One forward pass per head and text (two for the clean run and the means); nothing is kept but these numbers.
+
+Example::
+
+    >>> table = ablate("ref:rope", heads=["L0.H1", "L2.H0"])          # doctest: +SKIP
+    >>> table[["key", "delta_loss", "delta_loss_lo", "delta_loss_hi"]]  # doctest: +SKIP
+
+Command line: ``attnpos ablate ref:rope --heads L0.H1,L2.H0 --json ablation.json``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import sys
+from pathlib import Path
+from typing import Any, Iterable, Sequence
+
+import numpy as np
+import pandas as pd
+import torch
+
+from .capture import _forward, _token_loss
+from .errors import AttnposError
+from .keys import head_key, parse_key
+from .subject import AttentionSite, Subject, load
+from .texts import TextUnit, as_raw, prepare
+
+SCHEMA = "attnpos.ablation/1"
+HOWS = ("mean", "zero")
+BOOT = 200
+CAUTION = ("An ablation measures what the model loses on these texts when a head's output is replaced; a small "
+           "change can mean the head is unused here, or that other heads make up for it (ablate them together to "
+           "see). Mean ablation keeps the head's average output, zero ablation does not: compare both before "
+           "concluding.")
+
+# names of the output projection (W^O) inside an attention module, across transformers' architectures
+_OUT_NAMES = ("o_proj", "out_proj", "c_proj", "dense", "o")
+
+
+def _in_features(m: torch.nn.Module) -> int | None:
+    if isinstance(m, torch.nn.Linear):
+        return m.in_features
+    w = getattr(m, "weight", None)
+    if type(m).__name__ == "Conv1D" and isinstance(w, torch.Tensor) and w.dim() == 2:
+        return int(w.shape[0])                 # GPT-2's Conv1D stores W as (in, out)
+    return None
+
+
+def output_projection(subject: Subject, site: AttentionSite) -> torch.nn.Module:
+    """The module that applies W^O to the concatenated heads of ``site``: a child of the attention module, or, in
+    the BERT family (where the self-attention module stops before W^O), the ``output.dense`` of its parent."""
+    for name in _OUT_NAMES:
+        m = getattr(site.module, name, None)
+        if isinstance(m, torch.nn.Module) and _in_features(m):
+            return m
+    if "." in site.name:
+        parent = subject.model.get_submodule(site.name.rsplit(".", 1)[0])
+        m = getattr(getattr(parent, "output", None), "dense", None)
+        if isinstance(m, torch.nn.Module) and _in_features(m):
+            return m
+    raise AttnposError(f"Could not find the output projection of {site.stack}:L{site.layer} ({site.name}) in "
+                       f"{subject.architecture}; attnpos looks for {', '.join(_OUT_NAMES)} or the parent's "
+                       "output.dense. Please report the architecture.")
+
+
+def _slices(subject: Subject) -> dict[tuple[str, int], tuple[torch.nn.Module, int]]:
+    """(stack, layer) → (output projection, width of one head's slice of its input)."""
+    out = {}
+    for site in subject.sites:
+        proj = output_projection(subject, site)
+        width = _in_features(proj)
+        if not subject.n_heads or width % subject.n_heads:
+            raise AttnposError(f"The output projection of {site.stack}:L{site.layer} takes {width} features, not a "
+                               f"multiple of the {subject.n_heads} heads; attnpos cannot tell the heads apart.")
+        out[(site.stack, site.layer)] = (proj, width // subject.n_heads)
+    return out
+
+
+@contextlib.contextmanager
+def _hooks(modules_hooks: Iterable[tuple[torch.nn.Module, Any]]):
+    handles = [m.register_forward_pre_hook(h) for m, h in modules_hooks]
+    try:
+        yield
+    finally:
+        for h in handles:
+            h.remove()
+
+
+def _parse_heads(subject: Subject, heads) -> list[tuple[str, int, int]]:
+    known = {(s.stack, s.layer) for s in subject.sites}
+    if heads is None or heads == "all":
+        return [(s.stack, s.layer, h) for s in subject.sites for h in range(subject.n_heads)]
+    if isinstance(heads, str):
+        heads = [k.strip() for k in heads.split(",") if k.strip()]
+    out = []
+    for h in heads:
+        if isinstance(h, str):
+            try:
+                stack, layer, head = parse_key(h)
+            except ValueError as exc:
+                raise AttnposError(f"{exc}. Name heads as in the atlas: L0.H1 (or decoder:L1.H0).") from None
+            if head is None:
+                out += [(stack, layer, k) for k in range(subject.n_heads)]        # a whole layer, head by head
+                continue
+        elif len(h) == 2:
+            (layer, head), stack = h, subject.sites[0].stack
+        else:
+            stack, layer, head = h
+        if (stack, int(layer)) not in known or not 0 <= int(head) < subject.n_heads:
+            raise AttnposError(f"{subject.name} has no head {head_key(stack, layer, head)}: it has "
+                               f"{len(subject.sites)} attention layers × {subject.n_heads} heads "
+                               f"({', '.join(sorted({s for s, _ in known}))}).")
+        out.append((stack, int(layer), int(head)))
+    if not out:
+        raise AttnposError("No heads to ablate: give keys such as L0.H1,L2.H3, or none for every head.")
+    return list(dict.fromkeys(out))
+
+
+def _final_hidden(outputs) -> torch.Tensor:
+    hs = getattr(outputs, "decoder_hidden_states", None) or getattr(outputs, "hidden_states", None)
+    return hs[-1][0].float()
+
+
+def _bootstrap(per_text: np.ndarray, weights: np.ndarray, n_boot: int, seed: int = 0) -> tuple[float, float]:
+    """90% percentile interval of the token-weighted mean, resampling texts."""
+    if len(per_text) < 2 or n_boot <= 0:
+        return float("nan"), float("nan")
+    rng = np.random.default_rng(seed)
+    idx = rng.integers(0, len(per_text), size=(n_boot, len(per_text)))
+    w = weights[idx]
+    means = (per_text[idx] * w).sum(1) / w.sum(1)
+    return float(np.percentile(means, 5)), float(np.percentile(means, 95))
+
+
+def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens: int | None = None,
+           n_boot: int = BOOT, progress: bool | None = None, scheme=None, allow_pickle: bool = False,
+           trust_remote_code: bool = False) -> pd.DataFrame:
+    """Ablate heads one at a time and measure the change in loss and in the final hidden states.
+
+    Args:
+        model: a :class:`~attnpos.subject.Subject`, a folder, or ``"ref:<scheme>"``.
+        heads: head keys (``"L0.H1"``, ``"decoder:L1.H0"``; a layer key ``"L2"`` means each of its heads), a
+            comma-separated string of them, ``(layer, head)`` or ``(stack, layer, head)`` tuples, or None for
+            every head.
+        texts: strings, ``pathlib.Path`` files/folders, or None for the bundled sample texts; cut into windows as in
+            :func:`attnpos.scan` (the training length when the model records it).
+        how: ``"mean"`` or ``"zero"`` (see the module docstring).
+        n_boot: bootstrap resamples over texts for the interval of ``delta_loss``.
+
+    Returns a DataFrame, one row per head, sorted by ``delta_loss`` (else ``output_change``), largest first;
+    ``.attrs`` holds the model, the clean loss, ``how``, notes and the caution.
+    """
+    if how not in HOWS:
+        raise AttnposError(f"Unknown ablation {how!r}; choose from {', '.join(HOWS)}.")
+    subject = model if isinstance(model, Subject) else load(model, scheme=scheme, allow_pickle=allow_pickle,
+                                                            trust_remote_code=trust_remote_code)
+    chosen = _parse_heads(subject, heads)
+    slices = _slices(subject)
+    if max_tokens is None and subject.training_length:
+        max_tokens = subject.training_length
+    units: list[TextUnit] = prepare(subject, as_raw(texts), max_tokens=max_tokens)
+    units = [u for u in units if int((~u.special).sum()) >= 2]
+    if not units:
+        raise AttnposError("Every text is shorter than 2 ordinary tokens; give longer texts to ablate on.")
+
+    def run(u: TextUnit):
+        return _forward(subject, list(u.ids), offset=0, want_weights=False, hidden=True)
+
+    # clean pass: loss, final hidden states, and each projection's mean input (for mean ablation)
+    sums = {k: torch.zeros(_in_features(p), dtype=torch.float64) for k, (p, _) in slices.items()}
+    count = [0]
+
+    def summing(key):
+        def hook(module, args):
+            x = args[0]
+            sums[key] += x.reshape(-1, x.shape[-1]).double().sum(0)
+            if key == next(iter(slices)):
+                count[0] += x.reshape(-1, x.shape[-1]).shape[0]
+        return hook
+
+    clean_loss, clean_hidden, n_tok = [], [], []
+    with torch.no_grad(), _hooks((p, summing(k)) for k, (p, _) in slices.items()):
+        for u in units:
+            out = run(u)
+            tl = _token_loss(out, list(u.ids))
+            clean_loss.append(tl)
+            clean_hidden.append(_final_hidden(out))
+            n_tok.append(0 if tl is None else len(tl))
+    has_loss = all(t is not None for t in clean_loss)
+    means = {k: (s / max(count[0], 1)).float() for k, s in sums.items()}
+
+    show = progress if progress is not None else (len(chosen) > 4 and sys.stderr.isatty())
+    iterator = chosen
+    if show:
+        from tqdm.auto import tqdm
+
+        iterator = tqdm(chosen, desc=f"ablating {subject.name}", unit="head")
+    rows = []
+    weights = np.asarray(n_tok, dtype=np.float64)
+    for stack, layer, head in iterator:
+        proj, d = slices[(stack, layer)]
+        lo, hi = head * d, (head + 1) * d
+        fill = means[(stack, layer)][lo:hi] if how == "mean" else None
+
+        def replace(module, args, lo=lo, hi=hi, fill=fill):
+            x = args[0].clone()
+            if fill is None:
+                x[..., lo:hi] = 0
+            else:
+                x[..., lo:hi] = fill.to(x.dtype)
+            return (x, *args[1:])
+
+        d_loss, change = [], []
+        with torch.no_grad(), _hooks([(proj, replace)]):
+            for t, u in enumerate(units):
+                out = run(u)
+                if has_loss:
+                    d_loss.append(float(_token_loss(out, list(u.ids)).mean() - clean_loss[t].mean()))
+                h, h0 = _final_hidden(out), clean_hidden[t]
+                ordinary = torch.from_numpy(~np.asarray(u.special, dtype=bool))
+                rel = (h - h0).norm(dim=-1) / h0.norm(dim=-1).clamp_min(1e-12)
+                change.append(float(rel[ordinary].mean()) if bool(ordinary.any()) else float("nan"))
+        row = {"key": head_key(stack, layer, head), "stack": stack, "layer": layer, "head": head, "how": how,
+               "output_change": float(np.nanmean(change))}
+        if has_loss:
+            dl = np.asarray(d_loss)
+            row["delta_loss"] = float((dl * weights).sum() / weights.sum())
+            row["delta_loss_lo"], row["delta_loss_hi"] = _bootstrap(dl, weights, n_boot)
+        else:
+            row["delta_loss"] = row["delta_loss_lo"] = row["delta_loss_hi"] = float("nan")
+        rows.append(row)
+    table = pd.DataFrame(rows, columns=["key", "stack", "layer", "head", "how", "delta_loss", "delta_loss_lo",
+                                        "delta_loss_hi", "output_change"])
+    sort = "delta_loss" if has_loss else "output_change"
+    table = table.sort_values(sort, ascending=False, kind="stable").reset_index(drop=True)
+    notes = []
+    if not has_loss:
+        notes.append("The model has no language-model head here, so no loss: only the change of the final hidden "
+                     "states is measured.")
+    if len(units) < 2:
+        notes.append("One text only: no interval for delta_loss (give more texts).")
+    clean = (float(sum(float(t.sum()) for t in clean_loss) / max(sum(n_tok), 1)) if has_loss else None)
+    table.attrs.update({"model": subject.describe(), "how": how, "clean_loss": clean, "n_texts": len(units),
+                        "n_tokens": int(sum(len(u) for u in units)), "n_boot": n_boot, "notes": notes,
+                        "caution": CAUTION})
+    return table
+
+
+def to_json(table: pd.DataFrame) -> dict:
+    """JSON-safe form of an ablation table (schema ``attnpos.ablation/1``)."""
+    from .result import json_safe
+
+    a = table.attrs
+    heads = [{"key": r["key"], "stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
+              "delta_loss": {"value": r["delta_loss"], "low": r["delta_loss_lo"], "high": r["delta_loss_hi"]},
+              "output_change": r["output_change"]} for _, r in table.iterrows()]
+    return json_safe({"schema": SCHEMA, "model": a.get("model"), "how": a.get("how"), "clean_loss": a.get("clean_loss"),
+                      "n_texts": a.get("n_texts"), "n_tokens": a.get("n_tokens"), "n_boot": a.get("n_boot"),
+                      "heads": heads, "notes": a.get("notes", []), "caution": a.get("caution")})
+
+
+def print_table(table: pd.DataFrame, out=None) -> None:
+    out = out if out is not None else sys.stdout
+    a = table.attrs
+    m = a.get("model") or {}
+    clean = a.get("clean_loss")
+    print(f"{m.get('name')} ({m.get('architecture')}): {a.get('how')} ablation, one head at a time, on "
+          f"{a.get('n_texts')} texts ({a.get('n_tokens')} tokens)"
+          + (f"; clean loss {clean:.4f} nats/token" if clean is not None else ""), file=out)
+    hdr = f"{'head':<14} {'Δ loss':>9} {'90% interval':>21}  {'output change':>13}"
+    print(hdr, file=out)
+    print("-" * len(hdr), file=out)
+
+    def f(x, nd=4):
+        return "—" if x is None or x != x else f"{x:+.{nd}f}"
+
+    for _, r in table.iterrows():
+        iv = f"[{f(r['delta_loss_lo'])}, {f(r['delta_loss_hi'])}]" if r["delta_loss_lo"] == r["delta_loss_lo"] else "—"
+        print(f"{r['key']:<14} {f(r['delta_loss']):>9} {iv:>21}  {r['output_change']:>13.4f}", file=out)
+    for n in a.get("notes", []):
+        print("note: " + n, file=out)
+    print("note: " + CAUTION, file=out)
+
+
+def add_arguments(p) -> None:
+    from .cli import add_model_arguments, add_text_arguments
+
+    add_model_arguments(p)
+    p.add_argument("--heads", default=None, metavar="KEYS",
+                   help="comma-separated heads as in the atlas (L0.H1,L2.H3; a layer L2 means each of its heads); "
+                        "default: every head")
+    add_text_arguments(p)
+    p.add_argument("--how", choices=HOWS, default="mean",
+                   help="replace the head's output by its mean over the texts (default) or by zeros")
+    p.add_argument("--boot", type=int, default=BOOT, metavar="N", help=f"bootstrap resamples over texts ({BOOT})")
+    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the results as JSON")
+
+
+def run(args) -> int:
+    from .cli import check_output, load_subject, read_texts
+
+    check_output(args.json, "--json")
+    subject = load_subject(args)
+    table = ablate(subject, args.heads, read_texts(args), how=args.how, max_tokens=args.max_tokens,
+                   n_boot=args.boot)
+    print_table(table)
+    if args.json:
+        Path(args.json).write_text(json.dumps(to_json(table), indent=1, ensure_ascii=False), encoding="utf-8")
+        print(f"wrote {args.json}")
+    return 0
+
+
+__all__: Sequence[str] = ("ablate", "output_projection", "to_json", "print_table", "SCHEMA", "HOWS")

@@ -152,7 +152,8 @@ def _bootstrap(per_text: np.ndarray, weights: np.ndarray, n_boot: int, seed: int
     return float(np.percentile(means, 5)), float(np.percentile(means, 95))
 
 
-def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens: int | None = None,
+def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: bool = False,
+           max_tokens: int | None = None,
            n_boot: int = BOOT, progress: bool | None = None, scheme=None, allow_pickle: bool = False,
            trust_remote_code: bool = False) -> pd.DataFrame:
     """Ablate heads one at a time and measure the change in loss and in the final hidden states.
@@ -165,6 +166,8 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens:
         texts: strings, ``pathlib.Path`` files/folders, or None for the bundled sample texts; cut into windows as in
             :func:`attnpos.scan` (the training length when the model records it).
         how: ``"mean"`` or ``"zero"`` (see the module docstring).
+        together: ablate all the given heads at once (one row, keyed ``L0.H1+L2.H3``) instead of one at a time —
+            for heads that may make up for each other.
         n_boot: bootstrap resamples over texts for the interval of ``delta_loss``.
 
     Returns a DataFrame, one row per head, sorted by ``delta_loss`` (else ``output_change``), largest first;
@@ -209,29 +212,34 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens:
     has_loss = all(t is not None for t in clean_loss)
     means = {k: (s / max(count[0], 1)).float() for k, s in sums.items()}
 
-    show = progress if progress is not None else (len(chosen) > 4 and sys.stderr.isatty())
-    iterator = chosen
+    groups = [chosen] if together else [[h] for h in chosen]
+    show = progress if progress is not None else (len(groups) > 4 and sys.stderr.isatty())
+    iterator = groups
     if show:
         from tqdm.auto import tqdm
 
-        iterator = tqdm(chosen, desc=f"ablating {subject.name}", unit="head")
+        iterator = tqdm(groups, desc=f"ablating {subject.name}", unit="head")
     rows = []
     weights = np.asarray(n_tok, dtype=np.float64)
-    for stack, layer, head in iterator:
-        proj, d = slices[(stack, layer)]
-        lo, hi = head * d, (head + 1) * d
-        fill = means[(stack, layer)][lo:hi] if how == "mean" else None
+    for group in iterator:
+        # one pre-hook per output projection, replacing the slices of every head of the group that it reads
+        slots: dict[tuple[str, int], list] = {}
+        for stack, layer, head in group:
+            proj, d = slices[(stack, layer)]
+            lo, hi = head * d, (head + 1) * d
+            fill = means[(stack, layer)][lo:hi] if how == "mean" else None
+            slots.setdefault((stack, layer), []).append((lo, hi, fill))
 
-        def replace(module, args, lo=lo, hi=hi, fill=fill):
-            x = args[0].clone()
-            if fill is None:
-                x[..., lo:hi] = 0
-            else:
-                x[..., lo:hi] = fill.to(x.dtype)
-            return (x, *args[1:])
+        def replacing(parts):
+            def replace(module, args):
+                x = args[0].clone()
+                for lo, hi, fill in parts:
+                    x[..., lo:hi] = 0 if fill is None else fill.to(x.dtype)
+                return (x, *args[1:])
+            return replace
 
         d_loss, change = [], []
-        with torch.no_grad(), _hooks([(proj, replace)]):
+        with torch.no_grad(), _hooks((slices[k][0], replacing(parts)) for k, parts in slots.items()):
             for t, u in enumerate(units):
                 out = run(u)
                 if has_loss:
@@ -240,8 +248,9 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens:
                 ordinary = torch.from_numpy(~np.asarray(u.special, dtype=bool))
                 rel = (h - h0).norm(dim=-1) / h0.norm(dim=-1).clamp_min(1e-12)
                 change.append(float(rel[ordinary].mean()) if bool(ordinary.any()) else float("nan"))
-        row = {"key": head_key(stack, layer, head), "stack": stack, "layer": layer, "head": head, "how": how,
-               "output_change": float(np.nanmean(change))}
+        single = group[0] if len(group) == 1 else (None, None, None)
+        row = {"key": "+".join(head_key(*g) for g in group), "stack": single[0], "layer": single[1],
+               "head": single[2], "heads": len(group), "how": how, "output_change": float(np.nanmean(change))}
         if has_loss:
             dl = np.asarray(d_loss)
             row["delta_loss"] = float((dl * weights).sum() / weights.sum())
@@ -249,8 +258,8 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens:
         else:
             row["delta_loss"] = row["delta_loss_lo"] = row["delta_loss_hi"] = float("nan")
         rows.append(row)
-    table = pd.DataFrame(rows, columns=["key", "stack", "layer", "head", "how", "delta_loss", "delta_loss_lo",
-                                        "delta_loss_hi", "output_change"])
+    table = pd.DataFrame(rows, columns=["key", "stack", "layer", "head", "heads", "how", "delta_loss",
+                                        "delta_loss_lo", "delta_loss_hi", "output_change"])
     sort = "delta_loss" if has_loss else "output_change"
     table = table.sort_values(sort, ascending=False, kind="stable").reset_index(drop=True)
     notes = []
@@ -260,9 +269,9 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", max_tokens:
     if len(units) < 2:
         notes.append("One text only: no interval for delta_loss (give more texts).")
     clean = (float(sum(float(t.sum()) for t in clean_loss) / max(sum(n_tok), 1)) if has_loss else None)
-    table.attrs.update({"model": subject.describe(), "how": how, "clean_loss": clean, "n_texts": len(units),
-                        "n_tokens": int(sum(len(u) for u in units)), "n_boot": n_boot, "notes": notes,
-                        "caution": CAUTION})
+    table.attrs.update({"model": subject.describe(), "how": how, "together": together, "clean_loss": clean,
+                        "n_texts": len(units), "n_tokens": int(sum(len(u) for u in units)), "n_boot": n_boot,
+                        "notes": notes, "caution": CAUTION})
     return table
 
 
@@ -271,10 +280,14 @@ def to_json(table: pd.DataFrame) -> dict:
     from .result import json_safe
 
     a = table.attrs
-    heads = [{"key": r["key"], "stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
-              "delta_loss": {"value": r["delta_loss"], "low": r["delta_loss_lo"], "high": r["delta_loss_hi"]},
-              "output_change": r["output_change"]} for _, r in table.iterrows()]
-    return json_safe({"schema": SCHEMA, "model": a.get("model"), "how": a.get("how"), "clean_loss": a.get("clean_loss"),
+    heads = []
+    for _, r in table.iterrows():
+        parts = [dict(zip(("stack", "layer", "head"), parse_key(k))) for k in r["key"].split("+")]
+        heads.append({"key": r["key"], "heads": parts,
+                      "delta_loss": {"value": r["delta_loss"], "low": r["delta_loss_lo"], "high": r["delta_loss_hi"]},
+                      "output_change": r["output_change"]})
+    return json_safe({"schema": SCHEMA, "model": a.get("model"), "how": a.get("how"),
+                      "together": bool(a.get("together")), "clean_loss": a.get("clean_loss"),
                       "n_texts": a.get("n_texts"), "n_tokens": a.get("n_tokens"), "n_boot": a.get("n_boot"),
                       "heads": heads, "notes": a.get("notes", []), "caution": a.get("caution")})
 
@@ -284,10 +297,12 @@ def print_table(table: pd.DataFrame, out=None) -> None:
     a = table.attrs
     m = a.get("model") or {}
     clean = a.get("clean_loss")
-    print(f"{m.get('name')} ({m.get('architecture')}): {a.get('how')} ablation, one head at a time, on "
+    at_once = "the heads together" if a.get("together") else "one head at a time"
+    print(f"{m.get('name')} ({m.get('architecture')}): {a.get('how')} ablation, {at_once}, on "
           f"{a.get('n_texts')} texts ({a.get('n_tokens')} tokens)"
           + (f"; clean loss {clean:.4f} nats/token" if clean is not None else ""), file=out)
-    hdr = f"{'head':<14} {'Δ loss':>9} {'90% interval':>21}  {'output change':>13}"
+    width = max([14] + [len(k) + 1 for k in table["key"]])
+    hdr = f"{'head':<{width}} {'Δ loss':>9} {'90% interval':>21}  {'output change':>13}"
     print(hdr, file=out)
     print("-" * len(hdr), file=out)
 
@@ -295,8 +310,9 @@ def print_table(table: pd.DataFrame, out=None) -> None:
         return "—" if x is None or x != x else f"{x:+.{nd}f}"
 
     for _, r in table.iterrows():
-        iv = f"[{f(r['delta_loss_lo'])}, {f(r['delta_loss_hi'])}]" if r["delta_loss_lo"] == r["delta_loss_lo"] else "—"
-        print(f"{r['key']:<14} {f(r['delta_loss']):>9} {iv:>21}  {r['output_change']:>13.4f}", file=out)
+        has_iv = r["delta_loss_lo"] == r["delta_loss_lo"]
+        iv = f"[{f(r['delta_loss_lo'])}, {f(r['delta_loss_hi'])}]" if has_iv else "—"
+        print(f"{r['key']:<{width}} {f(r['delta_loss']):>9} {iv:>21}  {r['output_change']:>13.4f}", file=out)
     for n in a.get("notes", []):
         print("note: " + n, file=out)
     print("note: " + CAUTION, file=out)
@@ -312,6 +328,8 @@ def add_arguments(p) -> None:
     add_text_arguments(p)
     p.add_argument("--how", choices=HOWS, default="mean",
                    help="replace the head's output by its mean over the texts (default) or by zeros")
+    p.add_argument("--together", action="store_true",
+                   help="ablate the given heads all at once (one row) instead of one at a time")
     p.add_argument("--boot", type=int, default=BOOT, metavar="N", help=f"bootstrap resamples over texts ({BOOT})")
     p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the results as JSON")
 
@@ -321,8 +339,8 @@ def run(args) -> int:
 
     check_output(args.json, "--json")
     subject = load_subject(args)
-    table = ablate(subject, args.heads, read_texts(args), how=args.how, max_tokens=args.max_tokens,
-                   n_boot=args.boot)
+    table = ablate(subject, args.heads, read_texts(args), how=args.how, together=args.together,
+                   max_tokens=args.max_tokens, n_boot=args.boot)
     print_table(table)
     if args.json:
         Path(args.json).write_text(json.dumps(to_json(table), indent=1, ensure_ascii=False), encoding="utf-8")

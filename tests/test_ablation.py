@@ -20,19 +20,21 @@ TEXTS = ["The ferry to the north island leaves at seven, stops twice, and return
          "Row three of the seed tray holds basil; row four holds thyme and a tag that says thyme."]
 
 
-def _zero_rows_of_wo(subject, stack, layer, head):
-    """A copy of the model with the rows of W^O that read head ``head`` set to 0 (the reference route)."""
+def _zero_rows_of_wo(subject, stack, layer, head, *more):
+    """A copy of the model with the rows of W^O that read the given heads set to 0 (the reference route);
+    ``more``: further (stack, layer, head) triples."""
     model = copy.deepcopy(subject.model)
     twin = attnpos.from_model(model, subject.tokenizer, name="twin")
-    site = next(s for s in twin.sites if (s.stack, s.layer) == (stack, layer))
-    proj = output_projection(twin, site)
-    with torch.no_grad():
-        if isinstance(proj, torch.nn.Linear):                   # weight (out, in): columns read the input
-            d = proj.in_features // twin.n_heads
-            proj.weight[:, head * d:(head + 1) * d] = 0
-        else:                                                   # GPT-2 Conv1D: weight (in, out)
-            d = proj.weight.shape[0] // twin.n_heads
-            proj.weight[head * d:(head + 1) * d, :] = 0
+    for stack, layer, head in [(stack, layer, head), *more]:
+        site = next(s for s in twin.sites if (s.stack, s.layer) == (stack, layer))
+        proj = output_projection(twin, site)
+        with torch.no_grad():
+            if isinstance(proj, torch.nn.Linear):               # weight (out, in): columns read the input
+                d = proj.in_features // twin.n_heads
+                proj.weight[:, head * d:(head + 1) * d] = 0
+            else:                                               # GPT-2 Conv1D: weight (in, out)
+                d = proj.weight.shape[0] // twin.n_heads
+                proj.weight[head * d:(head + 1) * d, :] = 0
     return twin
 
 
@@ -71,6 +73,23 @@ def test_zero_ablation_equals_zeroing_the_rows_of_wo(arch, key):
         assert row["delta_loss"] == pytest.approx(ref_loss, rel=1e-3, abs=1e-6)
     else:
         assert np.isnan(row["delta_loss"]) and "no language-model head" in " ".join(table.attrs["notes"])
+
+
+@pytest.mark.parametrize("arch", ["gpt2", "llama"])
+def test_heads_together_equal_zeroing_all_their_rows_of_wo(arch):
+    s = tiny.subject(arch)
+    keys = ["L0.H1", "L0.H3", "L1.H0"]
+    row = ablate(s, keys, TEXTS, how="zero", together=True, n_boot=0).iloc[0]
+    assert row["key"] == "L0.H1+L0.H3+L1.H0" and row["heads"] == 3
+    units = prepare(s, as_raw(TEXTS))
+    ref_loss, ref_change = _loss_and_change(s, _zero_rows_of_wo(s, "main", 0, 1, ("main", 0, 3), ("main", 1, 0)),
+                                            units)
+    assert row["output_change"] == pytest.approx(ref_change, rel=1e-4)
+    assert row["delta_loss"] == pytest.approx(ref_loss, rel=1e-3, abs=1e-6)
+    # one head "together" is that head alone
+    alone = ablate(s, ["L1.H0"], TEXTS, n_boot=0).iloc[0]
+    one = ablate(s, ["L1.H0"], TEXTS, together=True, n_boot=0).iloc[0]
+    assert one["delta_loss"] == pytest.approx(alone["delta_loss"], abs=1e-9)
 
 
 def test_mean_ablation_of_a_head_with_constant_output_changes_nothing():
@@ -128,6 +147,14 @@ def test_command_line(tmp_path, capsys):
     assert data["schema"] == "attnpos.ablation/1" and data["how"] == "zero"
     assert [h["key"] for h in data["heads"]][0] in ("L0.H1", "L3.H0") and len(data["heads"]) == 2
     assert set(data["heads"][0]["delta_loss"]) == {"value", "low", "high"}
+    assert data["together"] is False and len(data["heads"][0]["heads"]) == 1
+    code = cli_main(["ablate", "ref:rope", "--heads", "L0.H1,L3.H0", "--text", str(f), "--json", str(out),
+                     "--together", "--boot", "20"])
+    data = json.loads(out.read_text())
+    assert code == 0 and data["together"] is True and data["heads"][0]["key"] == "L0.H1+L3.H0"
+    assert data["heads"][0]["heads"] == [{"stack": "main", "layer": 0, "head": 1},
+                                         {"stack": "main", "layer": 3, "head": 0}]
+    capsys.readouterr()
     code = cli_main(["ablate", "ref:rope", "--heads", "L9.H0", "--text", str(f)])
     err = capsys.readouterr().err
     assert code == 2 and "has no head L9.H0" in err and "Traceback" not in err

@@ -17,7 +17,7 @@ def css(name: str) -> str:
 
 
 class StaticFallback:
-    """Adds a static ``text/html`` rendering to the widget's MIME bundle.
+    """Adds a static ``text/html`` rendering to the widget's MIME bundle (the views and the :class:`Survey` box).
 
     A live front end shows the widget; nbconvert, notebook previews and a notebook reopened without a kernel
     (no widget state) fall back to this HTML, so the results stay visible.

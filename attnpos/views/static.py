@@ -166,6 +166,25 @@ def atlas_html(scan, marks: dict | None = None, selected: str | None = None, lin
     return (style_tag() if with_style else "") + body
 
 
+# ------------------------------------------------------------------ plots
+def _plot_frame(width: int, height: int, margins: tuple, xr: tuple, yr: tuple, attrs: str):
+    """Data → pixel maps for a plot area inside ``margins`` (left, right, top, bottom), and the opening of its
+    SVG (root element with ``attrs``, plot-area background) as a list to append to."""
+    ml, mr, mt, mb = margins
+    (x_lo, x_hi), (y_lo, y_hi) = xr, yr
+
+    def X(x):
+        return ml + (width - ml - mr) * (x - x_lo) / (x_hi - x_lo)
+
+    def Y(y):
+        return mt + (height - mt - mb) * (1 - (y - y_lo) / (y_hi - y_lo))
+
+    out = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" {attrs}>',
+           f'<rect x="{ml}" y="{mt}" width="{width - ml - mr}" height="{height - mt - mb}" fill="#FFFFFF" '
+           'stroke="#E3DED4"/>']
+    return X, Y, out
+
+
 # ------------------------------------------------------------------ card pieces
 def _symlog(d: float) -> float:
     return math.copysign(math.log2(1 + abs(d)), d)
@@ -186,15 +205,8 @@ def profile_svg(h: dict, width: int = 340, height: int = 160) -> str:
     if x_hi - x_lo < 1e-9:
         x_lo, x_hi = x_lo - 1, x_hi + 1
 
-    def X(x):
-        return ml + (width - ml - mr) * (x - x_lo) / (x_hi - x_lo)
-
-    def Y(y):
-        return mt + (height - mt - mb) * (1 - (y - y_lo) / (y_hi - y_lo))
-
-    out = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" class="apx-profile" '
-           f'role="img" aria-label="distance profile">',
-           f'<rect x="{ml}" y="{mt}" width="{width - ml - mr}" height="{height - mt - mb}" fill="#FFFFFF" stroke="#E3DED4"/>']
+    X, Y, out = _plot_frame(width, height, (ml, mr, mt, mb), (x_lo, x_hi), (y_lo, y_hi),
+                            'class="apx-profile" role="img" aria-label="distance profile"')
     band = [(X(x), Y(a), Y(b)) for x, a, b in zip(xs, lo, hi) if np.isfinite(a) and np.isfinite(b)]
     if len(band) > 1:
         pts = " ".join(f"{x:.1f},{a:.1f}" for x, a, _ in band) + " " + \
@@ -353,15 +365,8 @@ def _line_chart(series: list[dict], x: np.ndarray, width: int, height: int, xlab
     if x_hi - x_lo < 1e-9:
         x_lo, x_hi = x_lo - 0.5, x_hi + 0.5
 
-    def X(v):
-        return ml + (width - ml - mr) * (v - x_lo) / (x_hi - x_lo)
-
-    def Y(v):
-        return mt + (height - mt - mb) * (1 - (v - y_lo) / (y_hi - y_lo))
-
-    out = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" role="img" '
-           f'aria-label="{esc_plain(ylabel)} by {esc_plain(xlabel)}">',
-           f'<rect x="{ml}" y="{mt}" width="{width - ml - mr}" height="{height - mt - mb}" fill="#FFFFFF" stroke="#E3DED4"/>']
+    X, Y, out = _plot_frame(width, height, (ml, mr, mt, mb), (x_lo, x_hi), (y_lo, y_hi),
+                            f'role="img" aria-label="{esc_plain(ylabel)} by {esc_plain(xlabel)}"')
     for s in series:
         lo, hi = s.get("lo"), s.get("hi")
         if lo is not None and hi is not None:

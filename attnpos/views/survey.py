@@ -7,6 +7,7 @@ from pathlib import Path
 import ipywidgets
 
 from . import _data, static
+from ._base import StaticFallback
 from .atlas import Atlas
 from .card import HeadCard
 from .curves import Curves
@@ -15,7 +16,7 @@ from .findings_panel import FindingsPanel
 DEFAULT_FINDINGS = "attnpos-findings.json"
 
 
-class Survey(ipywidgets.VBox):
+class Survey(StaticFallback, ipywidgets.VBox):
     """Atlas + head card + findings panel + curves for one scan, linked: selecting a head in the atlas opens
     it in the card and points the findings panel at it; a finding written in the panel marks the atlas and
     the card at once.
@@ -78,21 +79,6 @@ class Survey(ipywidgets.VBox):
             parts.append(static.findings_table_html(rows, self.panel.path or None, with_style=False))
         parts.append(static.curves_html(self.scan, with_style=False))
         return "".join(parts)
-
-    def _repr_html_(self) -> str:
-        return self.to_html()
-
-    def snapshot(self):
-        """The static rendering as a plain HTML output (stays visible in a reopened notebook without kernel)."""
-        from IPython.display import HTML
-        return HTML(self.to_html())
-
-    def _repr_mimebundle_(self, **kwargs):
-        data = super()._repr_mimebundle_(**kwargs)
-        data, meta = data if isinstance(data, tuple) else (data, {})
-        data = dict(data or {})
-        data["text/html"] = self.to_html()
-        return data, meta
 
 
 def survey(scan, findings=None, head: str | None = None, text: int | None = None) -> Survey:

@@ -485,7 +485,8 @@ def _weights_path(subject: Subject, run_ref: list):
                             "took the model for a causal one. Please report the architecture; attnpos will not "
                             "mask weights the model uses.")
                     s = torch.log(w.clamp_min(1e-30)).masked_fill(~allowed, float("-inf"))
-                    run.deliver(site, s, w.masked_fill(~allowed, 0.0), allowed, 0)
+                    run.deliver(site, s, w.masked_fill(~allowed, 0.0), allowed, 0,
+                                blocks=causal_blocks(T) if site.causal else None)
                     return tuple(None if j == k else x for j, x in enumerate(output))
             return output
         return hook

@@ -72,7 +72,7 @@ def test_blocked_capture_matches_eager(arch, monkeypatch):
                 assert not w.triu(1).any()
 
 
-@pytest.mark.parametrize("arch", ["llama", "t5", "bert"])
+@pytest.mark.parametrize("arch", ["llama", "t5", "bert", "bloom"])      # bloom: the eager-weights path
 def test_blocked_reducers_equal_whole_matrix(arch, monkeypatch):
     s = tiny.subject(arch)
     results = []

@@ -2,6 +2,8 @@
 
 Timings on a shared machine say nothing about correctness, so nothing here looks at a time or a ratio's value: only
 that every case ran, and that each figure the README describes is present and has the right type.
+
+No external check here (and no timing asserted): the benchmark's smoke run and JSON shape.
 """
 
 from __future__ import annotations

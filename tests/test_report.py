@@ -28,6 +28,8 @@ class _Doc(HTMLParser):
 
 
 def parse(html: str) -> _Doc:
+    """Parse with Python's own HTML parser (html.parser, the standard library's reference tokenizer): what it
+    reads as tags and as text is what a browser would, for the checks below."""
     d = _Doc()
     d.feed(html)
     return d
@@ -85,6 +87,8 @@ def test_report_escapes_hostile_tokens_and_text_names(tmp_path):
     assert not [a for _, a in doc.tags if any(k.startswith("on") for k in a)]
     assert "<script>" not in html
     text = "".join(doc.text)
+    # HTML escaping (common practice; WHATWG HTML, character references): markup in user text reaches the
+    # parser as text, never as tags
     assert "<script>alert(1)</script>" in text                # shown as text
     assert "\"><img src=x onerror=alert(1)>" in text
     assert "text-0<b>" in text

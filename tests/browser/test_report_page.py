@@ -40,6 +40,8 @@ def test_report_of_a_real_scan_renders_offline(browser, real_scan, artifacts, tm
         assert page.locator("svg.apx-atlas").first.bounding_box()["width"] > 100
         assert page.locator(".apx-card").count() >= 1
         assert page.locator("img.apx-map").count() >= 1
+        # Chromium's own PNG decoder is an independent check of our encoder (W3C PNG specification): the data-URI
+        # image decodes to a non-empty picture
         assert page.locator("img.apx-map").first.evaluate("i => i.complete && i.naturalWidth > 0")
         assert page.get_by_text("Attention weights are evidence, not explanation").count() >= 1
         assert page.get_by_text("a note written before the report").count() == 2     # its card + the table
@@ -60,7 +62,8 @@ def test_report_shows_hostile_tokens_as_text(browser, tmp_path):
         body = page.locator("body").inner_text()
         assert HOSTILE in body and HOSTILE_IMG.strip() in body and "text-0<b>" in body
         assert "\\x00\\x1b[31m\\x07" in body
-        # ... and nothing was injected or run
+        # ... and nothing was injected or run (Chromium's HTML parser as the reference: WHATWG HTML parsing of the
+        # escaped text creates no elements or event-handler attributes)
         assert page.locator("script").count() == 0
         assert page.locator("img[src='x']").count() == 0
         assert page.evaluate("() => [...document.querySelectorAll('*')].filter(e => e.getAttributeNames()"

@@ -74,6 +74,7 @@ def test_model_registry_and_hooks_restored_after_a_fault(arch, fault):
         record(s, [HARBOUR, FERRY], [WeightStats(), FailAt(exc, layer=1, text=1), SplitStats()])
     assert_same_state(before, model_state(s.model))
     n = len(calls)
+    # reference implementation: transformers' own forward of the untouched model, run before the fault
     assert torch.equal(_outputs(s, ids), ref)                    # outputs identical, bit for bit
     assert len(calls) == n + 1                                   # the user's hook is still there and fires
     handle.remove()

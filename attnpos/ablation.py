@@ -210,6 +210,7 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
             clean_hidden.append(_final_hidden(out))
             n_tok.append(0 if tl is None else len(tl))
     has_loss = all(t is not None for t in clean_loss)
+    ordinary = [torch.from_numpy(~np.asarray(u.special, dtype=bool)) for u in units]
     means = {k: (s / max(count[0], 1)).float() for k, s in sums.items()}
 
     groups = [chosen] if together else [[h] for h in chosen]
@@ -245,9 +246,8 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
                 if has_loss:
                     d_loss.append(float(_token_loss(out, list(u.ids)).mean() - clean_loss[t].mean()))
                 h, h0 = _final_hidden(out), clean_hidden[t]
-                ordinary = torch.from_numpy(~np.asarray(u.special, dtype=bool))
                 rel = (h - h0).norm(dim=-1) / h0.norm(dim=-1).clamp_min(1e-12)
-                change.append(float(rel[ordinary].mean()) if bool(ordinary.any()) else float("nan"))
+                change.append(float(rel[ordinary[t]].mean()) if bool(ordinary[t].any()) else float("nan"))
         single = group[0] if len(group) == 1 else (None, None, None)
         row = {"key": "+".join(head_key(*g) for g in group), "stack": single[0], "layer": single[1],
                "head": single[2], "heads": len(group), "how": how, "output_change": float(np.nanmean(change))}

@@ -29,7 +29,7 @@ SCHEMA = "attnpos.scan/1"
 CAUTION = (
     "Attention weights are evidence, not explanation: a head that looks at the previous token may not use what "
     "it reads (Jain & Wallace 2019; Wiegreffe & Pinter 2019). Back a role with an intervention (the shift test "
-    "here, or ablating the head) before concluding."
+    "here, or ablating the head: attnpos ablate) before concluding."
 )
 
 # Columns of the head table, in order. Numeric columns hold NaN when a measurement was not made.

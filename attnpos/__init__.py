@@ -32,7 +32,7 @@ _EXPORTS = {
     "Subject": "subject", "load": "subject", "from_model": "subject",
     "record": "capture", "Recording": "capture", "Reducer": "capture",
     "Split": "split", "ShiftTest": "shift", "induction_scores": "induction", "head_table": "roles",
-    "Scan": "result", "scan": "pipeline", "ablate": "ablation",
+    "Scan": "results.scan", "scan": "pipeline", "ablate": "ablation", "load_result": "core.protocol",
 }
 
 __all__ = ["AttnposError", *_EXPORTS, "__version__"]
@@ -41,7 +41,8 @@ __all__ = ["AttnposError", *_EXPORTS, "__version__"]
 def __getattr__(name: str):
     """Import a public name, or a submodule (``attnpos.texts``), on first use."""
     if name in _EXPORTS:
-        value = getattr(_importlib.import_module(f".{_EXPORTS[name]}", __name__), name)
+        module = _importlib.import_module(f".{_EXPORTS[name]}", __name__)
+        value = getattr(module, "load" if name == "load_result" else name)
         globals()[name] = value
         return value
     if not name.startswith("_"):

@@ -21,8 +21,10 @@ One forward pass per head and text (two for the clean run and the means); nothin
 
 Example::
 
-    >>> table = ablate("ref:rope", heads=["L0.H1", "L2.H0"])          # doctest: +SKIP
-    >>> table[["key", "delta_loss", "delta_loss_lo", "delta_loss_hi"]]  # doctest: +SKIP
+    >>> res = ablate("ref:rope", heads=["L0.H1", "L2.H0"], texts=["The ferry left at nine and came back at noon.",
+    ...              "Rye loaves come out of the oven first, then the buns."], n_boot=20)
+    >>> list(res.table()["key"])                         # largest loss first: L0.H1 is a previous-token head
+    ['L0.H1', 'L2.H0']
 
 Command line: ``attnpos ablate ref:rope --heads L0.H1,L2.H0 --json ablation.json``.
 """
@@ -30,29 +32,22 @@ Command line: ``attnpos ablate ref:rope --heads L0.H1,L2.H0 --json ablation.json
 from __future__ import annotations
 
 import contextlib
-import json
 import sys
-from pathlib import Path
-from typing import Any, Iterable, Sequence
+from typing import Any, Iterable
 
 import numpy as np
 import pandas as pd
 import torch
 
-from .capture import _forward, _token_loss
+from .capture import forward, next_token_loss
 from .errors import AttnposError
-from .keys import head_key, parse_key
+from .core import keys, settings
+from .results.ablation import CAUTION, COLUMNS, AblationResult  # noqa: F401
 from .subject import AttentionSite, Subject, load
 from .texts import TextUnit, as_raw, prepare
 
-SCHEMA = "attnpos.ablation/1"
-HOWS = ("mean", "zero")
-BOOT = 200
-CAUTION = ("An ablation measures what the model loses on these texts when a head's output is replaced; a small "
-           "change can mean the head is unused here, or that other heads make up for it (ablate them together to "
-           "see). Mean ablation keeps the head's average output, zero ablation does not: compare both before "
-           "concluding.")
-
+HOWS = settings.ABLATION_HOWS
+BOOT = settings.ABLATION_BOOT
 # names of the output projection (W^O) inside an attention module, across transformers' architectures
 _OUT_NAMES = ("o_proj", "out_proj", "c_proj", "dense", "o")
 
@@ -98,42 +93,47 @@ def _slices(subject: Subject) -> dict[tuple[str, int], tuple[torch.nn.Module, in
 
 @contextlib.contextmanager
 def _hooks(modules_hooks: Iterable[tuple[torch.nn.Module, Any]]):
-    handles = [m.register_forward_pre_hook(h) for m, h in modules_hooks]
+    handles = []
     try:
+        for m, h in modules_hooks:
+            handles.append(m.register_forward_pre_hook(h))
         yield
     finally:
         for h in handles:
             h.remove()
 
 
-def _parse_heads(subject: Subject, heads) -> list[tuple[str, int, int]]:
+def parse_heads(subject: Subject, heads) -> list[tuple[str, int, int]]:
+    """The heads to ablate as ``(stack, layer, head)``: keys in the grammar of :mod:`attnpos.core.keys` (a layer
+    key means each of its heads), ``(layer, head)`` or ``(stack, layer, head)`` tuples, or None / ``"all"``."""
     known = {(s.stack, s.layer) for s in subject.sites}
     if heads is None or heads == "all":
         return [(s.stack, s.layer, h) for s in subject.sites for h in range(subject.n_heads)]
-    if isinstance(heads, str):
-        heads = [k.strip() for k in heads.split(",") if k.strip()]
+    if isinstance(heads, tuple) and len(heads) in (2, 3) and all(isinstance(x, (int, str)) for x in heads) \
+            and not all(isinstance(x, str) for x in heads):
+        heads = [heads]
+    if not isinstance(heads, str) and len(heads) and all(isinstance(x, tuple) and len(x) == 2 for x in heads):
+        heads = [(subject.sites[0].stack, *x) for x in heads]
     out = []
-    for h in heads:
-        if isinstance(h, str):
-            try:
-                stack, layer, head = parse_key(h)
-            except ValueError as exc:
-                raise AttnposError(f"{exc}. Name heads as in the atlas: L0.H1 (or decoder:L1.H0).") from None
-            if head is None:
-                out += [(stack, layer, k) for k in range(subject.n_heads)]        # a whole layer, head by head
-                continue
-        elif len(h) == 2:
-            (layer, head), stack = h, subject.sites[0].stack
-        else:
-            stack, layer, head = h
-        if (stack, int(layer)) not in known or not 0 <= int(head) < subject.n_heads:
-            raise AttnposError(f"{subject.name} has no head {head_key(stack, layer, head)}: it has "
-                               f"{len(subject.sites)} attention layers × {subject.n_heads} heads "
-                               f"({', '.join(sorted({s for s, _ in known}))}).")
-        out.append((stack, int(layer), int(head)))
+    for k in keys.parse_keys(heads):
+        if k.layer is None:
+            raise AttnposError("'model' names every head: leave --heads out to ablate them one by one.")
+        if k.head is None:
+            if (k.stack, k.layer) not in known:
+                raise AttnposError(f"{subject.name} has no layer {k}: it has {_grid(subject, known)}.")
+            out += [(k.stack, k.layer, h) for h in range(subject.n_heads)]        # a whole layer, head by head
+            continue
+        if (k.stack, k.layer) not in known or not 0 <= k.head < subject.n_heads:
+            raise AttnposError(f"{subject.name} has no head {k}: it has {_grid(subject, known)}.")
+        out.append((k.stack, k.layer, k.head))
     if not out:
         raise AttnposError("No heads to ablate: give keys such as L0.H1,L2.H3, or none for every head.")
     return list(dict.fromkeys(out))
+
+
+def _grid(subject: Subject, known) -> str:
+    return (f"{len(subject.sites)} attention layers × {subject.n_heads} heads "
+            f"({', '.join(sorted({s for s, _ in known}))})")
 
 
 def _final_hidden(outputs) -> torch.Tensor:
@@ -170,14 +170,14 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
             for heads that may make up for each other.
         n_boot: bootstrap resamples over texts for the interval of ``delta_loss``.
 
-    Returns a DataFrame, one row per head, sorted by ``delta_loss`` (else ``output_change``), largest first;
-    ``.attrs`` holds the model, the clean loss, ``how``, notes and the caution.
+    Returns an :class:`~attnpos.results.ablation.AblationResult`: ``.table()`` has one row per head, sorted by
+    ``delta_loss`` (else ``output_change``), largest first; ``.clean_loss``, ``.how``, ``.notes``, ``.caution``.
     """
     if how not in HOWS:
         raise AttnposError(f"Unknown ablation {how!r}; choose from {', '.join(HOWS)}.")
     subject = model if isinstance(model, Subject) else load(model, scheme=scheme, allow_pickle=allow_pickle,
                                                             trust_remote_code=trust_remote_code)
-    chosen = _parse_heads(subject, heads)
+    chosen = parse_heads(subject, heads)
     slices = _slices(subject)
     if max_tokens is None and subject.training_length:
         max_tokens = subject.training_length
@@ -187,7 +187,7 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
         raise AttnposError("Every text is shorter than 2 ordinary tokens; give longer texts to ablate on.")
 
     def run(u: TextUnit):
-        return _forward(subject, list(u.ids), offset=0, want_weights=False, hidden=True)
+        return forward(subject, list(u.ids), offset=0, want_weights=False, hidden=True)
 
     # clean pass: loss, final hidden states, and each projection's mean input (for mean ablation)
     sums = {k: torch.zeros(_in_features(p), dtype=torch.float64) for k, (p, _) in slices.items()}
@@ -205,7 +205,7 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
     with torch.no_grad(), _hooks((p, summing(k)) for k, (p, _) in slices.items()):
         for u in units:
             out = run(u)
-            tl = _token_loss(out, list(u.ids))
+            tl = next_token_loss(out, list(u.ids))
             clean_loss.append(tl)
             clean_hidden.append(_final_hidden(out))
             n_tok.append(0 if tl is None else len(tl))
@@ -244,12 +244,12 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
             for t, u in enumerate(units):
                 out = run(u)
                 if has_loss:
-                    d_loss.append(float(_token_loss(out, list(u.ids)).mean() - clean_loss[t].mean()))
+                    d_loss.append(float(next_token_loss(out, list(u.ids)).mean() - clean_loss[t].mean()))
                 h, h0 = _final_hidden(out), clean_hidden[t]
                 rel = (h - h0).norm(dim=-1) / h0.norm(dim=-1).clamp_min(1e-12)
                 change.append(float(rel[ordinary[t]].mean()) if bool(ordinary[t].any()) else float("nan"))
         single = group[0] if len(group) == 1 else (None, None, None)
-        row = {"key": "+".join(head_key(*g) for g in group), "stack": single[0], "layer": single[1],
+        row = {"key": "+".join(keys.head_key(*g) for g in group), "stack": single[0], "layer": single[1],
                "head": single[2], "heads": len(group), "how": how, "output_change": float(np.nanmean(change))}
         if has_loss:
             dl = np.asarray(d_loss)
@@ -258,8 +258,7 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
         else:
             row["delta_loss"] = row["delta_loss_lo"] = row["delta_loss_hi"] = float("nan")
         rows.append(row)
-    table = pd.DataFrame(rows, columns=["key", "stack", "layer", "head", "heads", "how", "delta_loss",
-                                        "delta_loss_lo", "delta_loss_hi", "output_change"])
+    table = pd.DataFrame(rows, columns=COLUMNS)
     sort = "delta_loss" if has_loss else "output_change"
     table = table.sort_values(sort, ascending=False, kind="stable").reset_index(drop=True)
     notes = []
@@ -269,83 +268,5 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
     if len(units) < 2:
         notes.append("One text only: no interval for delta_loss (give more texts).")
     clean = (float(sum(float(t.sum()) for t in clean_loss) / max(sum(n_tok), 1)) if has_loss else None)
-    table.attrs.update({"model": subject.describe(), "how": how, "together": together, "clean_loss": clean,
-                        "n_texts": len(units), "n_tokens": int(sum(len(u) for u in units)), "n_boot": n_boot,
-                        "notes": notes, "caution": CAUTION})
-    return table
-
-
-def to_json(table: pd.DataFrame) -> dict:
-    """JSON-safe form of an ablation table (schema ``attnpos.ablation/1``)."""
-    from .result import json_safe
-
-    a = table.attrs
-    heads = []
-    for _, r in table.iterrows():
-        parts = [dict(zip(("stack", "layer", "head"), parse_key(k))) for k in r["key"].split("+")]
-        heads.append({"key": r["key"], "heads": parts,
-                      "delta_loss": {"value": r["delta_loss"], "low": r["delta_loss_lo"], "high": r["delta_loss_hi"]},
-                      "output_change": r["output_change"]})
-    return json_safe({"schema": SCHEMA, "model": a.get("model"), "how": a.get("how"),
-                      "together": bool(a.get("together")), "clean_loss": a.get("clean_loss"),
-                      "n_texts": a.get("n_texts"), "n_tokens": a.get("n_tokens"), "n_boot": a.get("n_boot"),
-                      "heads": heads, "notes": a.get("notes", []), "caution": a.get("caution")})
-
-
-def print_table(table: pd.DataFrame, out=None) -> None:
-    out = out if out is not None else sys.stdout
-    a = table.attrs
-    m = a.get("model") or {}
-    clean = a.get("clean_loss")
-    at_once = "the heads together" if a.get("together") else "one head at a time"
-    print(f"{m.get('name')} ({m.get('architecture')}): {a.get('how')} ablation, {at_once}, on "
-          f"{a.get('n_texts')} texts ({a.get('n_tokens')} tokens)"
-          + (f"; clean loss {clean:.4f} nats/token" if clean is not None else ""), file=out)
-    width = max([14] + [len(k) + 1 for k in table["key"]])
-    hdr = f"{'head':<{width}} {'Δ loss':>9} {'90% interval':>21}  {'output change':>13}"
-    print(hdr, file=out)
-    print("-" * len(hdr), file=out)
-
-    def f(x, nd=4):
-        return "—" if x is None or x != x else f"{x:+.{nd}f}"
-
-    for _, r in table.iterrows():
-        has_iv = r["delta_loss_lo"] == r["delta_loss_lo"]
-        iv = f"[{f(r['delta_loss_lo'])}, {f(r['delta_loss_hi'])}]" if has_iv else "—"
-        print(f"{r['key']:<{width}} {f(r['delta_loss']):>9} {iv:>21}  {r['output_change']:>13.4f}", file=out)
-    for n in a.get("notes", []):
-        print("note: " + n, file=out)
-    print("note: " + CAUTION, file=out)
-
-
-def add_arguments(p) -> None:
-    from .cli import add_model_arguments, add_text_arguments
-
-    add_model_arguments(p)
-    p.add_argument("--heads", default=None, metavar="KEYS",
-                   help="comma-separated heads as in the atlas (L0.H1,L2.H3; a layer L2 means each of its heads); "
-                        "default: every head")
-    add_text_arguments(p)
-    p.add_argument("--how", choices=HOWS, default="mean",
-                   help="replace the head's output by its mean over the texts (default) or by zeros")
-    p.add_argument("--together", action="store_true",
-                   help="ablate the given heads all at once (one row) instead of one at a time")
-    p.add_argument("--boot", type=int, default=BOOT, metavar="N", help=f"bootstrap resamples over texts ({BOOT})")
-    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the results as JSON")
-
-
-def run(args) -> int:
-    from .cli import check_output, load_subject, read_texts
-
-    check_output(args.json, "--json")
-    subject = load_subject(args)
-    table = ablate(subject, args.heads, read_texts(args), how=args.how, together=args.together,
-                   max_tokens=args.max_tokens, n_boot=args.boot)
-    print_table(table)
-    if args.json:
-        Path(args.json).write_text(json.dumps(to_json(table), indent=1, ensure_ascii=False), encoding="utf-8")
-        print(f"wrote {args.json}")
-    return 0
-
-
-__all__: Sequence[str] = ("ablate", "output_projection", "to_json", "print_table", "SCHEMA", "HOWS")
+    return AblationResult(model=subject.describe(), rows=table, how=how, together=together, clean_loss=clean,
+                          n_texts=len(units), n_tokens=int(sum(len(u) for u in units)), n_boot=n_boot, notes=notes)

@@ -53,7 +53,6 @@ def causal_blocks(T: int, rows: int | None = None) -> tuple[tuple[int, int, int]
     return tuple((r0, min(T, r0 + rows), min(T, r0 + rows)) for r0 in range(0, T, rows))
 
 
-@dataclass
 class LayerCapture:
     """What a reducer sees: one attention layer, one text, a chunk of heads.
 
@@ -70,20 +69,44 @@ class LayerCapture:
     ``row_blocks`` (see :meth:`blocks`) says where the allowed pairs lie: rows r0:r1 allow keys < k1 only, so a
     sum over the allowed pairs may read ``x[:, r0:r1, :k1]`` block by block instead of the whole tensor (about half
     of it in a causal layer). Everything beyond holds 0 weight and 0 zeroed score all the same.
+
+    On the registry path ``query`` and ``key`` hold the chunk's queries and keys as the model hands them to
+    attention — after any rotation, key/value heads repeated for grouped-query attention — as float32 ``(n, T, d)``,
+    and ``rotary`` the ``(cos, sin)`` tables the model passed to the attention module (None when it passes none).
+    On the eager-weights path they are None.
     """
 
-    site: AttentionSite
-    text: int
-    unit: TextUnit
-    head0: int
-    n_heads: int
-    scores: torch.Tensor | None
-    weights: torch.Tensor
-    allowed: torch.Tensor
-    score_kind: str
-    offset: int = 0
-    zeroed: torch.Tensor | None = None
-    row_blocks: tuple | None = None
+    __slots__ = ("site", "text", "unit", "head0", "n_heads", "_scores", "weights", "allowed", "score_kind",
+                 "offset", "zeroed", "row_blocks", "query", "key", "rotary")
+
+    def __init__(self, site: AttentionSite, text: int, unit: TextUnit, head0: int, n_heads: int,
+                 scores: torch.Tensor | None, weights: torch.Tensor, allowed: torch.Tensor, score_kind: str,
+                 offset: int = 0, zeroed: torch.Tensor | None = None, row_blocks: tuple | None = None,
+                 query: torch.Tensor | None = None, key: torch.Tensor | None = None, rotary: tuple | None = None):
+        self.site, self.text, self.unit, self.head0, self.n_heads = site, text, unit, head0, n_heads
+        self._scores, self.weights, self.allowed, self.score_kind = scores, weights, allowed, score_kind
+        self.offset, self.zeroed, self.row_blocks = offset, zeroed, row_blocks
+        self.query, self.key, self.rotary = query, key, rotary
+
+    @property
+    def scores(self) -> torch.Tensor:
+        """(n, T, T) scores, -inf on disallowed pairs (built from ``zeroed`` when first read)."""
+        if self._scores is None:
+            self._scores = self.zeroed.masked_fill(~self.allowed, float("-inf"))
+        return self._scores
+
+    @scores.setter
+    def scores(self, value: torch.Tensor) -> None:
+        """A reducer that replaces the scores (for the reducers after it) drops the zeroed form with them."""
+        self._scores = value
+        self.zeroed = None
+
+    def with_unit(self, unit: TextUnit) -> "LayerCapture":
+        """The same capture seen through another text unit (e.g. one whose ``special`` mask leaves out some
+        queries); the tensors are shared, not copied."""
+        return LayerCapture(self.site, self.text, unit, self.head0, self.n_heads, self._scores, self.weights,
+                            self.allowed, self.score_kind, self.offset, self.zeroed, self.row_blocks, self.query,
+                            self.key, self.rotary)
 
     def blocks(self) -> tuple[tuple[int, int, int], ...]:
         """Row blocks ``(r0, r1, k1)`` covering all rows; rows r0:r1 have no allowed key at or beyond k1."""
@@ -97,22 +120,6 @@ class LayerCapture:
         if self.zeroed is None:
             self.zeroed = torch.where(self.allowed, self._scores, torch.zeros((), dtype=self._scores.dtype))
         return self.zeroed
-
-
-def _get_scores(cap: LayerCapture) -> torch.Tensor:
-    if cap._scores is None:
-        cap._scores = cap.zeroed.masked_fill(~cap.allowed, float("-inf"))
-    return cap._scores
-
-
-def _set_scores(cap: LayerCapture, value: torch.Tensor | None) -> None:
-    cap._scores = value
-    cap.zeroed = None          # set again by __init__ when given; a reducer that replaces the scores drops it
-
-
-# installed after the dataclass is made, so ``scores`` stays an ordinary required field of __init__
-LayerCapture.scores = property(_get_scores, _set_scores,
-                               doc="(n, T, T) scores, -inf on disallowed pairs (built from ``zeroed`` when needed)")
 
 
 class CaptureNotice(UserWarning):
@@ -173,6 +180,7 @@ class _Run:
         self._buffers: dict[str, torch.Tensor] = {}
         self._zero_outside: dict[str, tuple] = {}       # buffer name → (shape, blocks) it is known to be 0 outside
         self._masks: dict[tuple, tuple] = {}
+        self.rotary: dict[int, tuple] = {}              # id(attention module) → (cos, sin) it was handed this forward
 
     def mask_facts(self, attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
         """:func:`_mask_facts`, once per mask: transformers hands every layer of a forward the same mask tensor, so
@@ -206,11 +214,13 @@ class _Run:
 
     def deliver(self, site: AttentionSite, scores: torch.Tensor | None, weights: torch.Tensor,
                 allowed: torch.Tensor, head0: int, *, zeroed: torch.Tensor | None = None,
-                weights_checked: bool = False, blocks: tuple | None = None, finite: bool | None = None) -> None:
+                weights_checked: bool = False, blocks: tuple | None = None, finite: bool | None = None,
+                query: torch.Tensor | None = None, key: torch.Tensor | None = None) -> None:
         """Hand one chunk of heads to the reducers. Give ``scores`` (-inf on disallowed pairs) or ``zeroed`` (0
         there); ``weights_checked`` says the weights are finite whenever the scores are (a softmax of them);
         ``blocks``: row blocks outside which every pair is disallowed (see :class:`LayerCapture`); ``finite``:
-        the caller has already checked the zeroed scores for NaN and ±inf (the result)."""
+        the caller has already checked the zeroed scores for NaN and ±inf (the result); ``query``/``key``: the
+        chunk's (n, T, d) queries and keys (registry path)."""
         self.seen.add(id(site.module))
         n = weights.shape[0]
         # NaN anywhere, or ±inf on an allowed pair (the capture function turns NaN weights of such rows into 0, so
@@ -228,7 +238,8 @@ class _Run:
             unit = _decoder_view(self.subject, unit)
         cap = LayerCapture(site=site, text=self.text, unit=unit, head0=head0, n_heads=n,
                            scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
-                           offset=self.offset, zeroed=zeroed, row_blocks=blocks)
+                           offset=self.offset, zeroed=zeroed, row_blocks=blocks, query=query, key=key,
+                           rotary=self.rotary.get(id(site.module)))
         for r in self.reducers:
             r.update(cap)
         if self.keep is not None:
@@ -269,7 +280,7 @@ def _decoder_view(subject, unit: TextUnit) -> TextUnit:
                     tokens=["<start>"] + list(unit.tokens[:-1]), special=special, window=unit.window)
 
 
-def _allowed_from_mask(attention_mask, q_len: int, k_len: int, causal: bool) -> torch.Tensor:
+def allowed_from_mask(attention_mask, q_len: int, k_len: int, causal: bool) -> torch.Tensor:
     if attention_mask is None:
         if causal:
             return torch.ones(q_len, k_len, dtype=torch.bool).tril(k_len - q_len)
@@ -288,7 +299,7 @@ def _mask_facts(attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
     ``"none"`` (all allowed), ``"causal"`` (exactly above the diagonal, aligned at the end of the keys; zeroed
     without reading a mask) or ``"general"``; whether some row allows no key; and whether a float mask holds
     values other than 0 on allowed pairs (e.g. a bias folded into the mask), which are then part of the scores."""
-    allowed = _allowed_from_mask(attention_mask, q_len, k_len, causal if attention_mask is None else False)
+    allowed = allowed_from_mask(attention_mask, q_len, k_len, causal if attention_mask is None else False)
     if bool(allowed.all()):
         pattern = "none"
     elif torch.equal(allowed, torch.ones(q_len, k_len, dtype=torch.bool).tril(k_len - q_len)):
@@ -308,7 +319,7 @@ def _upper(n: int) -> torch.Tensor:
     return torch.ones(n, n, dtype=torch.bool).triu(1)
 
 
-def _capture_attention(module, query, key, value, attention_mask, scaling=None, dropout=0.0, **kwargs):
+def capture_attention(module, query, key, value, attention_mask, scaling=None, dropout=0.0, **kwargs):
     """Eager attention that also hands scores and weights to the active run (registered in the registry).
 
     Per chunk of heads, in two reused buffers: scores = scaling·q·kᵀ (+ bias, softcap, a mask's finite values), set
@@ -401,7 +412,7 @@ def _capture_attention(module, query, key, value, attention_mask, scaling=None, 
                 torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
             if site is not None and b == 0:
                 run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True, blocks=blocks,
-                            finite=finite)
+                            finite=finite, query=qb, key=kb)
     return out.transpose(1, 2).contiguous(), None
 
 
@@ -423,9 +434,9 @@ def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
     missing = object()
     had_fn = AttentionInterface._global_mapping.get(name, missing)
     had_mask = AttentionMaskInterface._global_mapping.get(name, missing)
-    AttentionInterface.register(name, fn)
-    AttentionMaskInterface.register(name, eager_mask)
     try:
+        AttentionInterface.register(name, fn)
+        AttentionMaskInterface.register(name, eager_mask)
         for c in configs:
             c._attn_implementation_internal = name
         yield
@@ -440,9 +451,26 @@ def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
                 mapping[name] = prev
 
 
-def _registry_path(subject: Subject):
-    """Switch the model to the capture function for the duration of a run."""
-    return attention_function(subject, _capture_attention)
+@contextlib.contextmanager
+def _registry_path(subject: Subject, run: "_Run | None" = None):
+    """Switch the model to the capture function for the duration of a run, with a pre-hook on every attention
+    module that keeps the rotary (cos, sin) tables it is handed (for reducers that read rotated pairs)."""
+    handles = []
+
+    def keep_rotary(module, args, kwargs):
+        pe = kwargs.get("position_embeddings")
+        if isinstance(pe, (tuple, list)) and len(pe) == 2 and all(isinstance(t, torch.Tensor) for t in pe):
+            run.rotary[id(module)] = (pe[0], pe[1])
+        return None
+
+    try:
+        with attention_function(subject, capture_attention):
+            for site in subject.sites if run is not None else ():
+                handles.append(site.module.register_forward_pre_hook(keep_rotary, with_kwargs=True))
+            yield
+    finally:
+        for h in handles:
+            h.remove()
 
 
 def _all_configs(model) -> list:
@@ -504,7 +532,7 @@ def _weights_path(subject: Subject, run_ref: list):
             c._attn_implementation_internal = v
 
 
-def _forward(subject: Subject, ids: list[int], *, offset: int, want_weights: bool, hidden: bool):
+def forward(subject: Subject, ids: list[int], *, offset: int, want_weights: bool, hidden: bool):
     model = subject.model
     x = torch.tensor([ids], dtype=torch.long)
     kw: dict[str, Any] = {"input_ids": x, "attention_mask": torch.ones_like(x)}
@@ -531,7 +559,7 @@ def _forward(subject: Subject, ids: list[int], *, offset: int, want_weights: boo
         raise
 
 
-def _token_loss(outputs, ids: list[int]) -> np.ndarray | None:
+def next_token_loss(outputs, ids: list[int]) -> np.ndarray | None:
     logits = getattr(outputs, "logits", None)
     if logits is None or logits.shape[-1] < 2 or len(ids) < 2:
         return None
@@ -569,7 +597,7 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
         keep_fn = ks.__contains__
     else:
         keep_fn = keep
-    chosen = path or getattr(subject, "_capture_path", None) or "registry"
+    chosen = path or subject.capture_path or "registry"
     impl = getattr(subject.model.config, "_attn_implementation", None)
     if impl not in (None, "eager", FUNCTION_NAME):
         msg = (f"{subject.name} is set to the {impl!r} attention implementation, which exposes no scores or "
@@ -592,19 +620,19 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
         iterator = tqdm(iterator, desc=f"recording {subject.name}", unit="text")
     _ACTIVE.append(run)
     try:
-        ctx = _registry_path(subject) if chosen == "registry" else _weights_path(subject, _ACTIVE)
+        ctx = _registry_path(subject, run) if chosen == "registry" else _weights_path(subject, _ACTIVE)
         with ctx, torch.no_grad():
             for t in iterator:
                 run.text = t
                 run.seen = set()
                 ids = prefix + list(units[t].ids)
-                out = _forward(subject, ids, offset=position_offset, want_weights=(chosen != "registry"),
+                out = forward(subject, ids, offset=position_offset, want_weights=(chosen != "registry"),
                                hidden=hidden_states)
                 missing = [s for s in subject.sites if id(s.module) not in run.seen]
                 if missing:
                     if chosen == "registry" and t == 0 and len(missing) == len(subject.sites) and path is None:
                         # the architecture does not call the registry: switch paths for this subject
-                        subject._capture_path = "eager-weights"
+                        subject.capture_path = "eager-weights"
                         _ACTIVE.pop()
                         return record(subject, units=units, reducers=reducers, keep=keep, keep_scores=keep_scores,
                                       position_offset=position_offset, prefix=prefix, hidden_states=hidden_states,
@@ -617,10 +645,10 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
                     hs = getattr(out, "hidden_states", None) or getattr(out, "encoder_hidden_states", None)
                     rec.hidden.append(np.stack([h[0, len(prefix):].float().numpy() for h in hs]))
                 if token_loss:
-                    tl = _token_loss(out, ids)
+                    tl = next_token_loss(out, ids)
                     rec.token_loss.append(tl[len(prefix):] if tl is not None else None)
                 del out
-        subject._capture_path = chosen
+        subject.capture_path = chosen
     finally:
         if _ACTIVE and _ACTIVE[-1] is run:
             _ACTIVE.pop()

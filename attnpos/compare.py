@@ -1,7 +1,7 @@
 """Compare two checkpoints head by head: which heads changed role, score-split shares or slope.
 
 Typical use: the same architecture before and after context extension or fine-tuning. Each side is a
-:class:`~attnpos.result.Scan` (or a model, scanned here on the same texts). A head is listed when
+:class:`~attnpos.results.scan.Scan` (or a model, scanned here on the same texts). A head is listed when
 
 * its **role** differs, or
 * one of its **shares** (distance, slot, content, residual) changed *beyond its intervals*: the two 90% bootstrap
@@ -14,8 +14,10 @@ different model classes with the same grid can be compared (a note says so), dif
 
 Example::
 
-    >>> table = compare("/ckpt/before", "/ckpt/after", texts)          # doctest: +SKIP
-    >>> table[["layer", "head", "role_a", "role_b", "changed_shares"]]   # doctest: +SKIP
+    >>> from attnpos.views.synthetic import synthetic_scan
+    >>> res = compare(synthetic_scan(seed=0), synthetic_scan(seed=1))      # two saved scans would do the same
+    >>> res.summary["heads"], list(res.table().columns[:4])
+    (16, ['key', 'stack', 'layer', 'head'])
 
 Command line: ``attnpos compare A B --text notes/ --json diff.json`` (A and B: model folders, ``ref:<scheme>``,
 or scan JSON files written by ``attnpos scan --json``).
@@ -23,22 +25,16 @@ or scan JSON files written by ``attnpos scan --json``).
 
 from __future__ import annotations
 
-import json
-import sys
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from .errors import AttnposError
-from .result import CAUTION as SCAN_CAUTION, SHARE_PARTS, Scan
-
-
-CAUTION = ("A changed role or share says the attention pattern moved on these texts, which is evidence, not "
-           "explanation; " + SCAN_CAUTION.split(": ", 1)[-1])
-
-COLUMNS = ["stack", "layer", "head", "role_a", "role_b", "role_changed", "changed_shares", "slope_a", "slope_b",
-           "slope_changed", "changed", "detail"]
+from .core import keys
+from .core.columns import PART_NAMES
+from .results.compare import CAUTION, COLUMNS, CompareResult  # noqa: F401
+from .results.scan import Scan
 
 
 def _apart(lo_a, hi_a, lo_b, hi_b) -> bool | None:
@@ -74,10 +70,10 @@ def check_same_grid(a: Scan, b: Scan) -> list[str]:
     return notes
 
 
-def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> pd.DataFrame:
-    """The head-by-head comparison of two scans (see the module doc). Only changed heads unless ``all_heads``.
-
-    The returned DataFrame carries ``attrs["notes"]`` and ``attrs["summary"]``."""
+def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> CompareResult:
+    """The head-by-head comparison of two scans (see the module doc): a
+    :class:`~attnpos.results.compare.CompareResult` whose ``table()`` lists the changed heads (every head with
+    ``all_heads``)."""
     notes = check_same_grid(a, b)
     ta = a.heads.set_index(["stack", "layer", "head"])
     tb = b.heads.set_index(["stack", "layer", "head"])
@@ -91,7 +87,7 @@ def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> pd.DataFrame:
         if role_changed:
             details.append(f"role {ra['role']} → {rb['role']}")
         any_interval = False
-        for part in SHARE_PARTS:
+        for part in PART_NAMES:
             ap = _apart(ra[f"share_{part}_lo"], ra[f"share_{part}_hi"], rb[f"share_{part}_lo"], rb[f"share_{part}_hi"])
             if ap is not None:
                 any_interval = True
@@ -109,7 +105,8 @@ def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> pd.DataFrame:
                            f" → {float(rb['slope']):.3f} [{float(rb['slope_lo']):.3f}, {float(rb['slope_hi']):.3f}]")
         judged += any_interval
         changed = bool(role_changed or changed_shares or sl)
-        rows.append({"stack": key[0], "layer": key[1], "head": key[2], "role_a": ra["role"], "role_b": rb["role"],
+        rows.append({"key": keys.head_key(*key), "stack": key[0], "layer": key[1], "head": key[2],
+                     "role_a": ra["role"], "role_b": rb["role"],
                      "role_changed": bool(role_changed), "changed_shares": changed_shares,
                      "slope_a": float(ra["slope"]), "slope_b": float(rb["slope"]), "slope_changed": bool(sl),
                      "changed": changed, "detail": "; ".join(details)})
@@ -120,12 +117,7 @@ def compare_scans(a: Scan, b: Scan, *, all_heads: bool = False) -> pd.DataFrame:
     summary = {"heads": len(df), "changed": int(df["changed"].sum()), "role_changed": int(df["role_changed"].sum()),
                "shares_changed": int((df["changed_shares"].apply(len) > 0).sum()),
                "slope_changed": int(df["slope_changed"].sum()), "judged_with_intervals": int(judged)}
-    out = df if all_heads else df[df["changed"]].reset_index(drop=True)
-    out.attrs["notes"] = notes
-    out.attrs["summary"] = summary
-    out.attrs["a"] = a.model
-    out.attrs["b"] = b.model
-    return out
+    return CompareResult(a=a.model, b=b.model, rows=df, summary=summary, notes=notes, all_heads=all_heads)
 
 
 def _is_scan(x) -> bool:
@@ -151,11 +143,11 @@ def _as_scan(x, texts, scan_kwargs) -> Scan:
                        "'ref:<scheme>', or a scan JSON file.")
 
 
-def compare(a, b, texts=None, *, all_heads: bool = False, **scan_kwargs) -> pd.DataFrame:
+def compare(a, b, texts=None, *, all_heads: bool = False, **scan_kwargs) -> CompareResult:
     """Compare two checkpoints head by head.
 
     Args:
-        a, b: :class:`~attnpos.result.Scan` objects, Subjects, model folders, ``"ref:<scheme>"`` names, or scan JSON
+        a, b: :class:`~attnpos.results.scan.Scan` objects, Subjects, model folders, ``"ref:<scheme>"`` names, or scan JSON
             files. Models are scanned here, both on the same ``texts``.
         texts: texts for the scans (None: the bundled samples). Ignored for sides that are already scans.
         all_heads: return every head (with a ``changed`` column) instead of only the changed ones.
@@ -180,83 +172,3 @@ def compare(a, b, texts=None, *, all_heads: bool = False, **scan_kwargs) -> pd.D
     sa = _as_scan(a, texts, scan_kwargs)
     sb = _as_scan(b, texts, scan_kwargs)
     return compare_scans(sa, sb, all_heads=all_heads)
-
-
-def to_json(table: pd.DataFrame) -> dict:
-    """JSON-safe form of a comparison."""
-    from .result import json_safe
-
-    heads = []
-    for _, r in table.iterrows():
-        heads.append({"stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
-                      "role": {"a": r["role_a"], "b": r["role_b"], "changed": bool(r["role_changed"])},
-                      "changed_shares": list(r["changed_shares"]),
-                      "slope": {"a": r["slope_a"], "b": r["slope_b"], "changed": bool(r["slope_changed"])},
-                      "changed": bool(r["changed"]), "detail": r["detail"]})
-    return json_safe({"a": table.attrs.get("a"), "b": table.attrs.get("b"), "summary": table.attrs.get("summary"),
-                   "rule": "changed = role differs, or a share's / the slope's 90% bootstrap intervals do not overlap",
-                   "heads": heads, "notes": table.attrs.get("notes", []), "caution": CAUTION})
-
-
-def print_table(table: pd.DataFrame, out=None) -> None:
-    out = out or sys.stdout
-    a, b = table.attrs.get("a") or {}, table.attrs.get("b") or {}
-    s = table.attrs.get("summary") or {}
-    print(f"A: {a.get('name')} ({a.get('architecture')}, fingerprint {str(a.get('fingerprint'))[:12]})", file=out)
-    print(f"B: {b.get('name')} ({b.get('architecture')}, fingerprint {str(b.get('fingerprint'))[:12]})", file=out)
-    print(f"{s.get('changed', 0)} of {s.get('heads', 0)} heads changed (role {s.get('role_changed', 0)}, shares "
-          f"{s.get('shares_changed', 0)}, slope {s.get('slope_changed', 0)}; a share or slope counts as changed when "
-          "the two 90% intervals do not overlap)", file=out)
-    shown = table[table["changed"]] if "changed" in table else table
-    if len(shown):
-        hdr = f"{'head':<12} {'role A':<15} {'role B':<15} {'shares changed':<34} {'slope A':>8} {'slope B':>8}"
-        print(hdr, file=out)
-        print("-" * len(hdr), file=out)
-        for _, r in shown.iterrows():
-            name = (f"{r['stack'][:3]}:" if r["stack"] != "main" else "") + f"L{r['layer']}.H{r['head']}"
-            sl = lambda x: "—" if not np.isfinite(x) else f"{x:.3f}"  # noqa: E731
-            mark = "*" if r["slope_changed"] else " "
-            print(f"{name:<12} {r['role_a']:<15} {r['role_b']:<15} {', '.join(r['changed_shares']) or '—':<34} "
-                  f"{sl(r['slope_a']):>8} {sl(r['slope_b']):>7}{mark}", file=out)
-        print("(* slope changed beyond its intervals)", file=out)
-    for n in table.attrs.get("notes", []):
-        print("notice: " + n, file=out)
-    print("note: " + CAUTION, file=out)
-
-
-# --------------------------------------------------------------------------------------------------- CLI
-
-def add_arguments(p) -> None:
-    from .cli import add_text_arguments
-
-    p.add_argument("a", help="model A: folder, ref:<scheme>, or a scan JSON file")
-    p.add_argument("b", help="model B: folder, ref:<scheme>, or a scan JSON file")
-    add_text_arguments(p)
-    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the comparison as JSON")
-    p.add_argument("--boot", type=int, default=100, metavar="N", help="bootstrap resamples for intervals (100)")
-    p.add_argument("--all", action="store_true", help="list every head, not only the changed ones")
-    p.add_argument("--no-shift", action="store_true", help="skip the shift test in the scans")
-    p.add_argument("--no-induction", action="store_true", help="skip the induction test in the scans")
-    p.add_argument("--allow-pickle", action="store_true", help="also load pickle (*.bin) weights (weights_only)")
-    p.add_argument("--trust-remote-code", action="store_true", help="run modelling code shipped in the folders")
-
-
-def run(args) -> int:
-    from .cli import read_texts
-
-    def side(x):
-        if _is_scan(x):
-            return Scan.from_json(x)
-        from .subject import load
-
-        return load(x, allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code)
-
-    a, b = side(args.a), side(args.b)
-    texts = None if _is_scan(a) and _is_scan(b) else read_texts(args)
-    table = compare(a, b, texts, all_heads=args.all, n_boot=args.boot,
-                    shift=not args.no_shift, induction=not args.no_induction, max_tokens=args.max_tokens)
-    print_table(table)
-    if args.json:
-        Path(args.json).write_text(json.dumps(to_json(table), indent=1, ensure_ascii=False), encoding="utf-8")
-        print(f"wrote {args.json}")
-    return 0

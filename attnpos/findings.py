@@ -5,16 +5,8 @@ A **finding** is what a person concluded while looking at a subject: a free-text
 optionally, a hash of the texts it was recorded on), so a finding made on another checkpoint shows up as
 *stale* instead of being silently applied to this one.
 
-Targets are written as short strings (the canonical form is what :attr:`Finding.target` holds):
-
-=====================  ==================================================
-``"model"``            the whole model
-``"L3"``               layer 3 of the main stack
-``"L3.H2"``            head 2 of layer 3 of the main stack
-``"decoder:L1.H0"``    head 0 of layer 1 of the ``decoder`` stack
-=====================  ==================================================
-
-or as a dict ``{"kind": "head", "stack": "main", "layer": 3, "head": 2}``. Parsing is forgiving about case and
+Targets are written as keys in the grammar of :mod:`attnpos.core.keys` (``"model"``, ``"L3"``, ``"L3.H2"``,
+``"decoder:L1.H0"``) or as a dict ``{"kind": "head", "stack": "main", "layer": 3, "head": 2}``. Parsing is forgiving about case and
 spaces (``"l3.h2"``, ``"main:L3"``); the stored form is canonical. Layers and heads count from 0.
 
 The store is a plain file in our own format::
@@ -57,10 +49,9 @@ import json
 import operator
 import os
 import re
-import stat
 import uuid
 from collections.abc import Callable, Iterator, Mapping
-from contextlib import contextmanager, suppress
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -68,7 +59,9 @@ from typing import Any, TypeVar, Union
 
 import filelock
 
+from .core import keys
 from .errors import AttnposError
+from .files import write_atomic, write_new
 
 FORMAT = "attnpos.findings/1"
 """The ``format`` value this module writes and reads."""
@@ -82,7 +75,7 @@ test or an ablation), ``ruled-out`` (checked and found not to hold)."""
 KINDS = ("model", "layer", "head")
 """What a finding is about."""
 
-MAIN_STACK = "main"
+MAIN_STACK = keys.MAIN
 """The stack name of a decoder-only or encoder-only model; it is left out of the canonical target string."""
 
 DEFAULT_FILENAME = "attnpos-findings.json"
@@ -101,17 +94,6 @@ _FIELDS = (
     "fingerprint", "texts_hash", "created", "updated", "author",
 )
 
-_STACK_RE = re.compile(r"[a-z][a-z0-9_-]{0,31}\Z", re.ASCII)
-_TARGET_RE = re.compile(
-    r"""\s*
-    (?:(?P<stack>[a-z][a-z0-9_-]{0,31})\s*:\s*)?
-    (?:
-        (?P<model>model)
-      | l\s*(?P<layer>[0-9]{1,6})(?:\s*\.\s*h\s*(?P<head>[0-9]{1,6}))?
-    )
-    \s*\Z""",
-    re.IGNORECASE | re.VERBOSE | re.ASCII,
-)
 _ID_RE = re.compile(r"[A-Za-z0-9_-]{1,64}\Z", re.ASCII)
 _SURROGATE_RE = re.compile("[\ud800-\udfff]")
 
@@ -123,18 +105,8 @@ _T = TypeVar("_T")
 # Targets
 
 
-_TARGET_HELP = (
-    'Write a target as "model", "L<layer>" (e.g. "L3"), "L<layer>.H<head>" (e.g. "L3.H2"), with a stack prefix '
-    'for encoder-decoder models (e.g. "decoder:L1.H0"), or as a dict {"kind": "head"|"layer"|"model", '
-    '"stack": "main", "layer": int|None, "head": int|None}. Layers and heads count from 0.'
-)
-
-
-def _format_target(kind: str, stack: str, layer: int | None, head: int | None) -> str:
-    if kind == "model":
-        return "model"
-    core = f"L{layer}" if kind == "layer" else f"L{layer}.H{head}"
-    return core if stack == MAIN_STACK else f"{stack}:{core}"
+_TARGET_HELP = keys.HELP + (' A target may also be a dict {"kind": "head"|"layer"|"model", "stack": "main", '
+                             '"layer": int|None, "head": int|None}.')
 
 
 def _index(value: Any, what: str, target: Any) -> int | None:
@@ -148,17 +120,19 @@ def _index(value: Any, what: str, target: Any) -> int | None:
         raise AttnposError(
             f"The finding target {target!r} has {what}={value!r}, which is not a whole number. {_TARGET_HELP}"
         ) from None
-    if number < 0:
-        raise AttnposError(f"The finding target {target!r} has a negative {what} ({number}). {_TARGET_HELP}")
+    if not 0 <= number <= keys.MAX_INDEX:
+        raise AttnposError(f"The finding target {target!r} has {what} {number}, outside 0 … {keys.MAX_INDEX}. "
+                           f"{_TARGET_HELP}")
     return number
 
 
 def parse_target(target: TargetLike) -> dict[str, Any]:
     """Check a target and return its parts: ``{"target", "kind", "stack", "layer", "head"}``.
 
-    ``target`` is a string (``"model"``, ``"L3"``, ``"L3.H2"``, ``"decoder:L1.H0"``) or a dict with ``kind``
-    and, as needed, ``stack`` (default ``"main"``), ``layer`` and ``head``. Raises :class:`AttnposError` for
-    anything else.
+    ``target`` is a key string (the grammar of :mod:`attnpos.core.keys`: ``"model"``, ``"L3"``, ``"L3.H2"``,
+    ``"decoder:L1.H0"``) or a dict with ``kind`` and, as needed, ``stack`` (default ``"main"``), ``layer`` and
+    ``head``. Raises :class:`AttnposError` for anything else. The reader of the file checks every stored target
+    with this same function.
 
     >>> parse_target("decoder:l1.h0")
     {'target': 'decoder:L1.H0', 'kind': 'head', 'stack': 'decoder', 'layer': 1, 'head': 0}
@@ -166,21 +140,11 @@ def parse_target(target: TargetLike) -> dict[str, Any]:
     'L4'
     """
     if isinstance(target, str):
-        match = _TARGET_RE.match(target)
-        if match is None:
-            raise AttnposError(f"The finding target {target!r} is not one attnpos understands. {_TARGET_HELP}")
-        stack = (match.group("stack") or MAIN_STACK).lower()
-        if match.group("model"):
-            if stack != MAIN_STACK:
-                raise AttnposError(
-                    f"The finding target {target!r} puts a stack prefix on the whole model; a model-wide finding "
-                    f'has no stack. Use "model", or a layer or head of that stack (e.g. "{stack}:L0"). {_TARGET_HELP}'
-                )
-            kind, layer, head = "model", None, None
-        else:
-            layer = int(match.group("layer"))
-            head = None if match.group("head") is None else int(match.group("head"))
-            kind = "layer" if head is None else "head"
+        try:
+            k = keys.parse_key(target)
+        except AttnposError as exc:
+            raise AttnposError(f"The finding target {target!r} is not one attnpos understands: {exc}") from None
+        kind, stack, layer, head = k.kind, k.stack, k.layer, k.head
     elif isinstance(target, Mapping):
         unknown = sorted(map(str, set(target) - {"kind", "stack", "layer", "head"}))
         if unknown:
@@ -195,12 +159,12 @@ def parse_target(target: TargetLike) -> dict[str, Any]:
             )
         stack = target.get("stack", MAIN_STACK)
         stack = MAIN_STACK if stack is None else stack
-        if not isinstance(stack, str) or not _STACK_RE.match(stack.lower()):
+        if not isinstance(stack, str) or not keys.STACK_RE.match(stack.lower()):
             raise AttnposError(
                 f"The finding target {dict(target)!r} has stack {stack!r}; a stack name is a short lowercase word "
                 f'such as "main", "encoder" or "decoder". {_TARGET_HELP}'
             )
-        stack = stack.lower()
+        stack = keys.normal_stack(stack)
         layer = _index(target.get("layer"), "layer", dict(target))
         head = _index(target.get("head"), "head", dict(target))
         need = {"model": (False, False), "layer": (True, False), "head": (True, True)}[kind]
@@ -218,7 +182,9 @@ def parse_target(target: TargetLike) -> dict[str, Any]:
         raise AttnposError(
             f"A finding target must be a string or a dict, not {type(target).__name__}. {_TARGET_HELP}"
         )
-    return {"target": _format_target(kind, stack, layer, head), "kind": kind, "stack": stack,
+    if kind == "model":
+        stack = MAIN_STACK
+    return {"target": keys.format_key(stack, layer, head), "kind": kind, "stack": stack,
             "layer": layer, "head": head}
 
 
@@ -417,65 +383,6 @@ def _finding_from_record(record: Any) -> Finding:
 # Files
 
 
-def _fsync_dir(folder: Path) -> None:
-    # Make the rename itself durable. Not every platform/file system allows opening a folder; best effort.
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def _temp_copy(path: Path, data: bytes) -> Path:
-    """``data`` written and fsynced to a new temporary file beside ``path`` (same directory, so a rename is atomic)."""
-    tmp = path.parent / f".{path.name}.{uuid.uuid4().hex[:8]}.tmp"
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-    except BaseException:
-        with suppress(OSError):
-            os.unlink(tmp)
-        raise
-    return tmp
-
-
-def _atomic_write(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` so that readers see either the old file or the new one, never a part."""
-    try:
-        mode = stat.S_IMODE(path.stat().st_mode)
-    except FileNotFoundError:
-        mode = None
-    tmp = _temp_copy(path, data)
-    try:
-        if mode is not None:
-            os.chmod(tmp, mode)
-        os.replace(tmp, path)
-    except BaseException:
-        with suppress(OSError):
-            os.unlink(tmp)
-        raise
-    _fsync_dir(path.parent)
-
-
-def _write_new(path: Path, data: bytes) -> None:
-    """Write ``data`` to a new file at ``path``; raises FileExistsError rather than replace anything."""
-    tmp = _temp_copy(path, data)
-    try:
-        os.link(tmp, path)  # fails if path exists: a backup is never overwritten
-    finally:
-        with suppress(OSError):
-            os.unlink(tmp)
-    _fsync_dir(path.parent)
-
-
 def _encode(findings: list[Finding]) -> bytes:
     doc = {"format": FORMAT, "findings": [f.to_dict() for f in findings]}
     return (json.dumps(doc, indent=2, ensure_ascii=False) + "\n").encode("utf-8")
@@ -610,7 +517,7 @@ class Findings:
         for n in range(1000):
             target = self._backup_name(stamp, n)
             try:
-                _write_new(target, raw)
+                write_new(target, raw)
                 return target
             except FileExistsError:
                 continue
@@ -702,7 +609,7 @@ class Findings:
 
     def _write(self, findings: list[Finding]) -> None:
         try:
-            _atomic_write(self.path, _encode(findings))
+            write_atomic(self.path, _encode(findings))
         except OSError as exc:
             raise AttnposError(
                 f"Could not save the findings file {str(self.path)!r} ({exc.strerror or exc}); the file on disk is "
@@ -926,7 +833,7 @@ class Findings:
         else:
             data = _encode(self._read())
         try:
-            _atomic_write(out.resolve(), data)
+            write_atomic(out.resolve(), data)
         except OSError as exc:
             raise AttnposError(
                 f"Could not write the export {str(out)!r} ({exc.strerror or exc}). Check free space and "

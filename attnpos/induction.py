@@ -7,7 +7,10 @@ only copying explains a high score.
 
 Example::
 
-    >>> scores = induction_scores(subject)     # {(stack, layer): (heads,) array}      # doctest: +SKIP
+    >>> import attnpos
+    >>> res = induction_scores(attnpos.load("ref:rope"))
+    >>> res.scores[("main", 0)].shape, list(res.table().columns)
+    ((4,), ['key', 'stack', 'layer', 'head', 'induction'])
 """
 
 from __future__ import annotations
@@ -16,7 +19,8 @@ import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer, record
-from .texts import TextUnit
+from .results.induction import InductionResult
+from .texts import TextUnit, display_tokens, template
 
 
 class _Induction(Reducer):
@@ -54,12 +58,10 @@ def _ordinary_ids(tokenizer, rng: np.random.Generator, n: int) -> list[int]:
     return [int(x) for x in rng.choice(pool, size=n, replace=False)]
 
 
-def induction_scores(subject, *, length: int = 48, repeats: int = 4, seed: int = 0) -> dict:
-    """Mean weight on the induction target per head, keyed by (stack, layer)."""
+def induction_scores(subject, *, length: int = 48, repeats: int = 4, seed: int = 0) -> InductionResult:
+    """Mean weight on the induction target per head (an :class:`~attnpos.results.induction.InductionResult`)."""
     rng = np.random.default_rng(seed)
-    from .texts import _template, _display
-
-    prefix, suffix = _template(subject.tokenizer)
+    prefix, suffix = template(subject.tokenizer)
     if subject.context_limit:
         length = min(length, (subject.context_limit - len(prefix) - len(suffix)) // 2)
     units = []
@@ -71,7 +73,8 @@ def induction_scores(subject, *, length: int = 48, repeats: int = 4, seed: int =
         if suffix:
             special[-len(suffix):] = True
         units.append(TextUnit(name=f"random-repeat-{r}", source="<induction test>", ids=ids,
-                              tokens=_display(subject.tokenizer, ids), special=special))
+                              tokens=display_tokens(subject.tokenizer, ids), special=special))
     red = _Induction(length, len(prefix))
     rec = record(subject, units=units, reducers=[red], progress=False)
-    return rec.results["induction"]
+    return InductionResult(scores=rec.results["induction"], settings={"length": length, "repeats": repeats,
+                                                                     "seed": seed})

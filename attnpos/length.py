@@ -25,8 +25,10 @@ Press, Smith & Lewis 2022 (ALiBi) measure exactly this curve: loss per position 
 
 Example::
 
-    >>> res = length(attnpos.load("ref:alibi"), to=512)          # doctest: +SKIP
-    >>> res.summary["loss_at"]                                     # doctest: +SKIP
+    >>> import attnpos
+    >>> res = length(attnpos.load("ref:alibi"), to=256, n_sequences=4, n_boot=20)
+    >>> res.training_length, sorted(res.summary["loss_at"]), res.table().shape
+    (128, ['1x', '2x', '4x'], (255, 4))
 
 Command line: ``attnpos length ref:alibi --to 512 --json length.json``.
 """
@@ -34,144 +36,25 @@ Command line: ``attnpos length ref:alibi --to 512 --json length.json``.
 from __future__ import annotations
 
 import dataclasses
-import json
-import sys
 import warnings
-from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer
+from .core import schemes, settings
 from .errors import AttnposError
+from .results.length import CAUTION, LengthResult  # noqa: F401  (CAUTION: this stage's caution)
 
 
-CAUTION = (
-    "Attention weights are evidence, not explanation (Jain & Wallace 2019; Wiegreffe & Pinter 2019): a head whose "
-    "entropy or role changes past the training length is a lead, to be confirmed with an intervention (the shift "
-    "test, or ablating the head). Per-position loss is measured on these texts only."
-)
-
-#: sequences cut from the texts (at most)
-SEQUENCES = 16
-#: about this many query-position bins
-BINS = 16
-#: bootstrap resamples (over sequences) for the loss intervals
-BOOT = 200
+SEQUENCES = settings.LENGTH_SEQUENCES
+BINS = settings.LENGTH_BINS
+BOOT = settings.LENGTH_BOOT
 #: "loss at k×" = mean loss over the positions (k·L − L/4, k·L]
 LOSS_AT = (1, 2, 4)
 #: generated documents (not part of the reference models' training corpus) are drawn with this seed
 CORPUS_SEED_OFFSET = 1
-
-
-# --------------------------------------------------------------------------------------------------- result
-
-@dataclass
-class LengthResult:
-    """What :func:`length` measured (see the module doc). ``loss``/``loss_lo``/``loss_hi`` are None when the model
-    has no language-model head."""
-
-    model: dict
-    position: list[int]
-    loss: list[float] | None
-    loss_lo: list[float] | None
-    loss_hi: list[float] | None
-    training_length: int | None
-    training_length_source: str
-    bins: list[list[int]]
-    heads: list[dict]
-    drift: list[dict] | None
-    summary: dict
-    settings: dict
-    notes: list[str] = field(default_factory=list)
-    caution: str = CAUTION
-
-    def to_json(self) -> dict:
-        from .result import json_safe
-
-        return json_safe({
-            "model": self.model.get("name"), "subject": self.model,
-            "position": self.position, "loss": self.loss, "loss_lo": self.loss_lo, "loss_hi": self.loss_hi,
-            "training_length": self.training_length, "training_length_source": self.training_length_source,
-            "bins": self.bins, "heads": self.heads, "drift": self.drift, "summary": self.summary,
-            "settings": self.settings, "notes": self.notes, "caution": self.caution,
-        })
-
-    def save(self, path: str | Path) -> Path:
-        path = Path(path)
-        path.write_text(json.dumps(self.to_json(), indent=1, ensure_ascii=False), encoding="utf-8")
-        return path
-
-    def table(self) -> str:
-        m, s = self.model, self.settings
-        L = self.training_length
-        lines = [f"{m.get('name')}  {m.get('architecture')}  scheme={m.get('scheme')}  causal={m.get('causal')}",
-                 f"{s['n_sequences']} sequences of {s['to']} tokens; training length "
-                 f"{L if L else 'unknown'} ({self.training_length_source})", ""]
-
-        def f(x, w=7, nd=3):
-            return ("—" if x is None or not np.isfinite(x) else f"{x:.{nd}f}").rjust(w)
-
-        if self.loss is not None:
-            lines.append("next-token loss (nats) by position, mean over sequences, with the 90% bootstrap interval "
-                         "of the bin mean (sequences resampled):")
-            lines.append(f"{'positions':>13}  {'loss':>7}  {'interval':>17}")
-            for r in self.summary.get("bin_loss") or []:
-                a, b = r["positions"]
-                mark = "  ← beyond training length" if L and a >= L else ""
-                lines.append(f"{f'{a}–{b}':>13}  {f(r['loss'])}  [{f(r['lo'])}, {f(r['hi'])}]{mark}")
-            la = self.summary.get("loss_at") or {}
-            lines.append("loss at multiples of the training length (mean over the last quarter-length before it): "
-                         + ", ".join(f"{k} {f(v, 0)}" for k, v in la.items()))
-        else:
-            lines.append("loss: not available (" + self.summary.get("loss_note", "no language-model head") + ")")
-        lines.append("")
-        lines.extend(self._curve_lines(f))
-        ch = self.summary.get("head_changes") or []
-        if ch:
-            lines.append("heads whose attention changes most beyond the training length (entropy / first-token "
-                         "weight, inside → beyond):")
-            for r in ch[:8]:
-                lines.append(f"  L{r['layer']}.H{r['head']}: entropy {f(r['entropy_inside'], 0, 2)} → "
-                             f"{f(r['entropy_beyond'], 0, 2)}, first {f(r['first_inside'], 0, 2)} → "
-                             f"{f(r['first_beyond'], 0, 2)}")
-        if self.drift is not None:
-            changed = [d for d in self.drift if d["changed"]]
-            lines.append(f"role drift (weight-based roles, queries inside vs beyond the training length): "
-                         f"{len(changed)} of {len(self.drift)} heads change role")
-            for d in changed[:12]:
-                lines.append(f"  L{d['layer']}.H{d['head']}: {d['inside']['role']} → {d['beyond']['role']}")
-        for n in self.notes:
-            lines.append("notice: " + n)
-        lines.append("note: " + self.caution)
-        return "\n".join(lines)
-
-    def _curve_lines(self, f) -> list[str]:
-        """Per layer, mean over its heads of entropy and first-token weight in a few query-position bins."""
-        nb = len(self.bins)
-        if not nb or not self.heads:
-            return []
-        cols = sorted(set(np.linspace(0, nb - 1, min(nb, 6)).round().astype(int).tolist()))
-        L = self.training_length
-        names = [f"{self.bins[c][0]}–{self.bins[c][1]}" + ("*" if L and self.bins[c][0] >= L else "") for c in cols]
-        out = ["attention by query position (mean over each layer's heads; entropy 1 = uniform over the visible "
-               "keys; first = weight on the first token" + ("; * beyond the training length" if L else "") + "):",
-               f"{'queries':<14}" + "".join(f"{n:>10}" for n in names)]
-        groups: dict[tuple, list[dict]] = {}
-        for h in self.heads:
-            groups.setdefault((h["stack"], h["layer"]), []).append(h)
-        for (stack, layer), hs in groups.items():
-            tag = (f"{stack[:3]}:" if stack != "main" else "") + f"L{layer}"
-            for key, label in (("entropy", "entropy"), ("first_weight", "first")):
-                arr = np.array([[np.nan if v is None else v for v in h[key]] for h in hs], dtype=float)
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore", RuntimeWarning)
-                    mean = np.nanmean(arr, axis=0)
-                out.append(f"{tag + ' ' + label:<14}" + "".join(f(mean[c], 10, 2) for c in cols))
-        out.append("")
-        return out
 
 
 # --------------------------------------------------------------------------------------------------- reducers
@@ -261,9 +144,9 @@ class RangeWeights(Reducer):
 
     def update(self, cap: LayerCapture) -> None:
         a, b = self._masked(cap)
-        self.inside.update(dataclasses.replace(cap, unit=a))
+        self.inside.update(cap.with_unit(a))
         if cap.weights.shape[-1] > self.split:
-            self.beyond.update(dataclasses.replace(cap, unit=b))
+            self.beyond.update(cap.with_unit(b))
 
     def result(self) -> dict:
         return {"inside": self.inside.result(), "beyond": self.beyond.result()}
@@ -291,7 +174,7 @@ def training_length_of(subject, given: int | None = None) -> tuple[int | None, s
 
 def table_limit(subject) -> int | None:
     """The number of rows of the position table, for schemes that read one (None: no hard limit)."""
-    if any(s.scheme in ("learned-absolute", "sinusoidal") for s in subject.sites) and subject.context_limit:
+    if schemes.table_schemes([s.scheme for s in subject.sites]) and subject.context_limit:
         return int(subject.context_limit)
     return None
 
@@ -326,10 +209,10 @@ def _default_text(tokenizer, need_tokens: int) -> list[str]:
 
 def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES) -> tuple[list, list[str]]:
     """Cut the joined texts into at most ``n_sequences`` token sequences of exactly ``to`` tokens."""
-    from .texts import TextUnit, _display, _template, as_raw
+    from .texts import TextUnit, display_tokens, template, as_raw
 
     tok = subject.tokenizer
-    prefix, suffix = _template(tok)
+    prefix, suffix = template(tok)
     room = to - len(prefix) - len(suffix)
     notes: list[str] = []
     if room < 1:
@@ -350,8 +233,8 @@ def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES) -> tuple[li
                            f"(--to {to}). Pass longer texts with --text, or leave --text out to use generated "
                            "documents.")
     if n < n_sequences:
-        notes.append(f"The texts gave {n} sequences of {to} tokens (asked for {n_sequences}); intervals are wider. "
-                     "Pass longer texts for more.")
+        notes.append(f"The texts gave {n} sequence{'s' if n > 1 else ''} of {to} tokens (asked for {n_sequences})"
+                     + ("; intervals are wider" if n > 1 else "") + ". Pass longer texts for more.")
     special_ids = set(getattr(tok, "all_special_ids", []) or [])
     units = []
     for k in range(n):
@@ -362,7 +245,7 @@ def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES) -> tuple[li
             special[len(ids) - len(suffix):] = True
         if special_ids:
             special |= np.isin(np.asarray(ids), list(special_ids))
-        units.append(TextUnit(name=f"sequence{k + 1}", source="<length>", ids=ids, tokens=_display(tok, ids),
+        units.append(TextUnit(name=f"sequence{k + 1}", source="<length>", ids=ids, tokens=display_tokens(tok, ids),
                               special=special))
     return units, notes
 
@@ -403,20 +286,138 @@ def _interval(boot: np.ndarray | None, sel=None) -> tuple[Any, Any]:
 
 
 def _role_rows(subject, weights: dict) -> list[dict]:
-    from .roles import assign
+    """Per head, the weight-based statistics and the role they give (:mod:`attnpos.core.roles`)."""
+    from .core import roles
+    from .roles import weight_rows
 
-    out = []
     causal_of = {(s.stack, s.layer): s.causal for s in subject.sites}
-    for si, key in enumerate(weights["keys"]):
-        for h in range(subject.n_heads):
-            r = {f"mass_{m}": float(weights["mass"][m][si, h]) for m in ("previous", "next", "first", "self")}
-            r.update(entropy_ratio=float(weights["entropy_ratio"][si, h]),
-                     anchor_slot=float(weights["anchor_slot"][si, h]),
-                     anchor_weight=float(weights["anchor_weight"][si, h]))
-            role, tags, evidence = assign(r, causal_of.get(key, subject.causal))
-            r.update(role=role, tags=tags, evidence=evidence)
-            out.append({"stack": key[0], "layer": key[1], "head": h, **{"stats": r}})
+    out = []
+    for r in weight_rows(subject, weights):
+        role, tags, evidence = roles.assign(r, causal_of.get((r["stack"], r["layer"]), subject.causal))
+        stats = {k: v for k, v in r.items() if k not in ("stack", "layer", "head")}
+        stats.update(role=role, tags=tags, evidence=evidence)
+        out.append({"stack": r["stack"], "layer": r["layer"], "head": r["head"], "stats": stats})
     return out
+
+
+# --------------------------------------------------------------------------------------------------- the steps
+
+def resolve_to(subject, to: int | None, L: int | None) -> tuple[int, list[str]]:
+    """The sequence length to use (default 4× the training length, capped by a position table), checked against
+    the table; with the notes it calls for."""
+    notes: list[str] = []
+    limit = table_limit(subject)
+    if to is None:
+        if L is None:
+            raise AttnposError("Give the sequence length with --to N: the training length of this model is unknown, "
+                               "so no default can be derived (or give --training-length).")
+        to = 4 * L if limit is None else min(4 * L, limit)
+    to = int(to)
+    if to < 4:
+        raise AttnposError(f"--to {to} is too short; use at least 4 tokens.")
+    if limit is not None and to > limit:
+        scheme = ", ".join(schemes.table_schemes([s.scheme for s in subject.sites]))
+        raise AttnposError(
+            f"{subject.name} reads its positions from a {scheme} table of {limit} rows (positions 0 … {limit - 1}), "
+            f"so it cannot read a sequence of {to} tokens: there is no row for position {limit} or later, and no "
+            f"way to extrapolate a table. Use --to {limit} or less"
+            + (f" (positions past the training length {L} up to {limit - 1} exist in the table but were never "
+               "trained)" if L and L < limit else "") + ".")
+    if L is not None and limit is not None and L < to and any(s.scheme == "learned-absolute" for s in subject.sites):
+        notes.append(f"Positions {L} … {to - 1} have rows in the learned table but were not seen in training "
+                     f"(training length {L}); their rows hold whatever initialisation and weight decay left.")
+    if L is None:
+        notes.append("The training length is unknown: no inside/beyond split (role drift) and no loss at multiples "
+                     "of it. Give it with training_length= (CLI --training-length).")
+    return to, notes
+
+
+def _mean(x, axis=None):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(x, axis=axis)
+
+
+def loss_summary(loss_tab: np.ndarray, edges: np.ndarray, to: int, L: int | None, n_boot: int,
+                 seed: int) -> tuple[list, list, list, dict, list[str]]:
+    """Per-position mean loss with its 90% interval, the loss at multiples of the training length and per bin of
+    positions; with the notes it calls for."""
+    notes, summary = [], {}
+    mean = _mean(loss_tab, axis=0)
+    boot = _bootstrap(loss_tab, n_boot, seed)
+    lo_a, hi_a = _interval(boot)
+    if lo_a is None:
+        lo_a = hi_a = np.full(len(mean), np.nan)
+        notes.append("Only one sequence: no intervals (pass longer texts for more sequences)."
+                     if loss_tab.shape[0] < 2 else "No bootstrap resamples (--boot 0): no intervals.")
+    summary["loss_mean"] = float(np.nanmean(loss_tab))
+    pos = np.arange(1, to)
+    if L:
+        w = max(1, L // 4)
+        la, la_int = {}, {}
+        for k in LOSS_AT:
+            sel = (pos > k * L - w) & (pos <= k * L)
+            if k * L <= to and sel.any():
+                la[f"{k}x"] = float(_mean(mean[sel]))
+                a, b = _interval(boot, sel)
+                la_int[f"{k}x"] = None if a is None else [float(a), float(b)]
+            else:
+                la[f"{k}x"] = la_int[f"{k}x"] = None
+        summary["loss_at"] = la
+        summary["loss_at_interval"] = la_int
+        summary["loss_at_window"] = (f"mean over positions (k·L − {w}, k·L] (k·L ≤ to; position to − 1 is the "
+                                     f"last), L = {L}")
+    summary["bin_loss"] = []
+    for a_, b_ in [[int(edges[i]), int(edges[i + 1]) - 1] for i in range(len(edges) - 1)]:
+        sel = (pos >= max(a_, 1)) & (pos <= b_)
+        if not sel.any():
+            continue
+        a, b = _interval(boot, sel)
+        summary["bin_loss"].append({"positions": [max(a_, 1), b_], "loss": float(_mean(mean[sel])),
+                                    "lo": None if a is None else float(a), "hi": None if b is None else float(b)})
+    return mean.tolist(), np.asarray(lo_a).tolist(), np.asarray(hi_a).tolist(), summary, notes
+
+
+def head_curves(curves: dict, n_heads: int) -> list[dict]:
+    """Per head, entropy (relative and nats) and first-token weight per query-position bin."""
+    heads = []
+    for si, key in enumerate(curves["keys"]):
+        for h in range(n_heads):
+            heads.append({"stack": key[0], "layer": key[1], "head": h, "entropy": curves["entropy"][si, h],
+                          "entropy_nats": curves["entropy_nats"][si, h], "first_weight": curves["first_weight"][si, h]})
+    return heads
+
+
+DRIFT_STATS = ("role", "tags", "mass_previous", "mass_next", "mass_first", "mass_self", "entropy_ratio",
+               "anchor_slot", "anchor_weight")
+
+
+def role_drift(subject, range_weights: dict, heads: list[dict], bins: list[list[int]], L: int) -> tuple[list, dict]:
+    """Each head's weight-based role inside and beyond the training length, and the heads whose curves change most
+    between the bins inside and beyond it."""
+    ins, bey = _role_rows(subject, range_weights["inside"]), _role_rows(subject, range_weights["beyond"])
+    drift = [{"stack": a["stack"], "layer": a["layer"], "head": a["head"],
+              "inside": {k: a["stats"][k] for k in DRIFT_STATS}, "beyond": {k: b["stats"][k] for k in DRIFT_STATS},
+              "changed": a["stats"]["role"] != b["stats"]["role"]} for a, b in zip(ins, bey)]
+    inside_bins = np.array([e[1] < L for e in bins])
+    changes = []
+    for hd in heads:
+        e, fw = np.asarray(hd["entropy"], float), np.asarray(hd["first_weight"], float)
+        ei, eb = _mean(e[inside_bins]), _mean(e[~inside_bins])
+        fi, fb = _mean(fw[inside_bins]), _mean(fw[~inside_bins])
+        changes.append({"stack": hd["stack"], "layer": hd["layer"], "head": hd["head"], "entropy_inside": ei,
+                        "entropy_beyond": eb, "first_inside": fi, "first_beyond": fb,
+                        "change": float(np.nansum([abs(eb - ei), abs(fb - fi)]))})
+    changes.sort(key=lambda r: -r["change"])
+    return drift, {"drift_changed": int(sum(d["changed"] for d in drift)), "head_changes": changes}
+
+
+def _no_loss_note(subject, want_loss: bool) -> str:
+    if not want_loss and not subject.is_encoder_decoder:
+        return "the model is not causal (an encoder): it has no next-token loss"
+    if subject.is_encoder_decoder:
+        return "encoder-decoder models: the decoder's loss is not a per-position loss of the text"
+    return "the model has no language-model head (an encoder or a base model without logits)"
 
 
 # --------------------------------------------------------------------------------------------------- main
@@ -434,37 +435,16 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
         n_sequences: at most this many sequences.
         bins: about this many query-position bins for the per-head curves.
         n_boot: bootstrap resamples (over sequences) for the loss intervals.
+
+    Returns a :class:`~attnpos.results.length.LengthResult`.
     """
     from .capture import record
     from .subject import Subject, load
 
     if not isinstance(subject, Subject):
         subject = load(subject)
-    notes: list[str] = []
     L, source = training_length_of(subject, training_length)
-    limit = table_limit(subject)
-    if to is None:
-        if L is None:
-            raise AttnposError("Give the sequence length with --to N: the training length of this model is unknown, "
-                               "so no default can be derived (or give --training-length).")
-        to = 4 * L if limit is None else min(4 * L, limit)
-    to = int(to)
-    if to < 4:
-        raise AttnposError(f"--to {to} is too short; use at least 4 tokens.")
-    if limit is not None and to > limit:
-        scheme = ", ".join(sorted({s.scheme for s in subject.sites if s.scheme in ('learned-absolute', 'sinusoidal')}))
-        raise AttnposError(
-            f"{subject.name} reads its positions from a {scheme} table of {limit} rows (positions 0 … {limit - 1}), "
-            f"so it cannot read a sequence of {to} tokens: there is no row for position {limit} or later, and no "
-            f"way to extrapolate a table. Use --to {limit} or less"
-            + (f" (positions past the training length {L} up to {limit - 1} exist in the table but were never "
-               "trained)" if L and L < limit else "") + ".")
-    if L is not None and limit is not None and L < to and any(s.scheme == "learned-absolute" for s in subject.sites):
-        notes.append(f"Positions {L} … {to - 1} have rows in the learned table but were not seen in training "
-                     f"(training length {L}); their rows hold whatever initialisation and weight decay left.")
-    if L is None:
-        notes.append("The training length is unknown: no inside/beyond split (role drift) and no loss at multiples "
-                     "of it. Give it with training_length= (CLI --training-length).")
+    to, notes = resolve_to(subject, to, L)
     units, snotes = sequences(subject, texts, to, n_sequences)
     notes += snotes
     edges = _bin_edges(to, L, bins)
@@ -477,132 +457,27 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
     want_loss = subject.causal and not subject.is_encoder_decoder
     rec = record(subject, units=units, reducers=reducers, token_loss=want_loss, progress=False)
     loss_tab = _loss_table(units, rec.token_loss) if want_loss else None
-    position = list(range(1, to))
     summary: dict[str, Any] = {}
     if loss_tab is None:
         loss = lo = hi = None
-        summary["loss_note"] = ("the model has no language-model head (an encoder or a base model without logits)"
-                                if not subject.is_encoder_decoder else
-                                "encoder-decoder models: the decoder's loss is not a per-position loss of the text")
-        if not want_loss and not subject.is_encoder_decoder:
-            summary["loss_note"] = "the model is not causal (an encoder): it has no next-token loss"
+        summary["loss_note"] = _no_loss_note(subject, want_loss)
         notes.append("Per-position loss is not available: " + summary["loss_note"] + ". Entropy, first-token weight "
                      "and role drift are reported.")
     else:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            mean = np.nanmean(loss_tab, axis=0)
-        boot = _bootstrap(loss_tab, n_boot, seed)
-        lo_a, hi_a = _interval(boot)
-        if lo_a is None:
-            lo_a = hi_a = np.full(len(mean), np.nan)
-            notes.append("Only one sequence: no intervals.")
-        loss, lo, hi = mean.tolist(), np.asarray(lo_a).tolist(), np.asarray(hi_a).tolist()
-        summary["loss_mean"] = float(np.nanmean(loss_tab))
-        if L:
-            w = max(1, L // 4)
-            pos = np.arange(1, to)
-            la, la_int = {}, {}
-            for k in LOSS_AT:
-                sel = (pos > k * L - w) & (pos <= k * L)
-                if k * L <= to and sel.any():
-                    with warnings.catch_warnings():
-                        warnings.simplefilter("ignore", RuntimeWarning)
-                        la[f"{k}x"] = float(np.nanmean(mean[sel]))
-                    a, b = _interval(boot, sel)
-                    la_int[f"{k}x"] = None if a is None else [float(a), float(b)]
-                else:
-                    la[f"{k}x"] = None
-                    la_int[f"{k}x"] = None
-            summary["loss_at"] = la
-            summary["loss_at_interval"] = la_int
-            summary["loss_at_window"] = (f"mean over positions (k·L − {w}, k·L] (k·L ≤ to; position to − 1 is the "
-                                         f"last), L = {L}")
-        if boot is not None:
-            summary["bin_loss"] = []
-            pos = np.arange(1, to)
-            for a_, b_ in [[int(edges[i]), int(edges[i + 1]) - 1] for i in range(len(edges) - 1)]:
-                sel = (pos >= max(a_, 1)) & (pos <= b_)
-                if not sel.any():
-                    continue
-                a, b = _interval(boot, sel)
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore", RuntimeWarning)
-                    summary["bin_loss"].append({"positions": [max(a_, 1), b_], "loss": float(np.nanmean(mean[sel])),
-                                                "lo": float(a), "hi": float(b)})
-    curves = rec.results["position-curves"]
-    heads = []
-    for si, key in enumerate(curves["keys"]):
-        for h in range(subject.n_heads):
-            heads.append({"stack": key[0], "layer": key[1], "head": h, "entropy": curves["entropy"][si, h],
-                          "entropy_nats": curves["entropy_nats"][si, h],
-                          "first_weight": curves["first_weight"][si, h]})
+        loss, lo, hi, part, lnotes = loss_summary(loss_tab, edges, to, L, n_boot, seed)
+        summary.update(part)
+        notes += lnotes
+    heads = head_curves(rec.results["position-curves"], subject.n_heads)
     bins_list = [[int(edges[i]), int(edges[i + 1]) - 1] for i in range(len(edges) - 1)]
     drift = None
     if drift_on:
-        rw = rec.results["range-weights"]
-        ins, bey = _role_rows(subject, rw["inside"]), _role_rows(subject, rw["beyond"])
-        drift = []
-        keep = ("role", "tags", "mass_previous", "mass_next", "mass_first", "mass_self", "entropy_ratio",
-                "anchor_slot", "anchor_weight")
-        for a, b in zip(ins, bey):
-            drift.append({"stack": a["stack"], "layer": a["layer"], "head": a["head"],
-                          "inside": {k: a["stats"][k] for k in keep}, "beyond": {k: b["stats"][k] for k in keep},
-                          "changed": a["stats"]["role"] != b["stats"]["role"]})
-        summary["drift_changed"] = int(sum(d["changed"] for d in drift))
-        # the heads whose curves change most between the bins inside and beyond the training length
-        inside_bins = np.array([e[1] < L for e in bins_list])
-        changes = []
-        for hd in heads:
-            e, fw = np.asarray(hd["entropy"], float), np.asarray(hd["first_weight"], float)
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                ei, eb = np.nanmean(e[inside_bins]), np.nanmean(e[~inside_bins])
-                fi, fb = np.nanmean(fw[inside_bins]), np.nanmean(fw[~inside_bins])
-            changes.append({"stack": hd["stack"], "layer": hd["layer"], "head": hd["head"], "entropy_inside": ei,
-                            "entropy_beyond": eb, "first_inside": fi, "first_beyond": fb,
-                            "change": float(np.nansum([abs(eb - ei), abs(fb - fi)]))})
-        changes.sort(key=lambda r: -r["change"])
-        summary["head_changes"] = changes
+        drift, part = role_drift(subject, rec.results["range-weights"], heads, bins_list, L)
+        summary.update(part)
     settings = {"to": to, "n_sequences": len(units), "bins": len(bins_list), "n_boot": n_boot, "seed": seed,
                 "position": "p = tokens read before the prediction = index of the predicted token (1 … to − 1)",
                 "entropy": "entropy of a query's weights / log(number of visible keys); 1 = uniform",
                 "first_weight": "weight on slot 0 (the first token), queries at index ≥ 1",
                 "drift_roles": "weight-based roles only (previous-token, next-token, anchor, counting, mixed)"}
-    return LengthResult(model=subject.describe(), position=position, loss=loss, loss_lo=lo, loss_hi=hi,
+    return LengthResult(model=subject.describe(), position=list(range(1, to)), loss=loss, loss_lo=lo, loss_hi=hi,
                         training_length=L, training_length_source=source, bins=bins_list, heads=heads, drift=drift,
                         summary=summary, settings=settings, notes=notes)
-
-
-# --------------------------------------------------------------------------------------------------- CLI
-
-def add_arguments(p) -> None:
-    from .cli import add_model_arguments
-
-    add_model_arguments(p)
-    p.add_argument("--to", type=int, required=True, metavar="N",
-                   help="sequence length in tokens (may exceed the training length)")
-    p.add_argument("--text", action="append", type=Path, default=None, metavar="PATH",
-                   help="a .txt file or a folder of them, joined and cut into sequences of N tokens; repeatable; "
-                        "default: freshly generated documents of the reference corpus scenarios")
-    p.add_argument("--training-length", type=int, default=None, metavar="L",
-                   help="the context length the model was trained on (default: recorded with the model or config)")
-    p.add_argument("--sequences", type=int, default=SEQUENCES, metavar="K", help=f"at most K sequences ({SEQUENCES})")
-    p.add_argument("--bins", type=int, default=BINS, help=f"about this many query-position bins ({BINS})")
-    p.add_argument("--boot", type=int, default=BOOT, help=f"bootstrap resamples for loss intervals ({BOOT})")
-    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the results as JSON")
-
-
-def run(args) -> int:
-    from .cli import load_subject
-    from .texts import read
-
-    subject = load_subject(args)
-    texts = read(args.text) if args.text else None
-    res = length(subject, texts, to=args.to, training_length=args.training_length, n_sequences=args.sequences,
-                 bins=args.bins, n_boot=args.boot)
-    print(res.table(), file=sys.stdout)
-    if args.json:
-        res.save(args.json)
-        print(f"wrote {args.json}")
-    return 0

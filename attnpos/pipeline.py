@@ -1,11 +1,12 @@
-"""The full scan: load → record → split → shift test → induction test → roles → :class:`~attnpos.result.Scan`.
+"""The full scan: load → record → split → shift test → induction test → roles → :class:`~attnpos.results.scan.Scan`.
 
 Example::
 
     >>> import attnpos
-    >>> scan = attnpos.scan("ref:rope")                     # bundled sample texts     # doctest: +SKIP
+    >>> scan = attnpos.scan("ref:rope")                     # the bundled sample texts
+    >>> scan.heads.query("role == 'previous-token'")[["layer", "head"]].values.tolist()
+    [[0, 1]]
     >>> scan = attnpos.scan("/models/ckpt", ["my text ..."], n_boot=200)                # doctest: +SKIP
-    >>> scan.heads.query("role == 'previous-token'")                                   # doctest: +SKIP
     >>> scan.save("scan.json")                                                          # doctest: +SKIP
 """
 
@@ -18,10 +19,11 @@ import numpy as np
 
 from . import __version__
 from .capture import record
+from .core import settings
 from .errors import AttnposError
 from .induction import induction_scores
 from .reducers import SplitStats, WeightStats
-from .result import Scan
+from .results.scan import Scan
 from .roles import head_table
 from .shift import ShiftTest
 from .split import Split
@@ -37,10 +39,10 @@ def versions() -> dict:
             "numpy": np.__version__, "python": platform.python_version()}
 
 
-def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, n_boot: int = 100,
+def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, n_boot: int = settings.SCAN_BOOT,
          shift: bool = True, induction: bool = True, keep_maps: int = 2, max_map_tokens: int = 512,
          progress: bool | None = None, allow_pickle: bool = False, trust_remote_code: bool = False) -> Scan:
-    """Scan a model on texts and return a :class:`~attnpos.result.Scan`.
+    """Scan a model on texts and return a :class:`~attnpos.results.scan.Scan`.
 
     Args:
         model: a :class:`~attnpos.subject.Subject`, a folder, or ``"ref:<scheme>"``.
@@ -84,7 +86,7 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
                  "mean": w["near_mean"].reshape(-1, w["near_mean"].shape[-1]).tolist()},
     }
     if sh is not None:
-        extra["shift"] = {"kind": sh["kind"], "offset": sh["offset"], "note": sh.get("note")}
+        extra["shift"] = {"kind": sh.shift_kind, "offset": sh.offset, "note": sh.note}
     return Scan(model=info, texts=[u.describe() for u in units], tokens=[u.tokens for u in units],
                 special=[np.flatnonzero(u.special).tolist() for u in units], heads=table, profile=profile,
                 maps=rec.maps, texts_hash=texts_hash(units), versions=versions(), extra=extra)

@@ -28,8 +28,8 @@ A probe shows that position is *decodable* from a layer, not that the model *use
 Example::
 
     >>> res = attnpos.probes.probe(attnpos.load("ref:none"))            # doctest: +SKIP
-    >>> [(l["layer"], round(l["r2"], 2), round(l["untrained_r2"], 2)) for l in res.layers]   # doctest: +SKIP
-    >>> res.to_json()["counting"]["first_layer_above_untrained"]          # doctest: +SKIP
+    >>> res.table()[["layer", "r2", "control_r2", "untrained_r2"]]       # doctest: +SKIP
+    >>> res.counting["first_layer_above_untrained"]                      # doctest: +SKIP
 
 Command line: ``attnpos probe ref:none --json probe.json``.
 """
@@ -37,113 +37,26 @@ Command line: ``attnpos probe ref:none --json probe.json``.
 from __future__ import annotations
 
 import copy
-import json
-import sys
-from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
 import torch
 
+from .core import settings
 from .errors import AttnposError
+from .results.probe import CAUTION, ProbeResult  # noqa: F401  (CAUTION: this stage's caution)
 
-
-CAUTION = (
-    "A probe shows that position can be decoded from a layer's hidden states, not that the model uses it "
-    "(Hewitt & Liang 2019: compare with the control and the untrained copy). Attention weights, used in the "
-    "counting check, are evidence, not explanation (Jain & Wallace 2019; Wiegreffe & Pinter 2019); back a reading "
-    "with an intervention such as the shift test or ablating a head."
-)
 
 #: ridge penalties tried (on standardised features), chosen per target on the training texts only
 ALPHAS = tuple(float(a) for a in np.logspace(-2, 5, 8))
 #: outer folds (over texts) and inner folds (over training texts, for the penalty)
-FOLDS = 5
+FOLDS = settings.PROBE_FOLDS
 INNER_FOLDS = 4
 #: the probe "beats the untrained copy" at a layer when its held-out R² is higher by at least this much. A judgement
 #: call: fold-to-fold differences of pooled R² on a few thousand tokens are a few hundredths.
 ABOVE_UNTRAINED = 0.05
 #: a layer counts as "position decodable" when the held-out R² is at least this (judgement call: half the variance).
 DECODABLE_R2 = 0.5
-
-
-# --------------------------------------------------------------------------------------------------- result
-
-@dataclass
-class ProbeResult:
-    """What :func:`probe` found. ``layers`` holds one dict per hidden-state layer (keys ``layer``, ``r2``,
-    ``r2_log``, ``control_r2``, ``selectivity``, ``mae``, ``untrained_r2``, ``alpha``); ``positions`` the range
-    of positions covered and the tokens per position; ``counting`` the counting check (causal models);
-    ``bands`` the RoPE frequency bands (:func:`attnpos.bands.rope_bands`) when the model has RoPE layers."""
-
-    model: dict
-    layers: list[dict]
-    positions: dict
-    settings: dict
-    counting: dict | None = None
-    bands: dict | None = None
-    notes: list[str] = field(default_factory=list)
-    caution: str = CAUTION
-
-    def to_json(self) -> dict:
-        from .result import json_safe
-
-        out: dict[str, Any] = {
-            "model": self.model.get("name"),
-            "subject": self.model,
-            "layers": self.layers,
-            "positions": self.positions,
-            "settings": self.settings,
-        }
-        if self.counting is not None:
-            out["counting"] = self.counting
-        if self.bands is not None:
-            out["bands"] = self.bands
-        out["notes"] = self.notes
-        out["caution"] = self.caution
-        return json_safe(out)
-
-    def save(self, path: str | Path) -> Path:
-        path = Path(path)
-        path.write_text(json.dumps(self.to_json(), indent=1, ensure_ascii=False), encoding="utf-8")
-        return path
-
-    def table(self) -> str:
-        """A readable terminal table."""
-        m, p, s = self.model, self.positions, self.settings
-        scheme = m["scheme"] if isinstance(m.get("scheme"), str) else ",".join(m.get("scheme") or [])
-        lines = [
-            f"{m.get('name')}  {m.get('architecture')}  scheme={scheme}  causal={m.get('causal')}",
-            f"texts {s['n_texts']} ({s['n_units']} windows), {s['n_tokens']} ordinary tokens; positions "
-            f"{p['min']}–{p['max']}, {p['tokens_per_position_min']}–{p['tokens_per_position_max']} tokens per "
-            f"position (median {p['tokens_per_position_median']:g}); {s['folds']}-fold split by text",
-            "",
-            f"{'layer':>5}  {'R² pos':>7}  {'R² log':>7}  {'control':>7}  {'select.':>7}  {'MAE':>7}  "
-            f"{'untrained':>9}",
-        ]
-        lines.append("-" * len(lines[-1]))
-
-        def f(x, w=7, nd=3):
-            return ("—" if x is None or not np.isfinite(x) else f"{x:.{nd}f}").rjust(w)
-
-        for r in self.layers:
-            lines.append(f"{r['layer']:>5}  {f(r['r2'])}  {f(r['r2_log'])}  {f(r['control_r2'])}  "
-                         f"{f(r['selectivity'])}  {f(r['mae'], 7, 1)}  {f(r.get('untrained_r2'), 9)}")
-        lines.append("layer 0 = embeddings output; R² is held out by text; control = positions shuffled within "
-                     "each text; untrained = same architecture, fresh random weights")
-        if self.counting:
-            lines.append("")
-            lines.append("counting check: " + self.counting["summary"])
-        if self.bands:
-            from .bands import summary_lines
-
-            lines.append("")
-            lines.extend(summary_lines(self.bands))
-        for n in self.notes:
-            lines.append("notice: " + n)
-        lines.append("note: " + self.caution)
-        return "\n".join(lines)
 
 
 # --------------------------------------------------------------------------------------------------- the fit
@@ -278,9 +191,9 @@ def untrained_copy(subject, seed: int = 0):
                                f"({type(exc).__name__}: {exc}). Pass untrained=False to skip that baseline.") from exc
     fresh.to(torch.float32).eval()
     if "sinusoidal" in subject.schemes:
-        from .subject import _position_table
+        from .core.schemes import position_table
 
-        src, dst = _position_table(model), _position_table(fresh)
+        src, dst = position_table(model), position_table(fresh)
         if src is not None and dst is not None and src.shape == dst.shape:
             with torch.no_grad():
                 dst.copy_(src)
@@ -460,32 +373,3 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
         band_info = rope_bands(subject, units=units[: max(2, min(len(units), 8))])
     return ProbeResult(model=subject.describe(), layers=layers, positions=positions, settings=settings,
                        counting=count_info, bands=band_info, notes=notes)
-
-
-# --------------------------------------------------------------------------------------------------- CLI
-
-def add_arguments(p) -> None:
-    from .cli import add_model_arguments, add_text_arguments
-
-    add_model_arguments(p)
-    add_text_arguments(p)
-    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the probe results as JSON")
-    p.add_argument("--alpha", type=float, action="append", default=None, metavar="A",
-                   help="ridge penalty (repeat for a grid chosen on the training texts; default 1e-2 … 1e5)")
-    p.add_argument("--folds", type=int, default=FOLDS, help=f"folds over texts (default {FOLDS})")
-    p.add_argument("--seed", type=int, default=0, help="seed of the control shuffle and the untrained copy")
-    p.add_argument("--no-untrained", action="store_true", help="skip the untrained-copy baseline")
-    p.add_argument("--no-bands", action="store_true", help="skip the RoPE frequency bands")
-
-
-def run(args) -> int:
-    from .cli import load_subject, read_texts
-
-    subject = load_subject(args)
-    res = probe(subject, read_texts(args), alpha=args.alpha, seed=args.seed, folds=args.folds,
-                untrained=not args.no_untrained, bands=not args.no_bands, max_tokens=args.max_tokens)
-    print(res.table(), file=sys.stdout)
-    if args.json:
-        res.save(args.json)
-        print(f"wrote {args.json}")
-    return 0

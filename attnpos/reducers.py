@@ -19,7 +19,7 @@ import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer
-from .thresholds import ANCHOR_MIN_DISTANCE
+from .core.thresholds import ANCHOR_MIN_DISTANCE
 from .texts import TextUnit
 
 EXACT = 16          # distances / slots below this are their own bucket

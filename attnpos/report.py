@@ -17,9 +17,11 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
-from .views import _data, static
-from .keys import head_key
-from .views._common import esc, esc_plain, fmt
+from .views import data as _data, static
+from .core.keys import head_key
+from .errors import AttnposError
+from .files import write_atomic
+from .views.common import esc, esc_plain, fmt
 
 REPORT_CSS = """
 body{margin:0;background:#F3F1EC;color:#1B1F24;font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif}
@@ -106,7 +108,7 @@ def report_html(scan, findings=None, title: str | None = None, per_role: int = 2
             if r["target"].count(".H") == 1 and r["target"] not in keys and len(keys) < max_cards + 6:
                 _data.head_index(scan, r["target"])
                 keys.append(r["target"])
-        except (KeyError, ValueError):
+        except (KeyError, ValueError, AttnposError):
             pass
     cards = "".join(static.card_html(scan, k, findings=rows, with_style=False, anchor=True) for k in keys)
     versions = [(k, v) for k, v in (scan.versions or {}).items()]
@@ -157,12 +159,7 @@ def write_report(scan, path: str | os.PathLike, findings=None, title: str | None
         findings: a findings store, the path of its JSON file, or None for no findings section content.
         title: the page title (default ``attnpos report — <model name>``).
     """
-    path = Path(path)
-    html = report_html(scan, findings=findings, title=title)
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(html, encoding="utf-8")
-    os.replace(tmp, path)
-    return path
+    return write_atomic(Path(path), report_html(scan, findings=findings, title=title))
 
 
 __all__ = ["write_report", "report_html"]

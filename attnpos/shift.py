@@ -7,15 +7,22 @@
 A head that attends by relative offset or by content keeps the same weights (``relative``); a head tied to
 absolute slots changes (``absolute``). Per head, ``change`` is the mean over the text's ordinary queries of the
 total-variation distance ½·Σ_j |w'_ij − w_ij| between a query's weights before and after. Thresholds live in
-:mod:`attnpos.thresholds`.
+:mod:`attnpos.core.thresholds`.
 
 RoPE makes q·k depend only on the offset between positions (Su et al., RoFormer), so a RoPE model's scores do not
 change at all under the position-id shift — a check in the tests.
 
 Example::
 
-    >>> res = ShiftTest().run(subject, units)          # doctest: +SKIP
-    >>> res[("main", 0)]["change"]                      # (heads,) array       # doctest: +SKIP
+    >>> import attnpos
+    >>> from attnpos.texts import as_raw, prepare
+    >>> subject = attnpos.load("ref:rope")
+    >>> units = prepare(subject, as_raw(["The ferry left at nine and came back at noon, as it does every day."]))
+    >>> res = ShiftTest().run(subject, units)
+    >>> res.shift_kind, res.offset, res.change[("main", 0)].shape
+    ('position-ids', 32, (4,))
+    >>> float(res.change[("main", 0)].max()) < 1e-3       # RoPE: q·k depends on the offset only (Su et al.)
+    True
 """
 
 from __future__ import annotations
@@ -25,8 +32,9 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from . import thresholds as th
+from .core import thresholds as th
 from .capture import LayerCapture, Reducer, record
+from .results.shift import ShiftResult
 from .texts import TextUnit
 
 
@@ -97,7 +105,7 @@ class ShiftTest:
     """Run the shift test on (the first tokens of) a few text units.
 
     Args:
-        offset: how far to shift (default :data:`attnpos.thresholds.SHIFT_OFFSET`).
+        offset: how far to shift (default :data:`attnpos.core.thresholds.SHIFT_OFFSET`).
         max_texts / max_tokens: how much text to use (the test keeps one set of maps in memory).
         kind: ``"position-ids"`` or ``"prefix"``; by default position ids where the scheme has them.
     """
@@ -109,15 +117,15 @@ class ShiftTest:
         self.max_tokens = max_tokens or th.SHIFT_MAX_TOKENS
         self.kind = kind
 
-    def run(self, subject, units: Sequence[TextUnit]) -> dict:
+    def run(self, subject, units: Sequence[TextUnit]) -> ShiftResult:
         kind = self.kind or ("position-ids" if subject.uses_position_ids else "prefix")
         k = self.offset
         room = self.max_tokens
         if subject.context_limit:
             room = min(room, subject.context_limit - k)
         if room < 4:
-            return {"kind": kind, "offset": k, "change": None,
-                    "note": f"the context limit leaves no room to shift by {k}"}
+            return ShiftResult(shift_kind=kind, offset=k, change=None,
+                               note=f"the context limit leaves no room to shift by {k}")
         short = [TextUnit(name=u.name, source=u.source, ids=u.ids[:room], tokens=u.tokens[:room],
                           special=u.special[:room], window=u.window) for u in list(units)[: self.max_texts]]
         base = record(subject, units=short, reducers=[_Keep()], progress=False).results["shift-base"]
@@ -128,5 +136,6 @@ class ShiftTest:
             record(subject, units=short, reducers=[cmp_], prefix=_neutral_prefix(subject.tokenizer, k),
                    progress=False)
         change = cmp_.result()
-        return {"kind": kind, "offset": k, "change": change,
-                "verdict": {key: [verdict(c) for c in v] for key, v in change.items()}}
+        return ShiftResult(shift_kind=kind, offset=k, change=change,
+                           verdict={key: [verdict(c) for c in v] for key, v in change.items()},
+                           n_texts=len(short), max_tokens=room)

@@ -28,22 +28,31 @@ the row-centred scores. Nothing the size of the pairs is ever held.
 
 Example::
 
-    >>> rec = attnpos.record(subject, texts, [SplitStats()])          # doctest: +SKIP
-    >>> fit = Split(n_boot=100).fit(rec)                              # doctest: +SKIP
-    >>> fit.shares[0, 2]          # site 0, head 2: {"distance": …, "slot": …, "content": …, "residual": …}  # doctest: +SKIP
+    >>> import attnpos
+    >>> from attnpos.reducers import SplitStats
+    >>> subject = attnpos.load("ref:rope")
+    >>> rec = attnpos.record(subject, ["The ferry left at nine and came back at noon.",
+    ...                                "Rye loaves come out of the oven first, then the buns."], [SplitStats()])
+    >>> fit = Split(n_boot=20).fit(rec)
+    >>> fit.shares.shape              # (layers, heads, parts): distance, slot, content, residual
+    (4, 4, 4)
+    >>> bool(np.allclose(fit.shares.sum(-1), 1.0))
+    True
+    >>> fit.table().loc[1, ["key", "share_distance", "slope"]].shape
+    (3,)
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from itertools import combinations
 
 import numpy as np
 
+from .core import columns
 from .reducers import Design, blas_one_thread
+from .results.split import SplitResult
 
-PARTS = ("distance", "slot", "content", "residual")
-_GROUPS = ("distance", "slot", "content")
+PARTS = columns.PART_NAMES
 _SUBSETS = [frozenset(c) for r in (1, 2, 3) for c in combinations(range(3), r)]
 
 
@@ -73,27 +82,6 @@ def _pinv_solve(G: np.ndarray, B: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
     cut = rtol * max(float(w.max()), 1e-300)
     inv = np.where(w > cut, 1.0 / np.where(w > cut, w, 1.0), 0.0)
     return V @ (inv[:, None] * (V.T @ B))
-
-
-@dataclass
-class SplitFit:
-    """Arrays over (site, head): ``shares`` (S, H, 4) in PARTS order, ``profile`` (S, H, nb), ``slope`` (S, H),
-    with ``*_lo`` / ``*_hi`` bootstrap bounds (NaN with fewer than two texts). ``distance`` holds the
-    representative δ of each profile bucket; ``keys`` the (stack, layer) of each site."""
-
-    keys: list
-    distance: np.ndarray
-    shares: np.ndarray
-    shares_lo: np.ndarray
-    shares_hi: np.ndarray
-    profile: np.ndarray
-    profile_lo: np.ndarray
-    profile_hi: np.ndarray
-    slope: np.ndarray
-    slope_lo: np.ndarray
-    slope_hi: np.ndarray
-    n_texts: int
-    n_boot: int
 
 
 class Split:
@@ -203,12 +191,12 @@ class Split:
                 shares[si], prof[si], slope[si] = sh[part], pr[part], sl[part]
         return shares, prof, slope
 
-    def fit(self, recording) -> SplitFit:
+    def fit(self, recording) -> SplitResult:
         res = recording.results["split"] if hasattr(recording, "results") else recording
         with blas_one_thread():
             return self._fit(res)
 
-    def _fit(self, res: dict) -> SplitFit:
+    def _fit(self, res: dict) -> SplitResult:
         n = res["b"].shape[0]
         shares, prof, slope = self._fit_weights(res, np.ones(n))
         lo = lambda a: np.full_like(a, np.nan)  # noqa: E731
@@ -231,5 +219,5 @@ class Split:
                 arr = np.stack(stack)
                 out[f"{k}_lo"], out[f"{k}_hi"] = _nan_percentiles(arr, (5, 95))
         design: Design = res["design"]
-        return SplitFit(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
+        return SplitResult(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
                         n_texts=n, n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

@@ -17,15 +17,14 @@ import hashlib
 import json
 import os
 from dataclasses import dataclass, field
-from pathlib import Path
+
 from typing import Any
 
-import numpy as np
 import torch
 
+from .core import schemes
 from .errors import AttnposError
-
-SCHEMES = ("learned-absolute", "sinusoidal", "relative-bias", "alibi", "rope", "none")
+from .locate import locate
 
 ENCODER_TYPES = {"bert", "roberta", "distilbert", "electra", "xlm-roberta", "camembert", "mpnet", "deberta",
                  "albert", "ernie", "modernbert"}
@@ -61,6 +60,7 @@ class Subject:
     n_heads: int
     is_encoder_decoder: bool = False
     notes: list[str] = field(default_factory=list)
+    capture_path: str | None = None     # "registry" or "eager-weights", once a recording has found out which works
 
     @property
     def schemes(self) -> list[str]:
@@ -103,44 +103,6 @@ class Subject:
 
 # ---------------------------------------------------------------------------------------------------- loading
 
-def _resolve(path_or_name: str | os.PathLike) -> tuple[Path, str]:
-    text = str(path_or_name)
-    if text.startswith("ref:"):
-        from . import reference  # the shipped reference models
-
-        return Path(reference.weights_dir(text[4:])), text
-    p = Path(text).expanduser()
-    if not p.exists():
-        raise AttnposError(f"No model folder at {p}. attnpos loads local checkpoints only (nothing is downloaded): "
-                           "give the folder that holds config.json and the weights, or a reference model such as "
-                           "'ref:rope' (choices: " + ", ".join("ref:" + s for s in SCHEMES) + ").")
-    if p.is_file():
-        p = p.parent
-    if not (p / "config.json").exists():
-        raise AttnposError(f"The folder {p} has no config.json, so it is not a transformers checkpoint. Point "
-                           "attnpos at the folder that `save_pretrained` wrote (config.json + *.safetensors).")
-    generic = {"model", "models", "checkpoint", "weights", "final", "hf"}
-    name = f"{p.parent.name}/{p.name}" if p.name.lower() in generic or p.name.startswith("checkpoint-") else p.name
-    return p, name
-
-
-def _check_weights(p: Path, allow_pickle: bool) -> bool:
-    """Return use_safetensors; refuse pickle-only folders unless allowed."""
-    safe = list(p.glob("*.safetensors"))
-    pickled = [f for f in p.iterdir() if f.suffix in (".bin", ".pt", ".pth", ".ckpt")]
-    if safe:
-        return True
-    if pickled and not allow_pickle:
-        raise AttnposError(f"The folder {p} holds only pickle weights ({', '.join(f.name for f in pickled[:3])}). "
-                           "Pickle files can run code when loaded, so attnpos refuses them by default. Convert the "
-                           "checkpoint to safetensors, or pass allow_pickle=True (CLI: --allow-pickle) if you trust "
-                           "the file; it is then loaded with torch's weights_only restriction.")
-    if not pickled:
-        raise AttnposError(f"The folder {p} has a config.json but no weights (*.safetensors). Save the model "
-                           "with `model.save_pretrained(folder)`.")
-    return False
-
-
 def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = None, allow_pickle: bool = False,
          trust_remote_code: bool = False, training_length: int | None = None) -> Subject:
     """Load a local checkpoint (or ``"ref:<scheme>"``) as a :class:`Subject`.
@@ -154,24 +116,14 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         trust_remote_code: run modelling code shipped inside the folder. Off by default; only for folders you trust.
         training_length: the context length the model was trained on, if its config does not record it.
     """
-    p, name = _resolve(path_or_name)
+    loc = locate(path_or_name, allow_pickle=allow_pickle, trust_remote_code=trust_remote_code)
+    p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
     from transformers import AutoConfig, AutoTokenizer
 
-    try:
-        cfg_raw = json.loads((p / "config.json").read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise AttnposError(f"{p}/config.json cannot be read as JSON ({exc}); the file is damaged or is not a "
-                           "transformers config. Re-save the checkpoint with `model.save_pretrained(folder)`.") from None
-    if not isinstance(cfg_raw, dict):
-        raise AttnposError(f"{p}/config.json holds a JSON {type(cfg_raw).__name__}, not the object a transformers "
-                           "config is. Re-save the checkpoint with `model.save_pretrained(folder)`.")
-    if (cfg_raw.get("auto_map") or any(f.suffix == ".py" for f in p.iterdir())) and not trust_remote_code:
-        raise AttnposError(f"The folder {p} ships its own modelling code (auto_map / *.py). attnpos never runs code "
-                           "from a model folder unless you ask: pass trust_remote_code=True (CLI: "
-                           "--trust-remote-code) only if you trust its author.")
-    use_safetensors = _check_weights(p, allow_pickle)
-    if str(path_or_name).startswith("ref:"):
-        from . import reference  # noqa: F401  (registers the reference architectures)
+    if loc.reference or str(cfg_raw.get("model_type", "")).startswith("attnpos-"):
+        from .reference import register_architectures  # the reference models' own architecture
+
+        register_architectures()
     try:
         config = AutoConfig.from_pretrained(p, trust_remote_code=trust_remote_code)
     except (ValueError, KeyError) as exc:
@@ -206,9 +158,7 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     except Exception as exc:  # noqa: BLE001
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
-    subj = from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length,
-                      _fingerprint_files=None)
-    return subj
+    return from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
 
 
 def _one_line(exc: BaseException, limit: int = 400) -> str:
@@ -233,7 +183,7 @@ def _model_class(config):
 
 
 def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "", scheme: str | list[str] | None = None,
-               training_length: int | None = None, _fingerprint_files=None) -> Subject:
+               training_length: int | None = None) -> Subject:
     """Wrap a model already in memory (e.g. built from a config in a test) as a :class:`Subject`."""
     model.eval()
     config = model.config
@@ -251,12 +201,11 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
     if not sites:
         raise AttnposError(f"Found no self-attention modules in {type(model).__name__}. attnpos looks for "
                            "modules whose class name ends in 'Attention'.")
-    detected = _detect_schemes(model, sites)
     if scheme is not None:
         wanted = [scheme] * len(sites) if isinstance(scheme, str) else list(scheme)
         for w in wanted:
-            if w not in SCHEMES:
-                raise AttnposError(f"Unknown scheme {w!r}; choose from {', '.join(SCHEMES)}.")
+            if schemes.get(w) is None:
+                raise AttnposError(f"Unknown scheme {w!r}; choose from {', '.join(schemes.names())}.")
         if len(wanted) != len(sites):
             n_first = sum(1 for s in sites if s.stack == sites[0].stack)
             if len(wanted) == n_first:
@@ -265,12 +214,19 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
                 raise AttnposError(f"--scheme lists {len(wanted)} names but the model has {len(sites)} "
                                    "attention layers; give one name, or one per layer.")
         detected = wanted
+    else:
+        try:
+            detected = _detect_schemes(model, sites)
+        except schemes.Undetectable as exc:
+            detected, clue = [None] * len(sites), str(exc)
+        else:
+            clue = None
     if any(d is None for d in detected):
-        found = _scheme_clues(model)
+        found = _scheme_clues(model) + (f", {clue}" if scheme is None and clue else "")
         raise AttnposError(
             f"Could not tell how {type(model).__name__} (model_type={getattr(config, 'model_type', '?')}) encodes "
             f"position. Found: {found}. State it by hand: attnpos.load(path, scheme='rope') or "
-            f"`--scheme rope` (one of {', '.join(SCHEMES)}; a comma-separated list gives one per layer).")
+            f"`--scheme rope` (one of {', '.join(schemes.names())}; a comma-separated list gives one per layer).")
     for site, sch in zip(sites, detected):
         site.scheme = sch
     causal_main = all(s.causal for s in sites if s.stack != "encoder")
@@ -349,93 +305,20 @@ def _is_causal_module(model, module, stack) -> bool:
 
 # ---------------------------------------------------------------------------------------------------- schemes
 
-def sinusoidal_table(n_positions: int, dim: int) -> np.ndarray:
-    """The fixed table of Vaswani et al. 2017, §3.5: PE[pos, 2i] = sin(pos / 10000^(2i/d)), PE[pos, 2i+1] = cos(...)."""
-    pos = np.arange(n_positions, dtype=np.float64)[:, None]
-    i = np.arange(0, dim, 2, dtype=np.float64)[None, :]
-    angle = pos / np.power(10000.0, i / dim)
-    out = np.zeros((n_positions, dim))
-    out[:, 0::2] = np.sin(angle)
-    out[:, 1::2] = np.cos(angle[:, : dim // 2])
-    return out
-
-
-def _is_sinusoidal(table: torch.Tensor) -> bool:
-    w = table.detach().float().cpu().numpy()
-    n, d = w.shape
-    if d % 2:
-        return False
-    ref = sinusoidal_table(n, d)
-    if np.allclose(w, ref, atol=1e-4):
-        return True
-    # the other common layout: all sines, then all cosines (common practice in some code bases)
-    half = np.concatenate([ref[:, 0::2], ref[:, 1::2]], axis=1)
-    return bool(np.allclose(w, half, atol=1e-4))
-
-
-def _position_table(model):
-    for n, m in model.named_modules():
-        if isinstance(m, torch.nn.Embedding) and n.split(".")[-1] in ("wpe", "position_embeddings", "embed_positions"):
-            return m.weight
-    return None
-
-
 def _detect_schemes(model, sites) -> list[str | None]:
-    config = model.config
-    mt = getattr(config, "model_type", "")
-    declared = getattr(config, "attnpos_scheme", None)
-    n = len(sites)
-    if declared in SCHEMES:
-        return [declared] * n
-    if mt == "smollm3":
-        flags = list(getattr(config, "no_rope_layers", None) or [1] * n)
-        return ["rope" if flags[s.layer] else "none" for s in sites]
-    if (mt == "bloom" or getattr(config, "alibi", False) or getattr(config, "position_embedding_type", "") == "alibi"
-            or _attn_config_alibi(config)):
-        return ["alibi"] * n
-    if mt in ("t5", "mt5", "umt5", "longt5") or hasattr(config, "relative_attention_num_buckets"):
-        return ["relative-bias"] * n
-    # a learned relative-position embedding inside attention (older BERT-style "relative_key" variants; DeBERTa's
-    # disentangled attention, with or without an absolute table beside it) is none of our schemes: say so rather
-    # than report only the table
-    if _relative_embedding(model):
-        return [None] * n
-    table = _position_table(model)
-    if table is not None:
-        return ["sinusoidal" if _is_sinusoidal(table) else "learned-absolute"] * n
-    has_rotary = any("rotary" in nm.lower() for nm, _ in model.named_modules())
-    if has_rotary or getattr(config, "rope_parameters", None) or getattr(config, "rope_theta", None):
-        if mt == "gpt_neox" and float(getattr(config, "rotary_pct", 1.0) or 0) == 0.0:
-            return ["none"] * n
-        return ["rope"] * n
-    return [None] * n
-
-
-def _relative_embedding(model) -> str | None:
-    """The name of a learned relative-position embedding module used inside attention, if there is one."""
-    for nm, _ in model.named_modules():
-        if nm.split(".")[-1] in ("distance_embedding", "rel_embeddings"):
-            return nm
-    return None
-
-
-def _attn_config_alibi(config) -> bool:
-    """MPT keeps its ALiBi flag in a nested attention config (an object, or a dict in older files)."""
-    ac = getattr(config, "attn_config", None)
-    flag = ac.get("alibi") if isinstance(ac, dict) else getattr(ac, "alibi", None)
-    return flag is True
+    """The scheme of each attention site, by the detectors of :mod:`attnpos.core.schemes`. Sites are numbered per
+    stack; detectors see the layers of one stack (every stack of a model shares its scheme)."""
+    n_first = sum(1 for s in sites if s.stack == sites[0].stack)
+    per_layer = schemes.detect(model, n_first)
+    return [per_layer[s.layer] if s.layer < n_first else per_layer[-1] for s in sites]
 
 
 def _scheme_clues(model) -> str:
     config = model.config
     clues = [f"model_type={getattr(config, 'model_type', '?')}"]
-    t = _position_table(model)
+    t = schemes.position_table(model)
     clues.append("a position table" if t is not None else "no position table")
     clues.append("rotary modules" if any("rotary" in n.lower() for n, _ in model.named_modules()) else "no rotary modules")
-    rel = _relative_embedding(model)
-    if rel:
-        clues.append(f"a learned relative-position embedding inside attention ({rel}), which is none of attnpos's "
-                     "schemes (the nearest is relative-bias)")
     pet = getattr(config, "position_embedding_type", None)
     if pet:
         clues.append(f"position_embedding_type={pet}")
@@ -451,7 +334,7 @@ def _uses_position_ids(model, sites) -> bool:
         return False
     if "position_ids" not in params:
         return False
-    return any(s.scheme in ("learned-absolute", "sinusoidal", "rope") for s in sites)
+    return schemes.uses_position_ids([s.scheme for s in sites])
 
 
 # ---------------------------------------------------------------------------------------------------- fingerprint

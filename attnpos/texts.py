@@ -151,7 +151,8 @@ def as_raw(texts) -> list[RawText]:
                        "folders), or None for the bundled samples.")
 
 
-def _display(tokenizer, ids: Sequence[int]) -> list[str]:
+def display_tokens(tokenizer, ids: Sequence[int]) -> list[str]:
+    """The display string of each token id (what the views and tables show; user text: escape it)."""
     out = []
     for i in ids:
         try:
@@ -170,7 +171,7 @@ def _encode(tokenizer, text: str) -> list[int]:
         return list(tokenizer(text, add_special_tokens=False)["input_ids"])
 
 
-def _template(tokenizer) -> tuple[list[int], list[int]]:
+def template(tokenizer) -> tuple[list[int], list[int]]:
     """The special tokens the tokenizer puts before and after a text (e.g. [CLS] … [SEP], or BOS …)."""
     probe = "x y"
     plain = tokenizer(probe, add_special_tokens=False)["input_ids"]
@@ -192,7 +193,7 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
                            "model's context limit.")
     if max_tokens is not None:
         limit = min(limit, max_tokens) if limit else max_tokens
-    prefix, suffix = _template(tok)
+    prefix, suffix = template(tok)
     special_ids = set(getattr(tok, "all_special_ids", []) or [])
     # the unknown token stands for a piece of the user's text (an emoji, a rare script), so it is an ordinary
     # token, unless the tokenizer also uses that id as a structural token (GPT-2 style: unk = bos = eos)
@@ -221,7 +222,7 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
                 special[len(ids) - len(suffix):] = True
             special |= np.isin(np.asarray(ids), list(special_ids)) if special_ids else False
             name = r.name if len(starts) == 1 else f"{r.name}#{k + 1}"
-            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=_display(tok, ids),
+            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=display_tokens(tok, ids),
                                   special=special, window=(a, a + len(chunk)) if len(starts) > 1 else None))
     if split and warn:
         warnings.warn(f"{len(split)} text(s) longer than the limit of {limit} tokens were split into windows, each "

@@ -10,7 +10,7 @@ import torch
 
 import attnpos
 from attnpos.ablation import _final_hidden, ablate, output_projection
-from attnpos.capture import _forward, _token_loss
+from attnpos.capture import forward, next_token_loss
 from attnpos.cli import main as cli_main
 from attnpos.texts import as_raw, prepare
 
@@ -42,9 +42,9 @@ def _loss_and_change(clean, ablated, units):
     d_loss, change, n = [], [], []
     for u in units:
         with torch.no_grad():
-            a = _forward(clean, list(u.ids), offset=0, want_weights=False, hidden=True)
-            b = _forward(ablated, list(u.ids), offset=0, want_weights=False, hidden=True)
-        la, lb = _token_loss(a, list(u.ids)), _token_loss(b, list(u.ids))
+            a = forward(clean, list(u.ids), offset=0, want_weights=False, hidden=True)
+            b = forward(ablated, list(u.ids), offset=0, want_weights=False, hidden=True)
+        la, lb = next_token_loss(a, list(u.ids)), next_token_loss(b, list(u.ids))
         if la is not None:
             d_loss.append(float(lb.mean() - la.mean()))
             n.append(len(la))
@@ -60,11 +60,11 @@ def _loss_and_change(clean, ablated, units):
                                       ("t5", "decoder:L1.H2"), ("t5", "encoder:L0.H1")])
 def test_zero_ablation_equals_zeroing_the_rows_of_wo(arch, key):
     s = tiny.subject(arch)
-    stack, layer, head = attnpos.keys.parse_key(key)
+    stack, layer, head = attnpos.core.keys.parse_key(key)
     if arch != "t5":
         stack = s.sites[0].stack
-    table = ablate(s, [key if arch == "t5" else f"L{layer}.H{head}"], TEXTS, how="zero", n_boot=0)
-    row = table.iloc[0]
+    result = ablate(s, [key if arch == "t5" else f"L{layer}.H{head}"], TEXTS, how="zero", n_boot=0)
+    row = result.table().iloc[0]
     units = prepare(s, as_raw(TEXTS))
     ref_loss, ref_change = _loss_and_change(s, _zero_rows_of_wo(s, stack, layer, head), units)
     assert row["output_change"] == pytest.approx(ref_change, rel=1e-4, abs=1e-6)
@@ -72,14 +72,14 @@ def test_zero_ablation_equals_zeroing_the_rows_of_wo(arch, key):
     if np.isfinite(ref_loss):
         assert row["delta_loss"] == pytest.approx(ref_loss, rel=1e-3, abs=1e-6)
     else:
-        assert np.isnan(row["delta_loss"]) and "no language-model head" in " ".join(table.attrs["notes"])
+        assert np.isnan(row["delta_loss"]) and "no language-model head" in " ".join(result.notes)
 
 
 @pytest.mark.parametrize("arch", ["gpt2", "llama"])
 def test_heads_together_equal_zeroing_all_their_rows_of_wo(arch):
     s = tiny.subject(arch)
     keys = ["L0.H1", "L0.H3", "L1.H0"]
-    row = ablate(s, keys, TEXTS, how="zero", together=True, n_boot=0).iloc[0]
+    row = ablate(s, keys, TEXTS, how="zero", together=True, n_boot=0).table().iloc[0]
     assert row["key"] == "L0.H1+L0.H3+L1.H0" and row["heads"] == 3
     units = prepare(s, as_raw(TEXTS))
     ref_loss, ref_change = _loss_and_change(s, _zero_rows_of_wo(s, "main", 0, 1, ("main", 0, 3), ("main", 1, 0)),
@@ -87,8 +87,8 @@ def test_heads_together_equal_zeroing_all_their_rows_of_wo(arch):
     assert row["output_change"] == pytest.approx(ref_change, rel=1e-4)
     assert row["delta_loss"] == pytest.approx(ref_loss, rel=1e-3, abs=1e-6)
     # one head "together" is that head alone
-    alone = ablate(s, ["L1.H0"], TEXTS, n_boot=0).iloc[0]
-    one = ablate(s, ["L1.H0"], TEXTS, together=True, n_boot=0).iloc[0]
+    alone = ablate(s, ["L1.H0"], TEXTS, n_boot=0).table().iloc[0]
+    one = ablate(s, ["L1.H0"], TEXTS, together=True, n_boot=0).table().iloc[0]
     assert one["delta_loss"] == pytest.approx(alone["delta_loss"], abs=1e-9)
 
 
@@ -102,8 +102,8 @@ def test_mean_ablation_of_a_head_with_constant_output_changes_nothing():
     with torch.no_grad():
         att.c_attn.weight[:, 2 * E + h * d:2 * E + (h + 1) * d] = 0
         att.c_attn.bias[2 * E + h * d:2 * E + (h + 1) * d] = torch.linspace(-1, 1, d)
-    mean = ablate(s, ["L0.H2"], TEXTS, how="mean", n_boot=0).iloc[0]
-    zero = ablate(s, ["L0.H2"], TEXTS, how="zero", n_boot=0).iloc[0]
+    mean = ablate(s, ["L0.H2"], TEXTS, how="mean", n_boot=0).table().iloc[0]
+    zero = ablate(s, ["L0.H2"], TEXTS, how="zero", n_boot=0).table().iloc[0]
     assert mean["output_change"] < 1e-5 and abs(mean["delta_loss"]) < 1e-5
     assert zero["output_change"] > 1e-3
 
@@ -111,7 +111,7 @@ def test_mean_ablation_of_a_head_with_constant_output_changes_nothing():
 def test_real_minilm_has_no_loss_but_every_head_moves_the_output(minilm):
     # the real pretrained encoder (no language-model head loaded): output change only, and it agrees with zeroing
     # the rows of W^O (BERT keeps W^O in the sibling output block)
-    table = ablate(minilm, "L0", TEXTS, how="zero", n_boot=0)
+    table = ablate(minilm, "L0", TEXTS, how="zero", n_boot=0).table()
     assert set(table["key"]) == {f"L0.H{h}" for h in range(minilm.n_heads)}
     assert table["delta_loss"].isna().all()
     assert (table["output_change"] > 0).all()
@@ -126,7 +126,7 @@ def test_previous_token_head_of_ref_rope_is_needed(capsys):
     # (attnpos scan) and mean-ablating it costs far more loss than any other head of layer 0
     s = tiny.reference("rope")
     texts = [p.read_text(encoding="utf-8")[:1500] for p in sorted(attnpos.texts.SAMPLE_DIR.glob("*.txt"))[:3]]
-    table = ablate(s, "L0", texts, n_boot=200)
+    table = ablate(s, "L0", texts, n_boot=200).table()
     with capsys.disabled():
         print("\nref:rope layer 0 mean ablation: " + ", ".join(
             f"{r.key} {r.delta_loss:+.3f} [{r.delta_loss_lo:+.3f}, {r.delta_loss_hi:+.3f}]" for r in table.itertuples()))

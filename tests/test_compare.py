@@ -8,7 +8,7 @@ import torch
 
 import attnpos
 from attnpos.cli import main as cli_main
-from attnpos.compare import compare, compare_scans, to_json
+from attnpos.compare import compare, compare_scans
 
 import tiny
 
@@ -28,19 +28,20 @@ _reference = tiny.reference
 def test_model_against_itself_changes_nothing():
     s = tiny.subject("llama", layers=2)
     sa, sb = attnpos.scan(s, TEXTS, **FAST), attnpos.scan(s, TEXTS, **FAST)     # two separate scans
-    table = compare_scans(sa, sb, all_heads=True)
+    result = compare_scans(sa, sb, all_heads=True)
+    table = result.table()
     assert len(table) == 2 * 4
     assert not table["changed"].any()
-    assert table.attrs["summary"]["judged_with_intervals"] == len(table)
-    assert any("same fingerprint" in n for n in table.attrs["notes"])
-    assert len(compare_scans(sa, sb)) == 0
+    assert result.summary["judged_with_intervals"] == len(table)
+    assert any("same fingerprint" in n for n in result.notes)
+    assert len(compare_scans(sa, sb).table()) == 0
 
 
 def test_planted_change_is_found():
     # the same architecture with different weights (another random seed, sharper attention): heads differ
     a = tiny.subject("llama", layers=2, seed=0)
     b = attnpos.from_model(tiny.build("llama", layers=2, seed=5), tiny.tokenizer(), name="other seed")
-    table = compare(a, b, TEXTS, all_heads=True, **FAST)
+    table = compare(a, b, TEXTS, all_heads=True, **FAST).table()
     assert table["changed"].sum() >= 1
     for _, r in table[table["changed"]].iterrows():
         assert r["role_changed"] or r["changed_shares"] or r["slope_changed"]
@@ -57,7 +58,7 @@ def test_a_head_made_uniform_is_the_one_change_in_its_layer():
     with torch.no_grad():
         model.model.layers[0].self_attn.q_proj.weight[1 * d:2 * d] = 0
     b = attnpos.from_model(model, a.tokenizer, name="ref:rope with L0.H1 made uniform")
-    table = compare(a, b, TEXTS, all_heads=True, **FAST).set_index(["layer", "head"])
+    table = compare(a, b, TEXTS, all_heads=True, **FAST).table().set_index(["layer", "head"])
     assert table.loc[(0, 1), "role_a"] == "previous-token"
     assert table.loc[(0, 1), "changed"] and table.loc[(0, 1), "role_b"] == "counting"
     assert not table.loc[[(0, 0), (0, 2), (0, 3)], "changed"].any()
@@ -102,5 +103,5 @@ def test_compare_saved_scans_from_the_command_line(tmp_path, capsys):
     # without intervals only roles can be compared, and the result says so
     one = attnpos.scan(s, TEXTS[:1], **FAST)
     t = compare_scans(one, one)
-    assert any("only roles" in n for n in t.attrs["notes"])
-    assert to_json(t)["summary"]["judged_with_intervals"] == 0
+    assert any("only roles" in n for n in t.notes)
+    assert t.to_json()["summary"]["judged_with_intervals"] == 0

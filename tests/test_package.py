@@ -16,9 +16,9 @@ def _run(code: str) -> None:
 
 def test_reading_results_does_not_start_torch():
     # a notebook that opens a saved scan, its findings, views or report needs no model and no torch
-    _run("import sys, attnpos, attnpos.result, attnpos.findings, attnpos.views, attnpos.report, attnpos.compare\n"
+    _run("import sys, attnpos, attnpos.results.scan, attnpos.findings, attnpos.views, attnpos.report, attnpos.compare\n"
          "assert 'torch' not in sys.modules, 'torch was imported'\n"
-         "assert attnpos.Scan is attnpos.result.Scan")
+         "assert attnpos.Scan is attnpos.results.scan.Scan")
 
 
 def test_public_names_resolve_whatever_was_imported_first():
@@ -40,7 +40,7 @@ def test_unknown_name_is_an_attribute_error():
 
 
 def test_cli_help_and_comparing_saved_scans_do_not_start_torch(tmp_path):
-    from attnpos.views._synthetic import synthetic_scan
+    from attnpos.views.synthetic import synthetic_scan
 
     a, b = tmp_path / "a.json", tmp_path / "b.json"
     synthetic_scan(seed=0).save(a)

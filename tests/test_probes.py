@@ -12,7 +12,8 @@ import torch
 
 import attnpos
 from attnpos.cli import main as cli_main
-from attnpos import probes, texts as texts_mod, thresholds
+from attnpos import probes, texts as texts_mod
+from attnpos.core import thresholds
 from attnpos.bands import rope_bands
 
 import tiny
@@ -187,16 +188,16 @@ def test_band_shares_sum_to_one_and_frequencies_follow_su():
     s = tiny.subject("llama", layers=2, heads=4, hidden=64)
     out = rope_bands(s, TEXTS)
     d = 16
-    assert out["layout"] == "half" and out["rotary_dims"] == d
+    assert out.layout == "half" and out.rotary_dims == d
     # Su et al. (RoFormer): pair m rotates by θ_m = base^(-2m/d) per position
-    theta = [p["theta"] for p in out["pairs"]]
+    theta = [p["theta"] for p in out.pairs]
     np.testing.assert_allclose(theta, [10000.0 ** (-2 * m / d) for m in range(d // 2)], rtol=1e-4)
-    assert len(out["heads"]) == 2 * 4
-    for h in out["heads"]:
+    assert len(out.heads) == 2 * 4
+    for h in out.heads:
         assert abs(sum(h["shares"]) - 1.0) < 1e-6
         assert min(h["shares"]) >= 0
         assert h["band"] in ("high", "low", "spread")
-    json.dumps(out)
+    json.dumps(out.to_json())
 
 
 def _energy_reference(s, ids, layer_q, layer_k, H, d, base=10000.0):
@@ -231,7 +232,7 @@ def test_band_shares_equal_independent_recomputation():
         x = m.layers[0].input_layernorm(m.embed_tokens(torch.tensor(ids)))
         att = m.layers[0].self_attn
         ref = _energy_reference(s, ids, att.q_proj(x), att.k_proj(x), 4, 8)
-    got = np.array([h["shares"] for h in out["heads"]])
+    got = np.array([h["shares"] for h in out.heads])
     np.testing.assert_allclose(got, ref, atol=1e-4)
 
 
@@ -250,12 +251,12 @@ def test_single_live_pair_takes_all_energy(pair):
                 w[:, ~keep] = 0.0
     s = attnpos.from_model(model, tiny.tokenizer())
     out = rope_bands(s, TEXTS)
-    for h in out["heads"]:
+    for h in out.heads:
         assert h["shares"][pair] > 0.999
         assert h["dominant_pair"] == pair
-    expected = "high" if out["pairs"][pair]["band"] == "high" else None
+    expected = "high" if out.pairs[pair]["band"] == "high" else None
     if expected:
-        assert all(h["band"] == "high" for h in out["heads"])
+        assert all(h["band"] == "high" for h in out.heads)
 
 
 def test_bands_refuse_models_without_rope():

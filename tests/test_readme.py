@@ -6,7 +6,7 @@ No external check here: the README against the code and thresholds it documents.
 import re
 from pathlib import Path
 
-import attnpos.thresholds as th
+from attnpos.core import roles
 
 README = Path(__file__).resolve().parent.parent / "README.md"
 
@@ -15,9 +15,9 @@ def test_role_table_matches_thresholds():
     text = README.read_text(encoding="utf-8")
     block = text[text.index("<!-- roles:start -->"):text.index("<!-- roles:end -->")]
     rows = dict(re.findall(r"^\| `([a-z-]+)` \| (.+?) \|$", block, flags=re.M))
-    assert list(rows) == list(th.ROLE_ORDER)
-    for role, rule in th.ROLE_RULES.items():
-        assert rows[role] == rule
+    assert list(rows) == list(roles.names())
+    for spec in roles.specs():
+        assert rows[spec.name] == spec.rule
 
 
 def test_install_command_pins_cpu_torch():

@@ -9,9 +9,10 @@ import numpy as np
 import pytest
 
 from attnpos.report import report_html, write_report
-from attnpos.result import CAUTION, Scan
-from attnpos.views._common import ROLE_SHORT
-from attnpos.views._synthetic import synthetic_scan
+from attnpos.core.protocol import CAUTION
+from attnpos.results.scan import Scan
+from attnpos.views.common import role_shorts
+from attnpos.views.synthetic import synthetic_scan
 
 
 class _Doc(HTMLParser):
@@ -64,7 +65,7 @@ def test_report_holds_atlas_cards_facts_and_caution(tmp_path):
     cells = [a for t, a in doc.tags if t == "g" and "apx-cell" in a.get("class", "")]
     assert len(cells) == len(scan.heads)
     for role in set(scan.heads["role"]):
-        assert f">{ROLE_SHORT[role]}</text>" in html and role in html
+        assert f">{role_shorts()[role]}</text>" in html and role in html
     cards = [a["id"] for t, a in doc.tags if a.get("id", "").startswith("card-")]
     roles_present = set(scan.heads["role"])
     assert len(roles_present) <= len(cards) <= 2 * len(roles_present)

@@ -103,14 +103,14 @@ def test_rope_shift_is_relative_and_absolute_model_is_not(minilm):
     s = tiny.subject("llama")
     units = attnpos.texts.prepare(s, attnpos.texts.from_strings(TEXTS[:3]))
     res = attnpos.ShiftTest(offset=40).run(s, units)
-    for key, change in res["change"].items():
+    for key, change in res.change.items():
         assert np.all(change <= 1e-3)
-        assert set(res["verdict"][key]) == {"relative"}
-    assert res["kind"] == "position-ids"
+        assert set(res.verdict[key]) == {"relative"}
+    assert res.shift_kind == "position-ids"
     # the real MiniLM (learned absolute positions) is not shift-invariant: at least one head is `absolute`
     units = attnpos.texts.prepare(minilm, attnpos.texts.from_strings(TEXTS[:3]))
     res = attnpos.ShiftTest(offset=32).run(minilm, units)
-    assert any("absolute" in v for v in res["verdict"].values())
+    assert any("absolute" in v for v in res.verdict.values())
 
 
 def test_prefix_shift_for_schemes_without_position_ids():
@@ -118,8 +118,8 @@ def test_prefix_shift_for_schemes_without_position_ids():
     assert not s.uses_position_ids
     units = attnpos.texts.prepare(s, attnpos.texts.from_strings(TEXTS[:2]))
     res = attnpos.ShiftTest(offset=8).run(s, units)
-    assert res["kind"] == "prefix"
-    assert all(np.isfinite(v).all() for v in res["change"].values())
+    assert res.shift_kind == "prefix"
+    assert all(np.isfinite(v).all() for v in res.change.values())
 
 
 # ------------------------------------------------------------------------------------------ planted heads
@@ -178,7 +178,7 @@ def test_scan_json_has_every_field():
     s = tiny.subject("gpt2")
     sc = attnpos.scan(s, TEXTS[:3], n_boot=5)
     j = sc.to_json()
-    assert j["schema"] == "attnpos.scan/1"
+    assert j["schema"] == "attnpos.scan/2"
     assert len(j["heads"]) == s.n_layers * s.n_heads
     for e in j["heads"]:
         for k in ("layer", "head", "stack", "mass", "role", "tags", "shares", "profile", "slope", "shift",
@@ -194,7 +194,7 @@ def test_minilm_roles_agree_with_direct_statistics(minilm):
     # Clark et al. 2019 (BlackboxNLP) report previous/next-token heads and heavy attention on special tokens in
     # BERT-family encoders. We do not assert their numbers (from memory, and for a different model); we check that
     # the roles attnpos gives the real MiniLM agree with statistics computed here directly from transformers' weights.
-    import attnpos.thresholds as th
+    import attnpos.core.thresholds as th
 
     texts = TEXTS[:4]
     sc = attnpos.scan(minilm, texts, n_boot=0, shift=False, induction=False)

@@ -1,7 +1,7 @@
 """The notebook views, on the Python side: widget state holds what the scan holds, selection links the atlas to
 the card, findings go through the store and mark the views, static HTML escapes user text, payloads stay small.
 
-Scans here are synthetic (``attnpos.views._synthetic``): random but shaped like real ones, so the checks compare
+Scans here are synthetic (``attnpos.views.synthetic``): random but shaped like real ones, so the checks compare
 widget state against the scan's own head table rather than against numbers written into the test.
 """
 
@@ -17,10 +17,11 @@ import pandas as pd
 import pytest
 from ipywidgets.widgets.widget import _remove_buffers
 
-from attnpos.result import CAUTION
+from attnpos.errors import AttnposError
+from attnpos.core.protocol import CAUTION
 from attnpos.views import Atlas, Curves, FindingsPanel, HeadCard, Survey, head_key, parse_key, show_token
-from attnpos.views import _common, _data, static
-from attnpos.views._synthetic import HOSTILE_TOKENS, synthetic_scan
+from attnpos.views import common as _common, data as _data, static
+from attnpos.views.synthetic import HOSTILE_TOKENS, synthetic_scan
 
 HOSTILE = "<script>alert(1)</script>"
 HOSTILE_IMG = "\"><img src=x onerror=alert(1)>"
@@ -64,7 +65,7 @@ def test_atlas_state_holds_the_head_table():
         assert atlas.grid["rows"][row]["layer"] == r["layer"] and col == r["head"]
         assert atlas.head_keys[i] == head_key(r["stack"], r["layer"], r["head"])
         role_id = int(dec["roles"][i])
-        assert (_common.ROLES[role_id - 1] if role_id else None) == r["role"]
+        assert (_common.roles_now()[role_id - 1] if role_id else None) == r["role"]
         for k, field in enumerate(atlas.grid["fields"]):
             want, got = float(r[field]), float(dec["numbers"][i, k])
             if math.isnan(want):
@@ -270,7 +271,7 @@ def test_static_atlas_writes_role_labels_beside_colours():
     html = static.atlas_html(scan)
     for role in set(scan.heads["role"]):
         assert role in html                                       # the legend spells it out
-        assert f">{_common.ROLE_SHORT[role]}</text>" in html      # and each cell writes it
+        assert f">{_common.role_shorts()[role]}</text>" in html      # and each cell writes it
     cells = [a for t, a in elements(html) if t == "g" and "apx-cell" in a.get("class", "")]
     assert len(cells) == len(scan.heads)
     assert CAUTION[:40] in html
@@ -292,14 +293,14 @@ def test_widget_bundle_has_a_static_html_fallback():
 def test_curves_show_what_exists_and_say_not_measured_otherwise():
     scan = synthetic_scan(3, 2, seed=16, extra=True)
     c = Curves(scan)
-    r2 = [e["r2"] for e in scan.extra["probe"]["layers"]]
+    r2 = [e["r2"] for e in scan.attached["probe"].layers]
     assert np.allclose(c.column("probe", "r2"), r2, atol=1e-6)
-    assert np.allclose(c.column("length", "loss"), scan.extra["length"]["loss"], atol=1e-5)
+    assert np.allclose(c.column("length", "loss"), scan.attached["length"].loss, atol=1e-5)
     assert c.series["length"]["training_length"] == 64
     html = c.to_html()
     assert "training length 64" in html and "control (shuffled labels)" in html
     bare = Curves(synthetic_scan(3, 2, seed=16, extra=False))
-    assert bare.series == {"probe": None, "length": None}
+    assert bare.series == {"probe": None, "length": None, "entropy": None}
     assert "Probe: not measured" in bare.to_html() and "Length: not measured" in bare.to_html()
 
 
@@ -309,7 +310,7 @@ def test_nbconvert_html_of_an_executed_notebook_contains_the_static_atlas(tmp_pa
     nbconvert = pytest.importorskip("nbconvert")
     nb = nbformat.v4.new_notebook()
     nb.cells = [nbformat.v4.new_code_cell(
-        "from attnpos.views import Atlas\nfrom attnpos.views._synthetic import synthetic_scan\n"
+        "from attnpos.views import Atlas\nfrom attnpos.views.synthetic import synthetic_scan\n"
         "Atlas(synthetic_scan(3, 3, seed=2))")]
     # JupyterLab saves notebooks without widget state unless asked to; nbconvert then falls back to text/html
     nbclient.NotebookClient(nb, timeout=120, kernel_name="python3", store_widget_state=False,
@@ -321,7 +322,7 @@ def test_nbconvert_html_of_an_executed_notebook_contains_the_static_atlas(tmp_pa
     assert html.count('class="apx-cell"') == 9
     # snapshot(): a plain HTML output that even a kernel-less JupyterLab shows after reopening
     nb.cells = [nbformat.v4.new_code_cell(
-        "from attnpos.views import Atlas\nfrom attnpos.views._synthetic import synthetic_scan\n"
+        "from attnpos.views import Atlas\nfrom attnpos.views.synthetic import synthetic_scan\n"
         "Atlas(synthetic_scan(2, 2, seed=2)).snapshot()")]
     nbclient.NotebookClient(nb, timeout=120, kernel_name="python3",
                             resources={"metadata": {"path": str(tmp_path)}}).execute()
@@ -345,11 +346,12 @@ def test_colour_ramp_is_monotone_in_perceived_lightness():
 def test_role_palette_keeps_roles_apart_and_labels_readable():
     # the role palette derives from Okabe & Ito 2008 ("Color Universal Design"), a colour-blind-safe set (common
     # practice); distinctness is measured in OKLab (Ottosson 2020). The 0.05 floor is our own judgement.
-    cols = [np.array(_common._hex_rgb(_common.ROLE_COLOURS[r])) / 255 for r in _common.ROLES]
+    colours, codes = _common.role_colours(), _common.role_codes()
+    cols = [np.array(_common._hex_rgb(colours[r])) / 255 for r in _common.roles_now()]
     lab = _common.srgb_to_oklab(np.array(cols))
     dist = [np.linalg.norm(lab[i] - lab[j]) for i in range(len(lab)) for j in range(i)]
     assert min(dist) > 0.05
-    assert len({_common.ROLE_CODE[r] for r in _common.ROLES}) == len(_common.ROLES)
+    assert len({codes[r] for r in _common.roles_now()}) == len(_common.roles_now())
 
 
 def test_keys_round_trip_with_the_findings_target_form():
@@ -357,7 +359,7 @@ def test_keys_round_trip_with_the_findings_target_form():
         key = head_key(stack, layer, head)
         assert parse_key(key) == (stack, layer, head)
     assert head_key("main", 3, 2) == "L3.H2" and head_key("decoder", 1, 0) == "decoder:L1.H0"
-    with pytest.raises(ValueError):
+    with pytest.raises(AttnposError):       # the package promises AttnposError
         parse_key("L3.H2<script>")
 
 

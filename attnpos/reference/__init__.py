@@ -13,29 +13,23 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..errors import AttnposError
+from ..locate import REFERENCE_ROOT as WEIGHTS_ROOT, reference_dir
 from . import relbias as _relbias
 from .models import CONTEXT_LIMIT, DEFAULT_CONTEXT, SCHEMES, build_model
 
-_relbias.register()
 
-WEIGHTS_ROOT = Path(__file__).resolve().parent / "weights"
+def register_architectures() -> None:
+    """Register the ``attnpos-relbias`` model type with transformers' auto classes (idempotent)."""
+    _relbias.register()
+
+
+register_architectures()
 
 
 def weights_dir(scheme: str) -> Path:
     """Folder of the shipped, trained model for ``scheme`` (``config.json``, ``model.safetensors``, tokenizer)."""
-    if scheme not in SCHEMES:
-        raise AttnposError(
-            f"there is no reference model called {scheme!r}; the reference models are: {', '.join(SCHEMES)}"
-        )
-    folder = WEIGHTS_ROOT / scheme
-    missing = [n for n in ("config.json", "model.safetensors", "tokenizer.json") if not (folder / n).is_file()]
-    if missing:
-        raise AttnposError(
-            f"the reference model {scheme!r} is incomplete: {', '.join(missing)} missing in {folder}. "
-            f"Reinstall attnpos, or train it again with: attnpos train {scheme} --out {folder}"
-        )
-    return folder
+    return reference_dir(scheme)
 
 
-__all__ = ["SCHEMES", "CONTEXT_LIMIT", "DEFAULT_CONTEXT", "WEIGHTS_ROOT", "build_model", "weights_dir"]
+__all__ = ["SCHEMES", "CONTEXT_LIMIT", "DEFAULT_CONTEXT", "WEIGHTS_ROOT", "build_model", "register_architectures",
+           "weights_dir"]

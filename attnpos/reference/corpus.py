@@ -373,25 +373,3 @@ def unigram_entropy(docs: list[str]) -> float:
         counts.update(d.encode("utf-8"))
     n = sum(counts.values())
     return -sum(c / n * math.log(c / n) for c in counts.values())
-
-
-def main(argv: list[str] | None = None) -> int:
-    """``python -m attnpos.reference.corpus [--out FILE]``: print size, hash and entropy; optionally write it."""
-    import argparse
-
-    p = argparse.ArgumentParser(description=main.__doc__)
-    p.add_argument("--seed", type=int, default=CORPUS_SEED)
-    p.add_argument("--out", help="write the corpus text to this file")
-    a = p.parse_args(argv)
-    docs = generate_documents(a.seed)
-    text = corpus_text(docs)
-    print(f"documents {len(docs)}  bytes {len(text.encode())}  sha256 {corpus_sha256(docs)}  "
-          f"unigram entropy {unigram_entropy(split_documents(docs)[0]):.4f} nats/byte")
-    if a.out:
-        with open(a.out, "w", encoding="utf-8") as f:
-            f.write(text)
-    return 0
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

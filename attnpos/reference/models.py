@@ -23,17 +23,19 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
 import torch
 
+from ..core import schemes, settings
 from ..errors import AttnposError
 from .tokenizer import BOS_ID, EOS_ID, PAD_ID, VOCAB_SIZE
 
+#: the schemes that have a reference model: every built-in scheme of :mod:`attnpos.core.schemes`
 SCHEMES = ("learned-absolute", "sinusoidal", "relative-bias", "alibi", "rope", "none")
+assert set(SCHEMES) <= set(schemes.names()), "every reference model's scheme is a scheme of the core"
 
 #: hard context limit for the schemes that have one (absolute tables); the others get the same nominal value
 CONTEXT_LIMIT = 512
-DEFAULT_CONTEXT = 128
+DEFAULT_CONTEXT = settings.REFERENCE_CONTEXT
 
 #: initial std of the sinusoidal model's token table, and the learning-rate multiplier the trainer gives it
 #: (0.5 / 0.02, GPT-2's initializer range: the same relative step size as a normally initialised table)
@@ -44,17 +46,10 @@ _COMMON_TOKENS = dict(vocab_size=VOCAB_SIZE, bos_token_id=BOS_ID, eos_token_id=E
 
 
 def sinusoidal_table(n_positions: int, d_model: int) -> torch.Tensor:
-    """The fixed encoding of Vaswani et al. 2017 §3.5, interleaved:
-    PE(pos, 2i) = sin(pos / 10000^(2i/d)), PE(pos, 2i+1) = cos(pos / 10000^(2i/d))."""
+    """The fixed encoding of Vaswani et al. 2017 §3.5 (:func:`attnpos.core.schemes.sinusoidal_table`), as float32."""
     if d_model % 2:
         raise AttnposError(f"the sinusoidal table needs an even hidden size, got {d_model}")
-    pos = np.arange(n_positions, dtype=np.float64)[:, None]
-    two_i = np.arange(0, d_model, 2, dtype=np.float64)[None, :]
-    angle = pos / np.power(10000.0, two_i / d_model)
-    table = np.empty((n_positions, d_model), dtype=np.float64)
-    table[:, 0::2] = np.sin(angle)
-    table[:, 1::2] = np.cos(angle)
-    return torch.from_numpy(table).to(torch.float32)
+    return torch.from_numpy(schemes.sinusoidal_table(n_positions, d_model)).to(torch.float32)
 
 
 def freeze_sinusoidal(model) -> None:

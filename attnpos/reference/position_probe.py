@@ -15,7 +15,6 @@ This is a stand-in until the full probe of ``attnpos.probes`` exists; it shares 
 
 from __future__ import annotations
 
-import argparse
 
 import numpy as np
 import torch
@@ -64,31 +63,25 @@ def probe_r2(model, n_train: int = 48, n_test: int = 24, context: int = 128, see
     return out
 
 
-def main(argv: list[str] | None = None) -> int:
+def report(schemes, seed: int = 0) -> str:
+    """The quick probe of each reference model in ``schemes``: trained, untrained and shuffled-label R² per layer."""
     from transformers import AutoModelForCausalLM
 
-    from . import SCHEMES, weights_dir
+    from . import weights_dir
 
-    p = argparse.ArgumentParser(prog="python -m attnpos.reference.position_probe", description=__doc__.split("\n")[0])
-    p.add_argument("schemes", nargs="*", default=["none"], choices=SCHEMES)
-    p.add_argument("--seed", type=int, default=0)
-    a = p.parse_args(argv)
     torch.set_num_threads(2)
-    for scheme in a.schemes:
+    lines = []
+    for scheme in schemes:
         trained = AutoModelForCausalLM.from_pretrained(weights_dir(scheme)).eval()
         ctx = int(trained.config.attnpos_training_length)
-        untrained = build_model(scheme, context=ctx, seed=a.seed + 1)
+        untrained = build_model(scheme, context=ctx, seed=seed + 1)
         rows = {
-            "trained": probe_r2(trained, context=ctx, seed=a.seed),
-            "untrained": probe_r2(untrained, context=ctx, seed=a.seed),
-            "shuffled": probe_r2(trained, context=ctx, seed=a.seed, shuffle=True),
+            "trained": probe_r2(trained, context=ctx, seed=seed),
+            "untrained": probe_r2(untrained, context=ctx, seed=seed),
+            "shuffled": probe_r2(trained, context=ctx, seed=seed, shuffle=True),
         }
-        print(f"{scheme}: held-out R² of a ridge probe for absolute position (layer 0 = embeddings)")
-        print("  " + "".join(f"{'layer ' + str(k):>10}" for k in range(len(rows['trained']))))
+        lines.append(f"{scheme}: held-out R² of a ridge probe for absolute position (layer 0 = embeddings)")
+        lines.append("  " + "".join(f"{'layer ' + str(k):>10}" for k in range(len(rows['trained']))))
         for name, vals in rows.items():
-            print(f"  {name:<10}" + "".join(f"{v:10.3f}" for v in vals))
-    return 0
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())
+            lines.append(f"  {name:<10}" + "".join(f"{v:10.3f}" for v in vals))
+    return "\n".join(lines)

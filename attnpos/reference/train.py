@@ -1,6 +1,5 @@
-"""Train one reference model on CPU: ``attnpos train SCHEME --out DIR [--minutes M] [--context N] [--seed S] [--steps N]``.
-
-Until the command line wires it in, ``python -m attnpos.reference.train SCHEME --out DIR ...`` does the same.
+"""Train one reference model on CPU (command line: ``attnpos train SCHEME --out DIR [--minutes M] [--context N]
+[--seed S] [--steps N]``).
 
 What a run does:
 
@@ -22,12 +21,9 @@ What a run does:
 
 from __future__ import annotations
 
-import argparse
 import math
 import os
 import platform
-import shlex
-import sys
 import time
 from pathlib import Path
 
@@ -118,20 +114,6 @@ def _versions() -> dict:
         "tokenizers": tokenizers.__version__,
         "numpy": np.__version__,
     }
-
-
-def _command(args) -> str:
-    parts = ["attnpos", "train", args.scheme, "--out", str(args.out), "--context", str(args.context),
-             "--seed", str(args.seed)]
-    if args.steps is not None:
-        parts += ["--steps", str(args.steps)]
-    if args.minutes is not None:
-        parts += ["--minutes", f"{args.minutes:g}"]
-    if args.batch != 32:
-        parts += ["--batch", str(args.batch)]
-    if args.lr != 3e-3:
-        parts += ["--lr", f"{args.lr:g}"]
-    return shlex.join(parts)
 
 
 # ----------------------------------------------------------------------------------------------- training
@@ -283,56 +265,3 @@ def save(model, out: str | os.PathLike) -> Path:
         limit = model.config.n_positions
     build_tokenizer(model_max_length=limit).save_pretrained(out)
     return out
-
-
-# ----------------------------------------------------------------------------------------------- CLI
-def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("scheme", choices=SCHEMES, help="position scheme of the model to train")
-    parser.add_argument("--out", required=True, help="folder to save the trained model and tokenizer into")
-    parser.add_argument("--minutes", type=float, default=None,
-                        help="time budget in minutes (default 4.5 when --steps is not given); always a hard cap")
-    parser.add_argument("--context", type=int, default=DEFAULT_CONTEXT,
-                        help=f"training context length in tokens (default {DEFAULT_CONTEXT})")
-    parser.add_argument("--seed", type=int, default=0, help="seed for initialisation and batches (default 0)")
-    parser.add_argument("--steps", type=int, default=None,
-                        help="number of updates (default: as many as fit in --minutes, measured at the start)")
-    parser.add_argument("--batch", type=int, default=32, help="windows per batch (default 32)")
-    parser.add_argument("--lr", type=float, default=3e-3, help="peak learning rate (default 3e-3)")
-    parser.add_argument("--threads", type=int, default=2, help="torch CPU threads (default 2)")
-    parser.add_argument("--quiet", action="store_true", help="no progress bar")
-
-
-def run(args) -> int:
-    minutes = args.minutes
-    if minutes is None and args.steps is None:
-        minutes = 4.5
-    command = _command(args)
-    _, record = train(args.scheme, args.out, context=args.context, seed=args.seed, steps=args.steps,
-                      minutes=minutes, batch=args.batch, lr=args.lr, threads=args.threads,
-                      progress=not args.quiet, command=command)
-    print(f"{args.scheme}: {record['steps']} steps in {record['minutes']:.2f} min; "
-          f"loss per byte (nats) train {record['train_loss_per_byte']:.4f}, val {record['val_loss_per_byte']:.4f} "
-          f"(untrained {record['val_loss_per_byte_untrained']:.4f}; unigram entropy "
-          f"{record['unigram_entropy_per_byte']:.4f}); saved to {args.out}")
-    return 0
-
-
-def main(argv: list[str] | None = None) -> int:
-    if argv is None and "OMP_WAIT_POLICY" not in os.environ:
-        # On a shared 2-core machine torch's OpenMP threads spin while waiting for each other and a training step
-        # gets several times slower (measured: 4.4 s/step spinning vs 0.9 s/step passive at the same load).
-        # The policy is read when torch loads, so restart this command once with it set.
-        env = dict(os.environ, OMP_WAIT_POLICY="PASSIVE")
-        os.execve(sys.executable, [sys.executable, "-m", "attnpos.reference.train", *sys.argv[1:]], env)
-    parser = argparse.ArgumentParser(prog="python -m attnpos.reference.train", description=__doc__.split("\n")[0])
-    add_arguments(parser)
-    args = parser.parse_args(argv)
-    try:
-        return run(args)
-    except AttnposError as exc:
-        print(f"attnpos: {exc}", file=sys.stderr)
-        return 2
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -17,8 +17,8 @@ Example::
     Survey(scan, findings="rope-findings.json")
 """
 
-from ..keys import head_key, layer_key, parse_key
-from ._common import RAMP, ROLE_COLOURS, ROLES, show_token
+from ..core.keys import head_key, layer_key, parse_key
+from .common import RAMP, role_colours, role_palette, roles_now, show_token
 from .atlas import Atlas
 from .card import HeadCard
 from .curves import Curves
@@ -26,6 +26,6 @@ from .findings_panel import FindingsPanel
 from .static import atlas_html, card_html, curves_html, findings_table_html
 from .survey import Survey, survey
 
-__all__ = ["Atlas", "HeadCard", "Curves", "FindingsPanel", "Survey", "survey", "ROLES", "ROLE_COLOURS", "RAMP",
+__all__ = ["Atlas", "HeadCard", "Curves", "FindingsPanel", "Survey", "survey", "roles_now", "role_colours", "role_palette", "RAMP",
            "head_key", "layer_key", "parse_key", "show_token", "atlas_html", "card_html", "curves_html",
            "findings_table_html"]

@@ -7,7 +7,7 @@ const AP_INK = "#1B1F24";
 const AP_MUTED = "#5A5F66";
 
 function apShowToken(s) {
-  // Same mapping as attnpos.views._common.show_token: control characters become backslash escapes.
+  // Same mapping as attnpos.views.common.show_token: control characters become backslash escapes.
   if (s === null || s === undefined) return "\u2014";
   let out = "";
   for (const ch of String(s)) {

@@ -6,9 +6,9 @@ import anywidget
 import numpy as np
 import traitlets as t
 
-from . import _data, static
+from . import data as _data, static
 from ._base import StaticFallback, css, esm
-from ._common import role_palette
+from .common import role_palette
 
 
 class Atlas(StaticFallback, anywidget.AnyWidget):
@@ -24,7 +24,7 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
         atlas                       # in a notebook cell
 
     Numbers travel as binary buffers: ``cells`` (int32 cell number per head = row × n_cols + head),
-    ``roles`` (uint8: 0 unknown, 1.. the role in :data:`attnpos.views.ROLES`), ``numbers`` (float32, heads ×
+    ``roles`` (uint8: 0 unknown, 1.. the role in :func:`attnpos.core.roles.names` order), ``numbers`` (float32, heads ×
     ``grid["fields"]``, NaN = not measured), ``spark`` (uint8 heads × points, the distance profile scaled to
     0..254 per head, 255 = missing).
     """

@@ -6,10 +6,10 @@ import anywidget
 import numpy as np
 import traitlets as t
 
-from . import _data, static
+from . import data as _data, static
 from ._base import StaticFallback, css, esm
-from ..keys import head_key, layer_key, parse_key
-from ._common import PART_COLOURS, RAMP, clean, role_palette
+from ..core.keys import head_key, layer_key, parse_key
+from .common import RAMP, clean, part_colours, role_palette
 
 
 class HeadCard(StaticFallback, anywidget.AnyWidget):
@@ -51,7 +51,7 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
         self.store = _data.open_store(findings)
         self._rows: list[dict] = []
         self.lut = np.ascontiguousarray(RAMP, dtype=np.uint8).tobytes()
-        self.style = {"palette": role_palette(), "parts": dict(PART_COLOURS)}
+        self.style = {"palette": role_palette(), "parts": part_colours()}
         self.caution = scan.caution or ""
         self.observe(self._on_head, "head")
         self.observe(self._on_map, ["text", "window"])

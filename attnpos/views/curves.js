@@ -107,18 +107,21 @@ function curvesRender({ model, el }) {
       right.appendChild(curvesChart([{ name: "loss", y: ln.loss, lo: ln.loss_lo, hi: ln.loss_hi, colour: "#3F6E9A" }], ln.position,
                                     { xlabel: "position", ylabel: "loss", vline: tl, vlabel: apFinite(tl) ? "training length " + tl : "",
                                       width: 380, cls: "ap-loss-chart" }));
-      if (ln.entropy && ln.entropy.some(Number.isFinite)) {
-        right.appendChild(apEl("h4", null, "Attention entropy per position"));
-        right.appendChild(curvesChart([{ name: "entropy", y: ln.entropy, lo: ln.entropy_lo, hi: ln.entropy_hi, colour: "#6C8C4F" }], ln.position,
-                                      { xlabel: "position", ylabel: "entropy", vline: tl, vlabel: "training length", width: 380, height: 160 }));
-      }
     } else right.appendChild(apEl("p", "ap-none ap-length-none", "Length: not measured in this scan."));
+    const em = meta.entropy;
+    const en = columns(em, model.get("entropy_values"));
+    if (em && en.entropy && en.entropy.some(Number.isFinite)) {
+      right.appendChild(apEl("h4", null, "Attention entropy by query position (mean over heads; 1 = uniform)"));
+      right.appendChild(curvesChart([{ name: "entropy", y: en.entropy, colour: "#6C8C4F", dots: true }], en.position,
+                                    { xlabel: "query position", ylabel: "entropy ratio", vline: em.training_length,
+                                      vlabel: "training length", width: 380, height: 160, cls: "ap-entropy-chart" }));
+    }
     cols.appendChild(right);
     root.appendChild(cols);
     root.appendChild(apCaution(model.get("caution")));
   }
   draw();
-  const names = ["series", "probe_values", "length_values", "caution"];
+  const names = ["series", "probe_values", "length_values", "entropy_values", "caution"];
   for (const n of names) model.on("change:" + n, draw);
   return () => { for (const n of names) model.off("change:" + n, draw); };
 }

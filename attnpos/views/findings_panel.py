@@ -7,9 +7,9 @@ import getpass
 import anywidget
 import traitlets as t
 
-from . import _data, static
+from . import data as _data, static
 from ._base import StaticFallback, css, esm
-from ..keys import layer_key, parse_key
+from ..core.keys import layer_key, parse_key
 
 DEFAULT_STATUSES = ("open", "supported", "ruled-out")
 

@@ -11,8 +11,8 @@ from typing import Any
 
 import numpy as np
 
-from . import _data
-from ._common import (INK, PART_COLOURS, ROLE_CODE, ROLE_COLOURS, ROLES, UNKNOWN_COLOUR, colourise,
+from . import data as _data
+from .common import (INK, UNKNOWN_COLOUR, colourise, part_colours, role_codes, role_colours, roles_now,
                       esc, esc_plain, finite, fmt, fmt_interval, ink_on, png_data_uri, role_palette, tint)
 
 STYLE = """
@@ -51,17 +51,18 @@ def caution_html(text: str) -> str:
 
 def legend_html(counts: dict | None = None) -> str:
     parts = []
-    for r in ROLES:
+    colours, codes = role_colours(), role_codes()
+    for r in roles_now():
         c = "" if counts is None else f" ({counts.get(r, 0)})"
-        parts.append(f'<span><i class="apx-sw" style="background:{tint(ROLE_COLOURS[r], 0.35)};'
-                     f'border-color:{ROLE_COLOURS[r]}"></i><b>{ROLE_CODE[r]}</b> {r}{c}</span>')
+        parts.append(f'<span><i class="apx-sw" style="background:{tint(colours[r], 0.35)};'
+                     f'border-color:{colours[r]}"></i><b>{esc(codes[r])}</b> {r}{c}</span>')
     return f'<div class="apx-legend">{"".join(parts)}</div>'
 
 
 def _tooltip(data: dict, i: int) -> str:
     """Plain-text hover of one atlas cell (escaped by the caller)."""
     f = dict(zip(data["fields"], data["numbers"][i].tolist()))
-    role = ROLES[data["roles"][i] - 1] if data["roles"][i] else "—"
+    role = roles_now()[data["roles"][i] - 1] if data["roles"][i] else "—"
     lines = [f"{data['keys'][i]} {role}"]
     if data["tags"][i]:
         lines.append(f"tags: {data['tags'][i]}")
@@ -260,7 +261,7 @@ def shares_svg(info: dict, width: int = 340) -> str:
         out.append(f'<text x="{ml - 6}" y="{y + 12}" font-size="11" text-anchor="end" fill="{INK}">{p}</text>'
                    f'<rect x="{ml}" y="{y + 2}" width="{bw}" height="12" fill="#EFEBE3"/>')
         if finite(v):
-            out.append(f'<rect x="{ml}" y="{y + 2}" width="{bw * min(max(v, 0), 1):.1f}" height="12" fill="{PART_COLOURS[p]}"/>')
+            out.append(f'<rect x="{ml}" y="{y + 2}" width="{bw * min(max(v, 0), 1):.1f}" height="12" fill="{part_colours()[p]}"/>')
         if finite(lo) and finite(hi):
             a, b = ml + bw * min(max(lo, 0), 1), ml + bw * min(max(hi, 0), 1)
             out.append(f'<line x1="{a:.1f}" x2="{b:.1f}" y1="{y + 8}" y2="{y + 8}" stroke="{INK}" stroke-width="1.2"/>'
@@ -319,8 +320,8 @@ def findings_list(rows: list[dict]) -> str:
 
 
 def role_badge(role: Any) -> str:
-    col = ROLE_COLOURS.get(str(role), UNKNOWN_COLOUR)
-    fill = tint(col, 0.35) if role in ROLE_COLOURS else UNKNOWN_COLOUR
+    col = role_colours().get(str(role), UNKNOWN_COLOUR)
+    fill = tint(col, 0.35) if str(role) in role_colours() else UNKNOWN_COLOUR
     return (f'<span style="display:inline-block;padding:1px 7px;border-radius:3px;background:{fill};'
             f'border:1px solid {col};color:{ink_on(fill)};font-weight:600">{esc_plain(role or "no role")}</span>')
 
@@ -432,13 +433,14 @@ def curves_html(scan, with_style: bool = True) -> str:
         parts.append(_line_chart([{"y": ln["loss"], "lo": ln.get("loss_lo"), "hi": ln.get("loss_hi"),
                                    "colour": "#3F6E9A"}], ln["position"], 380, 190, "position", "loss",
                                  vline=tl, vlabel=f"training length {tl}" if tl is not None else ""))
-        if "entropy" in ln and np.isfinite(ln["entropy"]).any():
-            parts.append("<h4>Attention entropy per position</h4>")
-            parts.append(_line_chart([{"y": ln["entropy"], "lo": ln.get("entropy_lo"), "hi": ln.get("entropy_hi"),
-                                       "colour": "#6C8C4F"}], ln["position"], 380, 160, "position", "entropy",
-                                     vline=tl, vlabel="training length"))
     else:
         parts.append('<p class="apx-none">Length: not measured in this scan.</p>')
+    en = c["entropy"]
+    if en is not None and np.isfinite(en["entropy"]).any():
+        parts.append("<h4>Attention entropy by query position (mean over heads; 1 = uniform)</h4>")
+        parts.append(_line_chart([{"y": en["entropy"], "colour": "#6C8C4F", "dots": True}], en["position"], 380, 160,
+                                 "query position", "entropy ratio", vline=en.get("training_length"),
+                                 vlabel="training length"))
     parts.append("</div></div>" + caution_html(scan.caution) + "</div>")
     return (style_tag() if with_style else "") + "".join(parts)
 

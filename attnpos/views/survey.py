@@ -6,7 +6,7 @@ from pathlib import Path
 
 import ipywidgets
 
-from . import _data, static
+from . import data as _data, static
 from ._base import StaticFallback
 from .atlas import Atlas
 from .card import HeadCard

@@ -19,7 +19,7 @@ import os, sys
 sys.path[:0] = [{repo!r}, {helpers!r}]
 os.environ["HF_HUB_OFFLINE"] = "1"
 from attnpos.views import Survey, HeadCard
-from attnpos.views._synthetic import synthetic_scan
+from attnpos.views.synthetic import synthetic_scan
 from scanning import build_real_scan
 scan, source = build_real_scan()
 print("scanned", source, len(scan.heads), "heads")

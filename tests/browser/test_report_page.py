@@ -6,7 +6,7 @@ from __future__ import annotations
 import pytest
 
 from attnpos.report import write_report
-from attnpos.views._synthetic import synthetic_scan
+from attnpos.views.synthetic import synthetic_scan
 
 pytestmark = pytest.mark.browser
 

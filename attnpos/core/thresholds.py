@@ -1,7 +1,8 @@
 """Every threshold that turns a number into a word, in one place.
 
 These are judgement calls, not published constants; each comment says why the value was chosen. Change them
-here only, and the README's role table (generated from :data:`ROLE_RULES`) follows.
+here only: the role specs (:mod:`attnpos.core.roles`) read them, and the README's role table is generated from
+those specs.
 """
 
 # previous-token / next-token: at least half of the query's weight on the neighbouring key. Half is the point where
@@ -42,18 +43,3 @@ SHIFT_ABSOLUTE = 0.15
 SHIFT_OFFSET = 32          # positions added to every position id (or neutral tokens placed before the text)
 SHIFT_MAX_TOKENS = 192     # the shift test looks at the first tokens of each text only
 SHIFT_MAX_TEXTS = 4
-
-# order in which roles win when several criteria hold (most specific first)
-ROLE_ORDER = ("induction", "previous-token", "next-token", "anchor", "local", "counting", "content", "mixed")
-
-ROLE_RULES = {
-    "previous-token": f"mass.previous ≥ {NEIGHBOUR_MASS}",
-    "next-token": f"mass.next ≥ {NEIGHBOUR_MASS}",
-    "local": f"slope ≥ {LOCAL_SLOPE} per token and shares.distance ≥ {LOCAL_SHARE}",
-    "anchor": f"mean weight on one slot (queries ≥ {ANCHOR_MIN_DISTANCE} tokens away) ≥ {ANCHOR_WEIGHT}",
-    "counting": f"entropy ≥ {COUNTING_ENTROPY} × log(visible keys) (causal models)",
-    "content": (f"shares.distance + shares.slot < {CONTENT_MAX_POSITIONAL} and shares.content + shares.residual "
-                f"≥ {CONTENT_MIN_SHARE}"),
-    "induction": f"induction score ≥ {INDUCTION_SCORE} on repeated random tokens",
-    "mixed": "none of the above",
-}

@@ -10,8 +10,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..result import HEAD_COLUMNS, Scan
-from ._common import ROLES
+from ..core import columns
+from ..results.scan import Scan
+from .common import roles_now
 
 HOSTILE_TOKENS = ["<script>alert(1)</script>", "\"><img src=x onerror=alert(1)>", "\x00\x1b[31m\x07", "\u202eevil",
                   "&amp;", "'", "  "]
@@ -69,7 +70,7 @@ def synthetic_scan(layers: int = 4, heads: int = 4, *, seed: int = 0, causal: bo
                    stacks: tuple[str, ...] = ("main",), n_texts: int = 2, text_length: int = 24,
                    keep_maps: str | int = "all", hostile: bool = True, extra: bool = True,
                    missing: float = 0.05, max_distance: int = 256) -> Scan:
-    """A :class:`~attnpos.result.Scan` with plausible random numbers.
+    """A :class:`~attnpos.results.scan.Scan` with plausible random numbers.
 
     Args:
         keep_maps: ``"all"`` keeps a map for every head on every text; an int keeps maps for that many heads.
@@ -82,7 +83,8 @@ def synthetic_scan(layers: int = 4, heads: int = 4, *, seed: int = 0, causal: bo
     for stack in stacks:
         for L in range(layers):
             for H in range(heads):
-                role = ROLES[int(rng.integers(0, len(ROLES)))]
+                names = roles_now()
+                role = names[int(rng.integers(0, len(names)))]
                 if not causal and role == "induction":
                     role = "content"
                 if causal and role == "next-token":
@@ -112,7 +114,7 @@ def synthetic_scan(layers: int = 4, heads: int = 4, *, seed: int = 0, causal: bo
                 r["shift_offset"] = 17.0
                 r["shift_change"] = float(rng.uniform(0, 0.05) if role != "anchor" else rng.uniform(0.3, 0.8))
                 r["shift_verdict"] = "moves (slot)" if role == "anchor" else "stays (relative)"
-                for c in HEAD_COLUMNS:
+                for c in columns.names():
                     if c.startswith(("share_", "mass_", "slope", "entropy", "induction")) and rng.random() < missing:
                         r[c] = float("nan")
                 rows.append(r)
@@ -123,7 +125,7 @@ def synthetic_scan(layers: int = 4, heads: int = 4, *, seed: int = 0, causal: bo
                 band = rng.uniform(0.05, 0.3, v.shape) * (1 + np.log1p(np.abs(d)) / 3)
                 lows.append(v - band)
                 highs.append(v + band)
-    table = pd.DataFrame(rows, columns=HEAD_COLUMNS)
+    table = pd.DataFrame(rows, columns=columns.names())
     words = ["the", " quiet", " harbour", " lamp", " at", " dusk", " and", " a", " red", " kite",
              " over", " the", " field", ".", "\n", " it", " rose", " again"]
     tokens, texts, special = [], [], []
@@ -143,24 +145,34 @@ def synthetic_scan(layers: int = 4, heads: int = 4, *, seed: int = 0, causal: bo
         r = table.iloc[idx]
         for t in range(n_texts):
             maps[(t, r["stack"], int(r["layer"]), int(r["head"]))] = _map_for(r["role"], len(tokens[t]), causal, rng)
-    ex = {}
-    if extra:
-        ex["probe"] = {"layers": [{"layer": L, "r2": float(min(1, 0.3 + 0.15 * L + rng.normal(0, 0.03))),
-                                   "r2_log": float(min(1, 0.4 + 0.12 * L)),
-                                   "control_r2": float(rng.uniform(0, 0.15)),
-                                   "selectivity": None, "mae": float(rng.uniform(1, 5)),
-                                   "untrained_r2": float(rng.uniform(0.0, 0.3))} for L in range(layers)]}
-        for e in ex["probe"]["layers"]:
-            e["selectivity"] = e["r2"] - e["control_r2"]
-        pos = np.arange(1, 129)
-        loss = 2.0 + 0.3 * np.exp(-pos / 10) + np.where(pos > 64, 0.02 * (pos - 64), 0) + rng.normal(0, 0.03, pos.shape)
-        ex["length"] = {"position": pos.tolist(), "loss": loss.tolist(), "loss_lo": (loss - 0.08).tolist(),
-                        "loss_hi": (loss + 0.08).tolist(), "training_length": 64}
     model = {"path": "synthetic", "name": "synthetic-" + "x".join(map(str, (layers, heads))),
              "architecture": "SyntheticForCausalLM" if causal else "SyntheticEncoder",
              "scheme": "rope", "layers": layers, "heads": heads, "causal": causal,
              "fingerprint": "f" * 16, "context_limit": 128, "training_length": 64,
              "capture": "registry", "score_kind": "scores"}
-    return Scan(model=model, texts=texts, tokens=tokens, special=special, heads=table,
+    scan = Scan(model=model, texts=texts, tokens=tokens, special=special, heads=table,
                 profile={"distance": d, "value": np.array(values), "low": np.array(lows), "high": np.array(highs)},
-                maps=maps, texts_hash="a" * 16, versions={"attnpos": "0.1.0", "synthetic": "yes"}, extra=ex)
+                maps=maps, texts_hash="a" * 16, versions={"attnpos": "0.1.0", "synthetic": "yes"})
+    if extra:
+        _attach_synthetic_curves(scan, layers, rng)
+    return scan
+
+
+def _attach_synthetic_curves(scan: Scan, layers: int, rng: np.random.Generator) -> None:
+    """Synthetic probe and length results (labelled synthetic in their settings), attached to the scan."""
+    from ..results.length import LengthResult
+    from ..results.probe import ProbeResult
+
+    probe_layers = [{"layer": L, "r2": float(min(1, 0.3 + 0.15 * L + rng.normal(0, 0.03))),
+                     "r2_log": float(min(1, 0.4 + 0.12 * L)), "control_r2": float(rng.uniform(0, 0.15)),
+                     "selectivity": None, "mae": float(rng.uniform(1, 5)),
+                     "untrained_r2": float(rng.uniform(0.0, 0.3))} for L in range(layers)]
+    for e in probe_layers:
+        e["selectivity"] = e["r2"] - e["control_r2"]
+    pos = np.arange(1, 129)
+    loss = 2.0 + 0.3 * np.exp(-pos / 10) + np.where(pos > 64, 0.02 * (pos - 64), 0) + rng.normal(0, 0.03, pos.shape)
+    scan.attach(ProbeResult(model=scan.model, layers=probe_layers, positions={}, settings={"synthetic": "yes"}))
+    scan.attach(LengthResult(model=scan.model, position=pos.tolist(), loss=loss.tolist(),
+                             loss_lo=(loss - 0.08).tolist(), loss_hi=(loss + 0.08).tolist(), training_length=64,
+                             training_length_source="synthetic", bins=[], heads=[], drift=None, summary={},
+                             settings={"synthetic": "yes"}))

@@ -16,48 +16,49 @@ from typing import Any, Iterable
 
 import numpy as np
 
-from ..result import json_safe
+from ..core import columns, roles as core_roles
+from ..core.protocol import json_safe
 
 # ------------------------------------------------------------------ roles
-ROLES = ("previous-token", "next-token", "local", "anchor", "counting", "content", "induction", "mixed")
-
-# Categorical palette derived from the Okabe & Ito (2008) colour-blind-safe set (common practice; hex values
-# from memory), assigned to our roles in our own order. The role name is always written beside the colour,
-# so colour is never the only carrier of the role.
-ROLE_COLOURS = {
-    "previous-token": "#0072B2",
-    "next-token": "#56B4E9",
-    "local": "#009E73",
-    "anchor": "#D55E00",
-    "counting": "#E69F00",
-    "content": "#CC79A7",
-    "induction": "#F0E442",
-    "mixed": "#8C8C8C",
-}
+# Everything about a role — order, colour, short word, code — comes from its spec in attnpos.core.roles, so a role
+# registered there appears in every view. The role name is always written beside the colour, so colour is never the
+# only carrier of the role.
 UNKNOWN_COLOUR = "#D9D6CF"
-# Written labels: a short word for roomy cells, a two-letter code for dense grids (legend spells them out).
-ROLE_SHORT = {"previous-token": "prev", "next-token": "next", "local": "local", "anchor": "anchor",
-              "counting": "count", "content": "content", "induction": "induct", "mixed": "mixed"}
-ROLE_CODE = {"previous-token": "Pv", "next-token": "Nx", "local": "Lo", "anchor": "An",
-             "counting": "Ct", "content": "Co", "induction": "In", "mixed": "Mx"}
-
-# Colours of the four parts of the score split (muted, distinct from the role palette's meaning).
-PART_COLOURS = {"distance": "#3F6E9A", "slot": "#B8613F", "content": "#6C8C4F", "residual": "#9A948A"}
-
 INK = "#1B1F24"
 PAPER = "#FBFAF7"
 
 
+def roles_now() -> tuple[str, ...]:
+    """Role names in precedence order (the order of every legend and palette)."""
+    return core_roles.names()
+
+
+def role_colours() -> dict[str, str]:
+    return {s.name: s.colour for s in core_roles.specs()}
+
+
+def role_shorts() -> dict[str, str]:
+    return {s.name: s.short for s in core_roles.specs()}
+
+
+def role_codes() -> dict[str, str]:
+    return {s.name: s.code for s in core_roles.specs()}
+
+
+def part_colours() -> dict[str, str]:
+    """Colours of the parts of the score split (muted, distinct from the role palette's meaning)."""
+    return {p.name: p.colour for p in columns.SPLIT_PARTS}
+
+
 def role_index(role: Any) -> int:
-    """0 for a missing/unknown role, else 1 + position in :data:`ROLES`."""
-    try:
-        return ROLES.index(str(role)) + 1 if role is not None else 0
-    except ValueError:
-        return 0
+    """0 for a missing/unknown role, else 1 + position in :func:`roles_now`."""
+    names = roles_now()
+    return names.index(str(role)) + 1 if role is not None and str(role) in names else 0
 
 
 def role_colour(role: Any) -> str:
-    return ROLE_COLOURS.get(str(role), UNKNOWN_COLOUR) if role is not None else UNKNOWN_COLOUR
+    spec = core_roles.get(str(role)) if role is not None else None
+    return spec.colour if spec is not None else UNKNOWN_COLOUR
 
 
 def _hex_rgb(h: str) -> tuple[int, int, int]:
@@ -83,12 +84,13 @@ def ink_on(colour: str) -> str:
 
 
 def role_palette() -> list[dict]:
-    """What the JS side needs to draw roles: one dict per role id (id 0 = unknown)."""
-    out = [{"role": "", "colour": UNKNOWN_COLOUR, "fill": UNKNOWN_COLOUR, "ink": INK, "short": "?", "code": "?"}]
-    for r in ROLES:
-        fill = tint(ROLE_COLOURS[r], 0.35)
-        out.append({"role": r, "colour": ROLE_COLOURS[r], "fill": fill, "ink": ink_on(fill),
-                    "short": ROLE_SHORT[r], "code": ROLE_CODE[r]})
+    """What the JS side needs to draw roles: one dict per role id (id 0 = unknown), in precedence order."""
+    out = [{"role": "", "colour": UNKNOWN_COLOUR, "fill": UNKNOWN_COLOUR, "ink": INK, "short": "?", "code": "?",
+            "about": "not measured"}]
+    for spec in core_roles.specs():
+        fill = tint(spec.colour, 0.35)
+        out.append({"role": spec.name, "colour": spec.colour, "fill": fill, "ink": ink_on(fill),
+                    "short": spec.short, "code": spec.code, "about": spec.about})
     return out
 
 

@@ -1,4 +1,4 @@
-"""From a :class:`~attnpos.result.Scan` (and a findings store) to what the views draw.
+"""From a :class:`~attnpos.results.scan.Scan` (and a findings store) to what the views draw.
 
 One function per view; the widgets send the results to the browser (numbers as binary buffers) and the
 static renderings turn the same results into HTML/SVG, so the two never disagree.
@@ -12,8 +12,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..keys import head_key, layer_key, parse_key
-from ._common import (ROLES, clean, map_view, block_labels, num, role_index, spark_codes, tags_of, text_of, top_keys)
+from ..core import roles as core_roles
+from ..core.keys import head_key, layer_key, parse_key
+from .common import (clean, map_view, block_labels, num, role_index, spark_codes, tags_of, text_of, top_keys)
 
 # Numbers per head that the atlas sends (float32, NaN = missing) and shows on hover.
 ATLAS_FIELDS = [
@@ -184,23 +185,29 @@ def map_payload(scan, key: str, text: int, window=None, max_side: int = 256) -> 
 
 # ------------------------------------------------------------------ curves
 def curves_data(scan) -> dict:
-    ex = scan.extra or {}
-    out: dict[str, Any] = {"probe": None, "length": None}
-    pr = ex.get("probe") or {}
-    layers = pr.get("layers") if isinstance(pr, dict) else None
-    if layers:
-        rows = sorted((e for e in layers if isinstance(e, dict) and "layer" in e), key=lambda e: e["layer"])
+    """The curves: the attached probe result (R² per layer) and length result (loss per position, and the mean
+    entropy of every head per query-position bin)."""
+    att = getattr(scan, "attached", None) or {}
+    out: dict[str, Any] = {"probe": None, "length": None, "entropy": None}
+    pr = att.get("probe")
+    if pr is not None and pr.layers:
+        rows = sorted((e for e in pr.layers if isinstance(e, dict) and "layer" in e), key=lambda e: e["layer"])
         if rows:
             out["probe"] = {k: np.array([num(e.get(k)) for e in rows], dtype=np.float64)
                             for k in ("layer", "r2", "r2_log", "control_r2", "selectivity", "mae", "untrained_r2")}
-    ln = ex.get("length") or {}
-    if isinstance(ln, dict) and ln.get("position") is not None and ln.get("loss") is not None:
-        pos = np.asarray([num(v) for v in ln["position"]], dtype=np.float64)
-        res = {"position": pos, "training_length": ln.get("training_length")}
-        for k in ("loss", "loss_lo", "loss_hi", "entropy", "entropy_lo", "entropy_hi"):
-            if ln.get(k) is not None and len(ln[k]) == len(pos):
-                res[k] = np.asarray([num(v) for v in ln[k]], dtype=np.float64)
-        out["length"] = res
+    ln = att.get("length")
+    if ln is not None:
+        pos = np.asarray(ln.position, dtype=np.float64)
+        if ln.loss is not None:
+            res = {"position": pos, "training_length": ln.training_length}
+            for k in ("loss", "loss_lo", "loss_hi"):
+                v = getattr(ln, k)
+                if v is not None and len(v) == len(pos):
+                    res[k] = np.asarray([num(x) for x in v], dtype=np.float64)
+            out["length"] = res
+        ent = ln.entropy_curve()
+        if ent is not None:
+            out["entropy"] = {**ent, "training_length": ln.training_length}
     return out
 
 
@@ -249,21 +256,18 @@ def marks_from(rows: list[dict]) -> dict:
 
 
 def notable_heads(scan, per_role: int = 2, limit: int = 14) -> list[str]:
-    """A few strong heads per role for the report: the strongest by that role's own evidence number."""
+    """A few strong heads per role for the report: the strongest by that role's own strength column (its spec)."""
     t = scan.heads.reset_index(drop=True)
-    strength = {"previous-token": "mass_previous", "next-token": "mass_next", "local": "share_distance",
-                "anchor": "anchor_weight", "counting": "entropy_ratio", "content": "share_content",
-                "induction": "induction", "mixed": "share_residual"}
     keys = []
-    for role in ROLES:
-        sub = t[t["role"] == role]
+    for spec in core_roles.specs():
+        sub = t[t["role"] == spec.name]
         if sub.empty:
             continue
-        col = strength[role]
-        score = pd.to_numeric(sub[col], errors="coerce").fillna(-np.inf) if col in sub else pd.Series(0, sub.index)
-        take = 1 if role == "mixed" else per_role
+        col = spec.strength
+        score = (pd.to_numeric(sub[col], errors="coerce").fillna(-np.inf) if col and col in sub
+                 else pd.Series(0, sub.index))
+        take = 1 if spec.name == core_roles.FALLBACK else per_role
         for i in score.sort_values(ascending=False, kind="stable").index[:take]:
             r = t.loc[i]
             keys.append(head_key(r["stack"], r["layer"], r["head"]))
     return keys[:limit]
-

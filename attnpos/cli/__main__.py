@@ -1,0 +1,7 @@
+"""``python -m attnpos.cli`` = ``attnpos``."""
+
+import sys
+
+from . import main
+
+sys.exit(main())

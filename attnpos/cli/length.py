@@ -1,0 +1,47 @@
+"""``attnpos length``: behaviour past the training length — per-position loss, entropy and first-token weight per
+head, role drift."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..core import settings
+from . import _common as c
+
+
+
+def add_arguments(p) -> None:
+    c.add_model_arguments(p)
+    p.add_argument("--to", type=c.count(4), required=True, metavar="N",
+                   help="sequence length in tokens (may exceed the training length)")
+    p.add_argument("--text", action="append", type=Path, default=None, metavar="PATH",
+                   help="a .txt file or a folder of them, joined and cut into sequences of N tokens; repeatable; "
+                        "default: freshly generated documents of the reference corpus scenarios")
+    p.add_argument("--training-length", type=c.count(1), default=None, metavar="L",
+                   help="the context length the model was trained on (default: recorded with the model or config)")
+    p.add_argument("--sequences", type=c.count(1), default=settings.LENGTH_SEQUENCES, metavar="K",
+                   help=f"at most K sequences ({settings.LENGTH_SEQUENCES})")
+    p.add_argument("--bins", type=c.count(1), default=settings.LENGTH_BINS,
+                   help=f"about this many query-position bins ({settings.LENGTH_BINS})")
+    p.add_argument("--boot", type=c.count(0), default=settings.LENGTH_BOOT,
+                   help=f"bootstrap resamples for loss intervals ({settings.LENGTH_BOOT})")
+    c.add_json_argument(p, "results")
+
+
+def check(args) -> None:
+    c.check_outputs({"--json": args.json}, {"--text": args.text})
+    c.check_model(args)
+    from ..texts import read
+
+    args.raw_texts = read(args.text) if args.text else None
+
+
+def run(args) -> int:
+    from ..length import length
+
+    res = length(c.load_subject(args), args.raw_texts, to=args.to, training_length=args.training_length,
+                 n_sequences=args.sequences, bins=args.bins, n_boot=args.boot)
+    print(res.text())
+    if args.json:
+        c.write("length JSON", args.json, lambda: res.save(args.json))
+    return 0

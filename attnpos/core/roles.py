@@ -1,0 +1,233 @@
+"""Role specs: the one place a head role is defined.
+
+A :class:`RoleSpec` holds everything the package says about a role: its name, its precedence (most specific
+first), the check that decides it from a head-table row (returning the evidence sentence), the rule as the README
+prints it, its colour, its short word and its one- or two-letter code for dense grids (so a role survives greyscale),
+and the head-table column that measures how strongly a head has it. The head table (:mod:`attnpos.roles`), the
+views' palette and legend, the report and the README's role table all read the specs here, in this order.
+
+Thresholds come from :mod:`attnpos.core.thresholds`, where each value is justified.
+
+Adding a role is one call (in a test, or in code that extends attnpos)::
+
+    >>> spec = RoleSpec(name="self", rule="mass.self ≥ 0.5", about="looks at its own token",
+    ...                 check=lambda row, ctx: "mass.self ≥ 0.5" if (row.get("mass_self") or 0) >= 0.5 else None,
+    ...                 colour="#117733", short="self", code="Sf", strength="mass_self", rank=15)
+    >>> with registered(spec):
+    ...     [r.name for r in specs()][:3]
+    ['induction', 'self', 'previous-token']
+    >>> "self" in names()
+    False
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any, Callable, ContextManager, Mapping
+
+from . import thresholds as th
+from ._registry import temporarily
+
+FALLBACK = "mixed"
+"""The role of a head for which no other criterion holds."""
+
+
+@dataclass(frozen=True)
+class HeadContext:
+    """What a check may need beyond the head's row: whether the head's layer is causal."""
+
+    causal: bool = True
+
+
+@dataclass(frozen=True)
+class RoleSpec:
+    """One role.
+
+    Attributes:
+        name: the role's name, as tables, JSON and findings write it.
+        rule: the criterion in one line (the README's role table prints it).
+        about: what the role means, in a few words (legends, tooltips).
+        check: ``check(row, ctx) -> evidence sentence | None`` — None when the criterion does not hold. ``row``
+            maps head-table columns to values (NaN or missing when not measured); ``ctx`` is a
+            :class:`HeadContext`. None for the fallback role.
+        colour: the role's colour (hex); the palette is colour-blind safe and the role is always written beside it.
+        short: a short word for roomy cells.
+        code: one or two letters for dense grids and greyscale prints.
+        strength: the head-table column that measures how strongly a head has the role (larger = stronger), or None.
+        rank: precedence; when several criteria hold, the smallest rank is the primary role.
+    """
+
+    name: str
+    rule: str
+    about: str
+    check: Callable[[Mapping[str, Any], HeadContext], str | None] | None
+    colour: str
+    short: str
+    code: str
+    strength: str | None
+    rank: int
+
+
+def _num(row: Mapping[str, Any], key: str) -> float:
+    v = row.get(key)
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return math.nan
+    return v
+
+
+def _ok(*xs: float) -> bool:
+    return all(math.isfinite(x) for x in xs)
+
+
+def _f(x: float, nd: int = 2) -> str:
+    return "—" if not math.isfinite(x) else f"{x:.{nd}f}"
+
+
+def _induction(row, ctx):
+    x = _num(row, "induction")
+    if _ok(x) and x >= th.INDUCTION_SCORE:
+        return f"induction score {_f(x)} ≥ {th.INDUCTION_SCORE}"
+    return None
+
+
+def _previous(row, ctx):
+    x = _num(row, "mass_previous")
+    if _ok(x) and x >= th.NEIGHBOUR_MASS:
+        return f"mass.previous {_f(x)} ≥ {th.NEIGHBOUR_MASS}"
+    return None
+
+
+def _next(row, ctx):
+    x = _num(row, "mass_next")
+    if _ok(x) and x >= th.NEIGHBOUR_MASS:
+        return f"mass.next {_f(x)} ≥ {th.NEIGHBOUR_MASS}"
+    return None
+
+
+def _anchor(row, ctx):
+    w, slot = _num(row, "anchor_weight"), _num(row, "anchor_slot")
+    if _ok(w, slot) and w >= th.ANCHOR_WEIGHT:
+        return f"mean weight {_f(w)} ≥ {th.ANCHOR_WEIGHT} on slot {int(slot)}"
+    return None
+
+
+def _local(row, ctx):
+    s, d = _num(row, "slope"), _num(row, "share_distance")
+    if _ok(s, d) and s >= th.LOCAL_SLOPE and d >= th.LOCAL_SHARE:
+        return f"slope {_f(s, 3)} ≥ {th.LOCAL_SLOPE}, distance share {_f(d)} ≥ {th.LOCAL_SHARE}"
+    return None
+
+
+def _counting(row, ctx):
+    e = _num(row, "entropy_ratio")
+    if ctx.causal and _ok(e) and e >= th.COUNTING_ENTROPY:
+        return (f"entropy {_f(e)} × log(visible keys) ≥ {th.COUNTING_ENTROPY} "
+                "(the untrained default: compare with an untrained copy)")
+    return None
+
+
+def _content(row, ctx):
+    pos = _num(row, "share_distance") + _num(row, "share_slot")
+    cont = _num(row, "share_content") + _num(row, "share_residual")
+    if _ok(pos, cont) and pos < th.CONTENT_MAX_POSITIONAL and cont >= th.CONTENT_MIN_SHARE:
+        return (f"distance+slot {_f(pos)} < {th.CONTENT_MAX_POSITIONAL}, content+residual "
+                f"{_f(cont)} ≥ {th.CONTENT_MIN_SHARE}")
+    return None
+
+
+# Colours: derived from the Okabe & Ito (2008) colour-blind-safe set (common practice; hex values from memory),
+# assigned to our roles in our own order.
+_BUILTIN = (
+    RoleSpec("induction", f"induction score ≥ {th.INDUCTION_SCORE} on repeated random tokens",
+             "copies: attends to the token after the earlier copy of the current token",
+             _induction, "#F0E442", "induct", "In", "induction", 10),
+    RoleSpec("previous-token", f"mass.previous ≥ {th.NEIGHBOUR_MASS}", "at least half the weight on the token just before",
+             _previous, "#0072B2", "prev", "Pv", "mass_previous", 20),
+    RoleSpec("next-token", f"mass.next ≥ {th.NEIGHBOUR_MASS}", "at least half the weight on the token just after (encoders)",
+             _next, "#56B4E9", "next", "Nx", "mass_next", 30),
+    RoleSpec("anchor", f"mean weight on one slot (queries ≥ {th.ANCHOR_MIN_DISTANCE} tokens away) ≥ {th.ANCHOR_WEIGHT}",
+             "a large share of weight on one fixed slot whatever the query (first token, template slot)",
+             _anchor, "#D55E00", "anchor", "An", "anchor_weight", 40),
+    RoleSpec("local", f"slope ≥ {th.LOCAL_SLOPE} per token and shares.distance ≥ {th.LOCAL_SHARE}",
+             "scores fall with distance, and distance explains much of their variance",
+             _local, "#009E73", "local", "Lo", "share_distance", 50),
+    RoleSpec("counting", f"entropy ≥ {th.COUNTING_ENTROPY} × log(visible keys) (causal models)",
+             "near-uniform over the causal prefix — the architecture's default; compare with an untrained copy",
+             _counting, "#E69F00", "count", "Ct", "entropy_ratio", 60),
+    RoleSpec("content", (f"shares.distance + shares.slot < {th.CONTENT_MAX_POSITIONAL} and shares.content + "
+                         f"shares.residual ≥ {th.CONTENT_MIN_SHARE}"),
+             "position explains little; key content and query–key interaction explain most",
+             _content, "#CC79A7", "content", "Co", "share_content", 70),
+    RoleSpec(FALLBACK, "none of the above", "no criterion holds", None, "#8C8C8C", "mixed", "Mx",
+             "share_residual", 1000),
+)
+
+_REGISTRY: dict[str, RoleSpec] = {s.name: s for s in _BUILTIN}
+
+
+def specs() -> list[RoleSpec]:
+    """Every role, in precedence order (most specific first; the fallback last)."""
+    return sorted(_REGISTRY.values(), key=lambda s: (s.rank, s.name))
+
+
+def names() -> tuple[str, ...]:
+    """Role names in precedence order."""
+    return tuple(s.name for s in specs())
+
+
+def get(name: str) -> RoleSpec | None:
+    """The spec of a role, or None for a name that is not a role."""
+    return _REGISTRY.get(name)
+
+
+def register(spec: RoleSpec, *, replace: bool = False) -> RoleSpec:
+    """Add a role (or, with ``replace``, change one). Its check then runs for every head of every new head table."""
+    if spec.name in _REGISTRY and not replace:
+        raise ValueError(f"the role {spec.name!r} exists; pass replace=True to change it")
+    if spec.name != FALLBACK and spec.check is None:
+        raise ValueError(f"the role {spec.name!r} needs a check")
+    _REGISTRY[spec.name] = spec
+    return spec
+
+
+def unregister(name: str) -> None:
+    if name == FALLBACK:
+        raise ValueError("the fallback role cannot be removed")
+    _REGISTRY.pop(name, None)
+
+
+def registered(spec: RoleSpec) -> ContextManager[RoleSpec]:
+    """A role that exists for the duration of the block (for tests and experiments)."""
+    return temporarily(_REGISTRY, spec, register)
+
+
+def criteria(row: Mapping[str, Any], causal: bool = True) -> dict[str, str]:
+    """The roles whose criterion holds for one head (in precedence order), each with its evidence sentence."""
+    ctx = HeadContext(causal=bool(causal))
+    out: dict[str, str] = {}
+    for s in specs():
+        if s.check is not None:
+            ev = s.check(row, ctx)
+            if ev:
+                out[s.name] = ev
+    return out
+
+
+def assign(row: Mapping[str, Any], causal: bool = True) -> tuple[str, list[str], str]:
+    """``(primary role, every role that holds, the primary role's evidence)`` for one head-table row."""
+    found = criteria(row, causal)
+    if not found:
+        parts = (f"prev {_f(_num(row, 'mass_previous'))}, first {_f(_num(row, 'mass_first'))}, "
+                 f"entropy {_f(_num(row, 'entropy_ratio'))}, slope {_f(_num(row, 'slope'), 3)}")
+        return FALLBACK, [FALLBACK], f"no criterion holds ({parts})"
+    tags = list(found)
+    return tags[0], tags, found[tags[0]]
+
+
+def readme_table() -> str:
+    """The README's role table (Markdown), from the specs."""
+    rows = ["| role | criterion |", "|---|---|"] + [f"| `{s.name}` | {s.rule} |" for s in specs()]
+    return "\n".join(rows)

@@ -1,0 +1,99 @@
+"""`BandsResult`: per RoPE head, the share of q·k energy carried by each rotary frequency pair (see
+:mod:`attnpos.bands` for the method)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+from ..core import keys
+from ..core.protocol import Result
+
+CAUTION = ("Energy shares say which rotary frequencies carry a head's scores on these texts, which is evidence, "
+           "not explanation: confirm with an intervention (e.g. zeroing the pairs of one band and re-running).")
+
+
+@dataclass(repr=False, eq=False)
+class BandsResult(Result):
+    """``heads``: one dict per RoPE head (``stack``, ``layer``, ``head``, ``shares`` per pair, ``unrotated_share``,
+    ``high_share``, ``low_share``, ``beyond_context_share``, ``dominant_pair``, ``dominant_wavelength``, ``band``);
+    ``pairs``: one dict per rotary pair (``pair``, ``dims``, ``theta``, ``wavelength``, ``band``); ``layout``
+    (``"half"`` or ``"interleaved"``), ``rotary_dims``, ``head_dim``, ``context`` (the longest text), and how
+    energy and bands are defined."""
+
+    result_kind = "bands"
+    version = 1
+
+    heads: list[dict]
+    pairs: list[dict]
+    layout: str
+    rotary_dims: int
+    head_dim: int
+    context: int
+    n_texts: int
+    model: dict = field(default_factory=dict)
+    definitions: dict = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+    source: str = "Barbero et al. 2025"
+    caution: str = CAUTION
+
+    def by_band(self) -> dict[str, list[str]]:
+        """Head keys per band (``high``, ``low``, ``spread``)."""
+        out: dict[str, list[str]] = {"high": [], "low": [], "spread": []}
+        for h in self.heads:
+            out.setdefault(h["band"], []).append(keys.head_key(h["stack"], h["layer"], h["head"]))
+        return out
+
+    def headline(self) -> str:
+        counts = ", ".join(f"{b} {len(v)}" for b, v in self.by_band().items())
+        return f"RoPE frequency bands of {len(self.heads)} heads ({len(self.pairs)} pairs each): {counts}"
+
+    def table(self) -> pd.DataFrame:
+        cols = ["key", "stack", "layer", "head", "band", "high_share", "low_share", "beyond_context_share",
+                "dominant_pair", "dominant_wavelength", "unrotated_share"]
+        rows = [{"key": keys.head_key(h["stack"], h["layer"], h["head"]), **{c: h.get(c) for c in cols[1:]}}
+                for h in self.heads]
+        return pd.DataFrame(rows, columns=cols)
+
+    def summary_lines(self) -> list[str]:
+        """Terminal lines: the bands and the heads in each (listed compactly, per layer)."""
+        s = self.by_band()
+        hi = [p for p in self.pairs if p["band"] == "high"]
+        lo = [p for p in self.pairs if p["band"] == "low"]
+        fmt = lambda ps: (f"pairs {ps[0]['pair']}–{ps[-1]['pair']}, wavelengths "   # noqa: E731
+                          f"{min(p['wavelength'] for p in ps):.3g}–{max(p['wavelength'] for p in ps):.3g} tokens"
+                          if ps else "—")
+        return [f"RoPE bands ({len(self.pairs)} pairs per head, {self.layout} layout; energy = mean squared pair "
+                "contribution to q·k):",
+                f"  high band ({fmt(hi)}): {keys.compact(s['high']) or 'no head'}",
+                f"  low band ({fmt(lo)}): {keys.compact(s['low']) or 'no head'}",
+                f"  spread: {keys.compact(s['spread']) or 'no head'}"]
+
+    def text(self) -> str:
+        return "\n".join(self.summary_lines() + [f"notice: {n}" for n in self.notes] + [f"note: {self.caution}"])
+
+    def payload(self) -> dict:
+        return {"model": self.model, "heads": self.heads, "pairs": self.pairs, "layout": self.layout,
+                "rotary_dims": self.rotary_dims, "head_dim": self.head_dim, "context": self.context,
+                "n_texts": self.n_texts, "definitions": self.definitions, "notes": self.notes, "source": self.source}
+
+    legacy_keys = frozenset({"pairs", "layout", "heads"})
+
+    @classmethod
+    def from_v0(cls, data: dict) -> dict:
+        data["definitions"] = {"energy": data.pop("energy", None), "bands": data.pop("bands", None)}
+        data.pop("summary", None)
+        return data
+
+    @classmethod
+    def from_payload(cls, data: dict) -> "BandsResult":
+        heads = [dict(h) for h in data["heads"]]
+        for h in heads:
+            h["stack"] = keys.normal_stack(h["stack"])
+            int(h["layer"]), int(h["head"])
+        return cls(heads=heads, pairs=[dict(p) for p in data["pairs"]], layout=str(data["layout"]),
+                   rotary_dims=int(data["rotary_dims"]), head_dim=int(data["head_dim"]), context=int(data["context"]),
+                   n_texts=int(data.get("n_texts") or 0), model=dict(data.get("model") or {}),
+                   definitions=dict(data.get("definitions") or {}), notes=list(data.get("notes") or []),
+                   source=str(data.get("source") or "Barbero et al. 2025"), caution=data.get("caution", CAUTION))

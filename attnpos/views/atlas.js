@@ -19,11 +19,7 @@ function atlasRender({ model, el }) {
     const K = (grid.fields || []).length;
     const S = n ? Math.round(spark.length / n) : 0;
     const rows = grid.rows || [];
-    const keys = [];
-    for (let i = 0; i < n; i++) {
-      const r = Math.floor(cells[i] / grid.n_cols), c = cells[i] % grid.n_cols;
-      keys.push(rows[r] ? rows[r].key + ".H" + c : "?");
-    }
+    const keys = model.get("cell_keys") || [];   // formatted in Python (attnpos.core.keys): one grammar everywhere
     return { grid, roles, cells, nums, spark, n, K, S, rows, keys,
              evidence: model.get("evidence") || [], tags: model.get("tags") || [],
              verdicts: model.get("verdicts") || [] };

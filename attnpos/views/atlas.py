@@ -40,6 +40,7 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
     evidence = t.List(t.Unicode()).tag(sync=True)
     tags = t.List(t.Unicode()).tag(sync=True)
     verdicts = t.List(t.Unicode()).tag(sync=True)
+    cell_keys = t.List(t.Unicode()).tag(sync=True)
     marks = t.Dict().tag(sync=True)
     selected = t.Unicode("").tag(sync=True)
     caution = t.Unicode("").tag(sync=True)
@@ -70,6 +71,7 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
             self.evidence = d["evidence"]
             self.tags = d["tags"]
             self.verdicts = d["verdicts"]
+            self.cell_keys = list(d["keys"])
             self.caution = scan.caution or ""
 
     @property

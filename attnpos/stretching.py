@@ -328,6 +328,9 @@ def _band_verdict(heads: list[dict], vname: str) -> dict:
     else:
         follows = rl > rh
         why = (f"low-band heads break at {rl:.0%} ({lo[0]}/{lo[1]}), high-band heads at {rh:.0%} ({hi[0]}/{hi[1]})")
+    if exp_b and exp_k:
+        why += (f"; energy-weighted change of rotation speed: broken heads {np.mean(exp_b):.2f} octaves, kept "
+                f"{np.mean(exp_k):.2f}")
     return {"counts": {b: {"broken": c[0], "heads": c[1]} for b, c in counts.items()}, "follows": follows,
             "low_share_broken": _f(np.mean(low_b)) if low_b else None,
             "low_share_kept": _f(np.mean(low_k)) if low_k else None,

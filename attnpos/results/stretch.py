@@ -117,6 +117,33 @@ class StretchResult(Result):
             data[v["name"]] = v["loss"] if v.get("loss") is not None else [None] * len(self.position)
         return pd.DataFrame(data).astype(float)
 
+    def rotation_table(self) -> pd.DataFrame:
+        """One row per rotary pair (fastest first): its band and wavelength, and per variant the ratio of its
+        frequency to the original (1 = untouched) and whether it reaches angles never seen in training."""
+        rows = []
+        for p in self.pairs:
+            r = {"pair": p["pair"], "band": p["band"], "wavelength": p["wavelength"]}
+            for n in self.variant_names:
+                r[f"{n} ratio"] = (p.get("ratio") or {}).get(n)
+                r[f"{n} unseen"] = (p.get("unseen") or {}).get(n)
+            rows.append(r)
+        return pd.DataFrame(rows)
+
+    def head_bands(self) -> pd.DataFrame:
+        """One row per head: its band, high/low energy shares, and per variant break/keep and the energy-weighted
+        change of rotation speed (octaves)."""
+        rows = []
+        for h in self.ranked():
+            r = {"key": h["key"], "band": h.get("band"), "high_share": h.get("high_share"),
+                 "low_share": h.get("low_share"), "n_broken": h["n_broken"]}
+            for n in self.variant_names:
+                c = h["variants"][n]
+                r[n] = "break" if c["broken"] else "keep"
+                r[f"{n} exposure"] = c.get("exposure")
+                r[f"{n} unseen"] = c.get("unseen_share")
+            rows.append(r)
+        return pd.DataFrame(rows)
+
     def text(self) -> str:
         """The terminal report."""
         m, s, L = self.model, self.settings, self.training_length

@@ -39,21 +39,21 @@ function stSmooth(y, k) {
 function stLossChart(meta, values) {
   const W = 640, H = 260, ml = 48, mr = 12, mt = 12, mb = 34, n = meta.n, x0 = meta.first_position, x1 = x0 + n - 1;
   const svg = stSvg("svg", { width: W, height: H, class: "st-loss", role: "img", "aria-label": "loss by position" });
+  const k = Math.max(1, Math.floor(n / 64));
+  const sm = meta.names.map((_, vi) => [0, 1, 2].map((j) => stSmooth(values.subarray((3 * vi + j) * n, (3 * vi + j + 1) * n), k)));
   let lo = 0, hi = -Infinity;
-  for (const v of values) if (Number.isFinite(v)) hi = Math.max(hi, v);
+  for (const series of sm) for (const arr of series) for (const v of arr) if (Number.isFinite(v)) hi = Math.max(hi, v);
   if (!Number.isFinite(hi) || hi <= lo) hi = lo + 1;
   const X = (p) => ml + (W - ml - mr) * (p - x0) / Math.max(x1 - x0, 1e-9);
   const Y = (v) => mt + (H - mt - mb) * (1 - (v - lo) / (hi - lo));
   svg.appendChild(stSvg("rect", { x: ml, y: mt, width: W - ml - mr, height: H - mt - mb, fill: "#FFFFFF", stroke: "#DDD8CE" }));
-  const k = Math.max(1, Math.floor(n / 64));
   meta.names.forEach((name, vi) => {
-    const loss = values.subarray((3 * vi) * n, (3 * vi + 1) * n), l = values.subarray((3 * vi + 1) * n, (3 * vi + 2) * n),
-      h = values.subarray((3 * vi + 2) * n, (3 * vi + 3) * n), colour = meta.colours[vi];
+    const [loss, l, h] = sm[vi], colour = meta.colours[vi];
     const top = [], bottom = [];
     for (let i = 0; i < n; i++) if (Number.isFinite(l[i]) && Number.isFinite(h[i])) { bottom.push(X(x0 + i).toFixed(1) + "," + Y(l[i]).toFixed(1)); top.push(X(x0 + i).toFixed(1) + "," + Y(h[i]).toFixed(1)); }
     if (top.length > 1) svg.appendChild(stSvg("polygon", { points: bottom.concat(top.reverse()).join(" "), fill: colour, "fill-opacity": 0.14 }));
-    const sm = stSmooth(loss, k), pts = [];
-    for (let i = 0; i < n; i++) if (Number.isFinite(sm[i])) pts.push(X(x0 + i).toFixed(1) + "," + Y(sm[i]).toFixed(1));
+    const pts = [];
+    for (let i = 0; i < n; i++) if (Number.isFinite(loss[i])) pts.push(X(x0 + i).toFixed(1) + "," + Y(loss[i]).toFixed(1));
     const line = stSvg("polyline", { points: pts.join(" "), fill: "none", stroke: colour, "stroke-width": 1.7, class: "st-line", "data-variant": name });
     line.appendChild(stSvg("title", {}, name));
     svg.appendChild(line);
@@ -90,9 +90,9 @@ function stProfileChart(meta, prof, hi_) {
     line.appendChild(stSvg("title", {}, s === 0 ? "unscaled, inside the training length" : meta.names[s - 1]));
     svg.appendChild(line);
   }
-  for (let b = 0; b < B; b += Math.max(1, Math.floor(B / 6))) svg.appendChild(stSvg("text", { x: X(b), y: H - mb + 13, "font-size": 9.5, "text-anchor": "middle", fill: "#6B6F75" }, meta.bucket_labels[b]));
+  for (let b = 0; b < B; b += Math.max(1, Math.floor(B / 6))) svg.appendChild(stSvg("text", { x: X(b), y: H - mb + 13, "font-size": 9.5, "text-anchor": "middle", fill: "#6B6F75" }, meta.bucket_ticks[b]));
   for (const v of [lo, hi]) svg.appendChild(stSvg("text", { x: ml - 4, y: Y(10 ** v) + 3, "font-size": 9.5, "text-anchor": "end", fill: "#6B6F75" }, (10 ** v).toPrecision(2)));
-  svg.appendChild(stSvg("text", { x: (ml + W - mr) / 2, y: H - 3, "font-size": 10, "text-anchor": "middle", fill: "#6B6F75" }, "distance (tokens); weight per key, log scale"));
+  svg.appendChild(stSvg("text", { x: (ml + W - mr) / 2, y: H - 3, "font-size": 10, "text-anchor": "middle", fill: "#6B6F75" }, "distance (tokens, bucket start); weight per key, log scale"));
   return svg;
 }
 
@@ -105,7 +105,7 @@ function stRender({ model, el }) {
     if (!meta.names) { root.appendChild(stEl("p", "st-none", "Nothing measured.")); return; }
     const legend = stEl("div", "st-legend");
     meta.names.forEach((n, i) => { const s = stEl("span", "st-key"); const sw = stEl("i"); sw.style.background = meta.colours[i]; s.appendChild(sw); s.appendChild(document.createTextNode(n)); legend.appendChild(s); });
-    root.appendChild(stEl("div", "st-title", "per-position loss, every variant (90% bands)"));
+    root.appendChild(stEl("div", "st-title", "per-position loss, every variant (lines and 90% bands as running means)"));
     root.appendChild(legend);
     root.appendChild(stLossChart(meta, stFloats(model.get("loss_values"))));
     root.appendChild(stEl("div", "st-title", "heads × variants past the training length (click a head)"));

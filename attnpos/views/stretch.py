@@ -77,6 +77,7 @@ def stretch_data(result) -> dict:
     labels = []
     for a, b in zip(edges[:-1], edges[1:]):
         labels.append(str(a) if b - a == 1 else f"{a}–{b - 1}")
+    ticks = [str(a) for a in edges[:-1]]
     prof = np.full((len(heads), 1 + len(names), len(edges) - 1), np.nan)
     for i, h in enumerate(heads):
         prof[i, 0] = nan(h["reference"]["profile"])
@@ -86,7 +87,7 @@ def stretch_data(result) -> dict:
              "cells": [{"broken": bool(h["variants"][n]["broken"]), "role": h["variants"][n]["role"],
                         "reasons": list(h["variants"][n]["reasons"])} for n in names]} for h in heads]
     return {"position": np.asarray(result.position, float), "variants": variants, "heads": rows, "profiles": prof,
-            "bucket_labels": labels, "training_length": result.training_length, "to": result.to,
+            "bucket_labels": labels, "bucket_ticks": ticks, "training_length": result.training_length, "to": result.to,
             "names": names, "caution": result.caution}
 
 
@@ -101,7 +102,9 @@ def loss_svg(d: dict, width: int = 640, height: int = 260) -> str:
     """The loss curves of every variant on one plot, the training length as a dashed line."""
     ml, mr, mt, mb = 48, 12, 12, 34
     x = d["position"]
-    ys = [v[k] for v in d["variants"] for k in ("lo", "hi", "loss") if v[k] is not None]
+    k_s = max(1, len(x) // 64)
+    sm = {(v["name"], k): _smooth(v[k], k_s) for v in d["variants"] for k in ("lo", "hi", "loss") if v[k] is not None}
+    ys = list(sm.values())
     finite = np.concatenate([a[np.isfinite(a)] for a in ys]) if ys else np.array([0.0, 1.0])
     lo, hi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
     lo = min(0.0, lo)
@@ -119,14 +122,15 @@ def loss_svg(d: dict, width: int = 640, height: int = 260) -> str:
         if v["loss"] is None:
             continue
         if v["lo"] is not None and v["hi"] is not None:
+            lo_s, hi_s = sm[(v["name"], "lo")], sm[(v["name"], "hi")]
             sel = np.arange(0, len(x), step)
-            ok = [k for k in sel if np.isfinite(v["lo"][k]) and np.isfinite(v["hi"][k])]
+            ok = [k for k in sel if np.isfinite(lo_s[k]) and np.isfinite(hi_s[k])]
             if len(ok) > 1:
-                pts = [f"{X(x[k]):.1f},{Y(v['lo'][k]):.1f}" for k in ok] + \
-                      [f"{X(x[k]):.1f},{Y(v['hi'][k]):.1f}" for k in reversed(ok)]
+                pts = [f"{X(x[k]):.1f},{Y(lo_s[k]):.1f}" for k in ok] + \
+                      [f"{X(x[k]):.1f},{Y(hi_s[k]):.1f}" for k in reversed(ok)]
                 out.append(f"<polygon points='{' '.join(pts)}' fill='{v['colour']}' fill-opacity='0.14'/>")
-        sm = _smooth(v["loss"], max(1, len(x) // 64))
-        out.append(f"<polyline class='st-line' data-variant='{_esc(v['name'])}' points='{_polyline(x[::step], sm[::step], X, Y)}' "
+        line = sm[(v["name"], "loss")]
+        out.append(f"<polyline class='st-line' data-variant='{_esc(v['name'])}' points='{_polyline(x[::step], line[::step], X, Y)}' "
                    f"fill='none' stroke='{v['colour']}' stroke-width='1.7'/>")
     L = d["training_length"]
     if _finite(L):
@@ -188,12 +192,12 @@ def profile_svg(d: dict, i: int, width: int = 330, height: int = 170) -> str:
                    f"<title>{_esc(name)}</title></polyline>")
     for b in range(0, B, max(1, B // 6)):
         out.append(f"<text x='{X(b):.1f}' y='{height - mb + 13}' font-size='9.5' text-anchor='middle' "
-                   f"fill='#6B6F75'>{_esc(d['bucket_labels'][b])}</text>")
+                   f"fill='#6B6F75'>{_esc(d['bucket_ticks'][b])}</text>")
     for v in (lo, hi):
         out.append(f"<text x='{ml - 4}' y='{Y(10 ** v) + 3:.1f}' font-size='9.5' text-anchor='end' "
                    f"fill='#6B6F75'>{10 ** v:.2g}</text>")
     out.append(f"<text x='{(ml + width - mr) / 2:.0f}' y='{height - 3}' font-size='10' text-anchor='middle' "
-               "fill='#6B6F75'>distance (tokens)</text>")
+               "fill='#6B6F75'>distance (tokens, bucket start)</text>")
     out.append("</svg>")
     return "".join(out)
 
@@ -247,7 +251,7 @@ def stretch_html(result, with_style: bool = True, max_cards: int = 32) -> str:
             if len(d["heads"]) > max_cards else "")
     style = f"<style>{STYLE}</style>" if with_style else ""
     return (f"{style}<div class='st-board'>"
-            f"<div class='st-title'>per-position loss, every variant (90% bands; smoothed over "
+            f"<div class='st-title'>per-position loss, every variant (lines and 90% bands as running means over "
             f"{max(1, len(d['position']) // 64)} positions)</div>{_legend(d)}{loss_svg(d)}"
             f"<div class='st-title'>heads × variants: break or keep past the training length (most often broken "
             f"first; click a head for its profiles)</div>{grid_html(d)}"
@@ -286,7 +290,7 @@ class StretchBoard(StaticFallback, anywidget.AnyWidget):
             self.meta = {"names": d["names"], "colours": [v["colour"] for v in d["variants"]],
                          "training_length": d["training_length"], "to": d["to"], "n": n,
                          "first_position": float(d["position"][0]) if n else 1.0,
-                         "heads": d["heads"], "bucket_labels": d["bucket_labels"],
+                         "heads": d["heads"], "bucket_labels": d["bucket_labels"], "bucket_ticks": d["bucket_ticks"],
                          "reference_colour": REFERENCE, "break_colour": BREAK, "keep_colour": KEEP}
             self.loss_values = np.concatenate(loss).astype("<f4").tobytes() if loss else b""
             self.profile_values = d["profiles"].astype("<f4").tobytes()

@@ -391,6 +391,10 @@ def stretch(subject, texts=None, *, to: int, scalings: Any = None,
             raise AttnposError(f"The scaling {v.name} is given twice; name each variant once.")
         variants.append(v)
     units, notes = sequences(subject, texts, to, n_sequences)
+    if any(v.kind == "dynamic" for v in variants):
+        notes.append("dynamic: transformers rescales the frequencies from the length of the whole sequence read, so "
+                     f"under it even the positions inside the training length are read with the {to}-token "
+                     "frequencies (its loss there differs from the unscaled model's).")
     n = len(units)
     edges_loss = bin_edges(to, L, bins)
     D = max(1, min(L // 2, SLOPE_MAX_DISTANCE))

@@ -225,3 +225,18 @@ def test_bad_input_is_refused_before_torch_loads(argv, message, tmp_path):
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, cwd=tmp_path)
     assert done.returncode == 0, done.stderr
     assert message in done.stderr and "Traceback" not in done.stderr
+
+
+def test_command_line_run_writes_json_and_report(tmp_path, capsys):
+    from attnpos.cli import main
+    from attnpos.core.protocol import load
+
+    rc = main(["stretch", "ref:rope", "--to", "160", "--scaling", "linear:2", "--sequences", "2", "--boot", "5",
+               "--quiet", "--json", str(tmp_path / "s.json"), "--report", str(tmp_path / "s.html")])
+    assert rc == 0
+    printed = capsys.readouterr().out
+    assert "linear:2" in printed and "heads, most often broken first" in printed
+    res = load(tmp_path / "s.json")
+    assert res.result_kind == "stretch" and res.variant_names == ["unscaled", "linear:2"]
+    assert "st-grid" in (tmp_path / "s.html").read_text()
+    assert callable(attnpos.stretch)

@@ -240,3 +240,17 @@ def test_command_line_run_writes_json_and_report(tmp_path, capsys):
     assert res.result_kind == "stretch" and res.variant_names == ["unscaled", "linear:2"]
     assert "st-grid" in (tmp_path / "s.html").read_text()
     assert callable(attnpos.stretch)
+
+
+@pytest.mark.parametrize("arch,over", [("qwen2", {"num_key_value_heads": 2}), ("gpt_neox", {}), ("smollm3", {})])
+def test_other_rope_architectures_hold_the_variant_frequencies(arch, over, long_text):
+    # grouped-query heads (qwen2), partial rotary (GPT-NeoX rotates a quarter of each head), RoPE and no-position
+    # layers mixed (SmolLM3): the rebuilt model's rotary module holds exactly the frequencies of attnpos's formula
+    from attnpos.stretching import stretch
+
+    s = attnpos.from_model(tiny.build(arch, **over), tiny.tokenizer(), name=f"tiny-{arch}")
+    res = stretch(s, long_text, to=96, training_length=32, scalings=["linear:3", "yarn:3"], n_sequences=2, n_boot=0)
+    assert len(res.heads) == len(s.sites) * s.n_heads
+    for v in res.variants:
+        assert v["frequency_error"] is not None and v["frequency_error"] < 1e-5, (arch, v["name"])
+        assert np.isfinite(np.array(v["loss"][:-1], float)).all()     # the last target is the tokenizer's [SEP]

@@ -307,7 +307,8 @@ def _band_verdict(heads: list[dict], vname: str) -> dict:
         c = counts.setdefault(h.get("band") or "unknown", [0, 0])
         c[0] += int(cell["broken"])
         c[1] += 1
-        (exp_b if cell["broken"] else exp_k).append(cell.get("exposure") or 0.0)
+        if cell.get("exposure") is not None:          # heads of layers without RoPE have no bands
+            (exp_b if cell["broken"] else exp_k).append(cell["exposure"])
     lo, hi = counts.get("low"), counts.get("high")
     rate = lambda c: c[0] / c[1] if c and c[1] else None  # noqa: E731
     rl, rh = rate(lo), rate(hi)

@@ -9,7 +9,7 @@ Quick start::
 
 The pieces, in the order data flows: :func:`load` → :func:`record` → :class:`Split` / :class:`ShiftTest` /
 :func:`induction_scores` → :func:`head_table` → :class:`Scan` (views, report, findings); :func:`ablate` checks
-whether the model needs a head.
+whether the model needs a head; :func:`stretch` reruns a RoPE model under context-extension scalings.
 
 The names below are imported when first used, so reading a saved scan, the findings file or the views does not
 start torch (about 1.5 s).
@@ -33,6 +33,7 @@ _EXPORTS = {
     "record": "capture", "Recording": "capture", "Reducer": "capture",
     "Split": "split", "ShiftTest": "shift", "induction_scores": "induction", "head_table": "roles",
     "Scan": "results.scan", "scan": "pipeline", "ablate": "ablation", "load_result": "core.protocol",
+    "stretch": "stretching",
 }
 
 __all__ = ["AttnposError", *_EXPORTS, "__version__"]

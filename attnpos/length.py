@@ -179,7 +179,7 @@ def table_limit(subject) -> int | None:
     return None
 
 
-def _bin_edges(to: int, L: int | None, n_bins: int) -> np.ndarray:
+def bin_edges(to: int, L: int | None, n_bins: int) -> np.ndarray:
     """Edges over query positions 0 … to; when L is known, L (and its multiples) fall on edges."""
     if L and L < to:
         m = max(1, round(n_bins * L / to))
@@ -250,7 +250,9 @@ def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES) -> tuple[li
     return units, notes
 
 
-def _loss_table(units, token_loss) -> np.ndarray | None:
+def loss_table(units, token_loss) -> np.ndarray | None:
+    """(sequences, to − 1) per-position next-token losses, NaN where the target is a special token (None when a
+    sequence has no loss)."""
     if not token_loss or any(t is None for t in token_loss):
         return None
     rows = []
@@ -285,7 +287,7 @@ def _interval(boot: np.ndarray | None, sel=None) -> tuple[Any, Any]:
         return np.nanpercentile(x, 5, axis=0), np.nanpercentile(x, 95, axis=0)
 
 
-def _role_rows(subject, weights: dict) -> list[dict]:
+def role_rows(subject, weights: dict) -> list[dict]:
     """Per head, the weight-based statistics and the role they give (:mod:`attnpos.core.roles`)."""
     from .core import roles
     from .roles import weight_rows
@@ -339,9 +341,9 @@ def _mean(x, axis=None):
 
 
 def loss_summary(loss_tab: np.ndarray, edges: np.ndarray, to: int, L: int | None, n_boot: int,
-                 seed: int) -> tuple[list, list, list, dict, list[str]]:
-    """Per-position mean loss with its 90% interval, the loss at multiples of the training length and per bin of
-    positions; with the notes it calls for."""
+                 seed: int, at=LOSS_AT) -> tuple[list, list, list, dict, list[str]]:
+    """Per-position mean loss with its 90% interval, the loss at multiples ``at`` of the training length and per
+    bin of positions; with the notes it calls for."""
     notes, summary = [], {}
     mean = _mean(loss_tab, axis=0)
     boot = _bootstrap(loss_tab, n_boot, seed)
@@ -355,7 +357,7 @@ def loss_summary(loss_tab: np.ndarray, edges: np.ndarray, to: int, L: int | None
     if L:
         w = max(1, L // 4)
         la, la_int = {}, {}
-        for k in LOSS_AT:
+        for k in at:
             sel = (pos > k * L - w) & (pos <= k * L)
             if k * L <= to and sel.any():
                 la[f"{k}x"] = float(_mean(mean[sel]))
@@ -395,7 +397,7 @@ DRIFT_STATS = ("role", "tags", "mass_previous", "mass_next", "mass_first", "mass
 def role_drift(subject, range_weights: dict, heads: list[dict], bins: list[list[int]], L: int) -> tuple[list, dict]:
     """Each head's weight-based role inside and beyond the training length, and the heads whose curves change most
     between the bins inside and beyond it."""
-    ins, bey = _role_rows(subject, range_weights["inside"]), _role_rows(subject, range_weights["beyond"])
+    ins, bey = role_rows(subject, range_weights["inside"]), role_rows(subject, range_weights["beyond"])
     drift = [{"stack": a["stack"], "layer": a["layer"], "head": a["head"],
               "inside": {k: a["stats"][k] for k in DRIFT_STATS}, "beyond": {k: b["stats"][k] for k in DRIFT_STATS},
               "changed": a["stats"]["role"] != b["stats"]["role"]} for a, b in zip(ins, bey)]
@@ -447,7 +449,7 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
     to, notes = resolve_to(subject, to, L)
     units, snotes = sequences(subject, texts, to, n_sequences)
     notes += snotes
-    edges = _bin_edges(to, L, bins)
+    edges = bin_edges(to, L, bins)
     reducers: list[Reducer] = [PositionCurves(edges)]
     drift_on = L is not None and L < to
     if drift_on:
@@ -456,7 +458,7 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
         notes.append(f"--to {to} does not go past the training length {L}: nothing to compare beyond it.")
     want_loss = subject.causal and not subject.is_encoder_decoder
     rec = record(subject, units=units, reducers=reducers, token_loss=want_loss, progress=False)
-    loss_tab = _loss_table(units, rec.token_loss) if want_loss else None
+    loss_tab = loss_table(units, rec.token_loss) if want_loss else None
     summary: dict[str, Any] = {}
     if loss_tab is None:
         loss = lo = hi = None

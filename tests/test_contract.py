@@ -40,7 +40,7 @@ TEXTS = ["The ferry to the north island leaves at nine and returns at four, unle
 
 @pytest.fixture(scope="module")
 def results():
-    from attnpos import ablation, bands, compare, induction, length, probes, shift, split
+    from attnpos import ablation, bands, compare, induction, length, probes, shift, split, stretching
     from attnpos.reducers import SplitStats
     from attnpos.texts import as_raw, prepare
 
@@ -57,6 +57,8 @@ def results():
         "bands": bands.rope_bands(rope, TEXTS),
         "ablation": ablation.ablate(rope, ["L0.H1", "L1.H2"], TEXTS, n_boot=10),
         "compare": compare.compare_scans(scan, attnpos.scan(rope, TEXTS[:2], n_boot=10), all_heads=True),
+        "stretch": stretching.stretch(rope, TEXTS * 6, to=160, scalings=["linear:2", "yarn:2"], n_sequences=3,
+                                      n_boot=10),
     }
     scan.attach(out["length"])
     return out
@@ -167,7 +169,7 @@ def test_previous_result_files_load_as_their_class(kind):
 # ------------------------------------------------------------------------------------------------ reducers
 
 def _reducers():
-    from attnpos import bands, induction, length, reducers, shift
+    from attnpos import bands, induction, length, reducers, shift, stretching
 
     return {
         "weights": lambda: reducers.WeightStats(),
@@ -177,6 +179,7 @@ def _reducers():
         "bands": lambda: bands.BandEnergy(),
         "induction": lambda: induction._Induction(8, 1),
         "shift-base": lambda: shift._Keep(),
+        "stretch-stats": lambda: stretching.HeadRangeStats(12, stretching.profile_edges(64), 6),
     }
 
 

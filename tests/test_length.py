@@ -96,7 +96,7 @@ def test_training_length_sources():
 
 
 def test_bins_put_the_training_length_on_an_edge():
-    edges = length_mod._bin_edges(512, 128, 16)
+    edges = length_mod.bin_edges(512, 128, 16)
     assert 128 in edges and 256 in edges and edges[0] == 0 and edges[-1] == 512
     assert 10 <= len(edges) - 1 <= 24
 

@@ -1,4 +1,4 @@
-"""The command line: ``attnpos scan | probe | length | ablate | compare | train | reference``.
+"""The command line: ``attnpos scan | probe | length | stretch | ablate | compare | train | reference``.
 
 One module per sub-command in this package, each with ``add_arguments(parser)``,
 ``check(args)`` — every check that needs no model: output paths, input files, head keys, numbers, the model folder
@@ -18,13 +18,15 @@ import warnings
 
 from ..errors import AttnposError
 
-COMMANDS = ("scan", "probe", "length", "ablate", "compare", "train", "reference")
+COMMANDS = ("scan", "probe", "length", "stretch", "ablate", "compare", "train", "reference")
 
 _HELP = {
     "scan": "scan a model: per-head masses, score split, slope, shift test, induction, roles",
     "probe": "ridge probes for absolute position per layer, with a shuffled control and an untrained copy",
     "length": "behaviour past the training length: per-position loss, entropy and first-token weight per head, "
               "role drift",
+    "stretch": "what-if context extension: rerun a RoPE model under linear / dynamic / YaRN / Llama 3 scaling; loss "
+               "per position of each and which heads break past the training length",
     "ablate": "ablate heads one at a time: change of loss (with an interval) and of the final hidden states — the "
               "intervention that backs a role",
     "compare": "compare two checkpoints head by head: role, score-split shares and slope changes beyond their "

@@ -1,5 +1,5 @@
 """The result protocol: every stage's result (scan, split, shift, induction, probe, length, bands, ablation,
-compare, …) is a :class:`Result` with the same surface.
+compare, stretch, …) is a :class:`Result` with the same surface.
 
 * ``to_json()`` / ``from_json(data_or_path)`` — a JSON-safe dict with ``"schema": "attnpos.<kind>/<version>"``;
   files written by an earlier version of a result load through that class's :meth:`Result.upgrade`.
@@ -237,6 +237,7 @@ _CLASSES: dict[str, type | str] = {
     "bands": "attnpos.results.bands:BandsResult",
     "ablation": "attnpos.results.ablation:AblationResult",
     "compare": "attnpos.results.compare:CompareResult",
+    "stretch": "attnpos.results.stretch:StretchResult",
 }
 
 

@@ -22,3 +22,10 @@ ABLATION_BOOT = 200
 
 #: training context of the reference models, in tokens (attnpos train --context)
 REFERENCE_CONTEXT = 128
+
+#: sequences cut from the texts, at most (attnpos stretch --sequences); each variant reads all of them
+STRETCH_SEQUENCES = 8
+#: bootstrap resamples over sequences for the loss and head-statistic intervals (attnpos stretch --boot)
+STRETCH_BOOT = 200
+#: texts (cut to the training length) on which the RoPE bands of the unscaled model are measured
+STRETCH_BAND_TEXTS = 4

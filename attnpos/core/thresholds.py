@@ -43,3 +43,21 @@ SHIFT_ABSOLUTE = 0.15
 SHIFT_OFFSET = 32          # positions added to every position id (or neutral tokens placed before the text)
 SHIFT_MAX_TOKENS = 192     # the shift test looks at the first tokens of each text only
 SHIFT_MAX_TEXTS = 4
+
+# stretch (attnpos stretch): a head "breaks" under a context-extension variant when its weight-based role changes,
+# or when one of these statistics, measured on the queries past the training length under the variant, differs from
+# the same head's value on the queries inside the training length of the unscaled model by at least this much AND
+# the two 90% bootstrap intervals (sequences resampled) do not overlap. The intervals keep noise from counting as a
+# break; the sizes keep a tiny but precisely measured shift from counting as one.
+# previous-token mass and first-token (sink) weight: 0.15 of the query's weight, under a third of NEIGHBOUR_MASS —
+# a previous-token head at 0.8 that drops to 0.65 still does its job, one that loses 0.15 or more is visibly weaker.
+STRETCH_MASS = 0.15
+# entropy ratio (1 = uniform over the visible keys): 0.15, a sixth of COUNTING_ENTROPY — the step from a focused head
+# (0.3) to a diffuse one (0.45) is about what spreads a clear pattern over many more keys.
+STRETCH_ENTROPY = 0.15
+# slope of the scores over distance (per token, positive when scores fall): a change of at least half the head's own
+# slope at the training length (its distance preference halved or grown by half — the slopes of trained heads span
+# more than a factor 10, so a fixed size would flag every steep head and none of the flat ones), and never less than
+# LOCAL_SLOPE, the whole criterion that makes a head local.
+STRETCH_SLOPE = LOCAL_SLOPE
+STRETCH_SLOPE_RATIO = 0.5

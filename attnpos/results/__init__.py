@@ -15,5 +15,6 @@ kind           class                                       made by
 ``bands``      :class:`~attnpos.results.bands.BandsResult`  :func:`attnpos.bands.rope_bands`
 ``ablation``   :class:`~attnpos.results.ablation.AblationResult`  :func:`attnpos.ablate`
 ``compare``    :class:`~attnpos.results.compare.CompareResult`  :func:`attnpos.compare.compare`
+``stretch``    :class:`~attnpos.results.stretch.StretchResult`  :func:`attnpos.stretching.stretch`
 =============  ==========================================  =====================================
 """

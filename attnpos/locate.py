@@ -116,4 +116,107 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
         raise AttnposError(f"The folder {p} ships its own modelling code (auto_map / *.py). attnpos never runs code "
                            "from a model folder unless you ask: pass trust_remote_code=True (CLI: "
                            "--trust-remote-code) only if you trust its author.")
+    problem = head_count_problem(cfg)
+    if problem:
+        raise AttnposError(f"{p}/config.json has {problem}. transformers' own forward pass rejects such a config (or "
+                           "runs it wrong); fix the head counts in config.json, or re-save the model that works.")
+    problem = position_config_problem(cfg)
+    if problem:
+        raise AttnposError(f"{p}/config.json: {problem}")
     return Located(path=p, name=name, config=cfg, safetensors=weights_are_safetensors(p, allow_pickle), reference=ref)
+
+
+# ------------------------------------------------------------------------------- config and tensor checks
+# (each one a function of its own: what a config or a weights file says that transformers would silently run
+# differently or reject later; the capture and load call them again on a model built in memory)
+
+_HEADS = ("num_attention_heads", "n_head", "num_heads", "n_heads", "encoder_attention_heads", "decoder_attention_heads")
+_KV_HEADS = ("num_key_value_heads", "num_kv_heads", "n_head_kv", "n_kv_heads")
+_HIDDEN = ("hidden_size", "n_embd", "d_model", "dim")
+_HEAD_DIM = ("head_dim", "d_kv", "attention_head_size", "kv_channels")
+RELATIVE_KEY_TYPES = ("relative_key", "relative_key_query")
+
+
+def _sub_configs(cfg: dict) -> list[dict]:
+    """The config and the configs nested in it (text_config, encoder, decoder, …)."""
+    out, todo = [], [cfg]
+    while todo:
+        c = todo.pop()
+        out.append(c)
+        todo.extend(v for v in c.values() if isinstance(v, dict) and ("model_type" in v or any(h in v for h in _HEADS)))
+    return out
+
+
+def _int(v) -> int | None:
+    return v if isinstance(v, int) and not isinstance(v, bool) else None
+
+
+def head_count_problem(cfg: dict) -> str | None:
+    """What is wrong with a config's head counts that transformers' own forward would reject (or silently run
+    wrong), or None: key/value heads that do not divide the query heads (the grouped-query repeat factor would be
+    fractional or 0), or a hidden size the heads do not divide where the head width is derived from it."""
+    for c in _sub_configs(cfg):
+        heads = next((_int(c.get(k)) for k in _HEADS if _int(c.get(k)) is not None), None)
+        if heads is None:
+            continue
+        if heads <= 0:
+            return f"{heads} attention heads; a model needs at least one"
+        kv = next((_int(c.get(k)) for k in _KV_HEADS if _int(c.get(k)) is not None), None)
+        if kv is not None and (kv <= 0 or kv > heads or heads % kv):
+            return (f"{kv} key/value heads for {heads} query heads; grouped-query attention shares each key/value "
+                    "head among a whole number of query heads, so the key/value heads must divide the query heads")
+        hidden = next((_int(c.get(k)) for k in _HIDDEN if _int(c.get(k)) is not None), None)
+        explicit = any(_int(c.get(k)) for k in _HEAD_DIM)
+        if hidden is not None and not explicit and hidden % heads:
+            return (f"a hidden size of {hidden} split into {heads} heads; with no head_dim given, each head's width "
+                    "is hidden size / heads, so the heads must divide the hidden size")
+    return None
+
+
+def position_config_problem(cfg: dict) -> str | None:
+    """A position encoding the config asks for that transformers 5 no longer implements, or None. BERT-family
+    ``position_embedding_type`` ``relative_key``/``relative_key_query`` (Shaw et al. 2018; Huang et al. 2020) is kept
+    in the config but ignored by transformers 5, which runs the model with its absolute table only."""
+    for c in _sub_configs(cfg):
+        pet = c.get("position_embedding_type")
+        if pet in RELATIVE_KEY_TYPES:
+            return (f"position_embedding_type={pet!r} asks for learned relative-position embeddings inside "
+                    "attention, which transformers 5 no longer implements: it would run this checkpoint with its "
+                    "absolute position table only and drop the relative weights, so attnpos would measure a model "
+                    "that was never trained. attnpos refuses it; analyse a checkpoint with absolute positions "
+                    "(position_embedding_type='absolute'), or one of the schemes attnpos knows.")
+    return None
+
+
+POSITION_TENSOR_NAMES = ("distance_embedding",)
+"""Weight names of position encodings transformers 5 drops as unexpected when it loads the checkpoint."""
+
+
+def safetensors_names(file: Path) -> list[str]:
+    """The tensor names in a safetensors file, read from its JSON header (no tensor is loaded)."""
+    with open(file, "rb") as fh:
+        head = fh.read(8)
+        if len(head) < 8:
+            return []
+        n = int.from_bytes(head, "little")
+        if n <= 0 or n > 100 * 2**20:
+            return []
+        try:
+            header = json.loads(fh.read(n).decode("utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError):
+            return []
+    return [k for k in header if k != "__metadata__"] if isinstance(header, dict) else []
+
+
+def position_tensor_problem(p: Path) -> str | None:
+    """Tensors of a position encoding transformers would drop while loading the folder's safetensors, or None."""
+    found = []
+    for f in sorted(Path(p).glob("*.safetensors")):
+        found += [n for n in safetensors_names(f) if any(t in n.split(".") for t in POSITION_TENSOR_NAMES)]
+    if not found:
+        return None
+    return (f"the weights hold {len(found)} relative-position tensor(s) ({', '.join(found[:2])}"
+            f"{', …' if len(found) > 2 else ''}), learned relative-position embeddings inside attention (BERT's "
+            "relative_key variants). transformers 5 no longer implements them and would drop these weights "
+            "while loading, so attnpos would measure a model that was never trained; it refuses the checkpoint. "
+            "Analyse a checkpoint with absolute positions or one of the schemes attnpos knows.")

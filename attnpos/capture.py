@@ -357,6 +357,10 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
     if kwargs.get("s_aux") is not None or kwargs.get("sinks") is not None:
         raise AttnposError("This model uses attention sinks (learned extra logits); attnpos cannot capture it yet.")
     bsz, n_heads, q_len, d = query.shape
+    # weights kept in bfloat16/float16: the model's own eager attention computes the output it passes on (with its
+    # own rounding), and attnpos computes the scores and weights the reducers see in float32 beside it
+    own = _own_eager(module) if query.dtype != torch.float32 else None
+    given = (query, key, value, attention_mask, scaling)
     if key.shape[1] <= 0 or n_heads % key.shape[1]:
         raise AttnposError(f"An attention module hands over {n_heads} query heads and {key.shape[1]} key/value heads; "
                            "grouped-query attention needs the key/value heads to divide the query heads, and "
@@ -379,7 +383,7 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
     per_head = q_len * k_len * 4
     n_chunks = -(-n_heads // max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1))))
     chunk = -(-n_heads // n_chunks)          # equal chunks: 12 heads in 3 × 4 rather than 5 + 5 + 2
-    out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype)
+    out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype) if own is None else None
     neg_inf = torch.tensor(float("-inf"))
     # causal and square (the usual case): row blocks, each forming only the keys it may see
     blocks = causal_blocks(q_len) if pattern == "causal" and q_len == k_len else None
@@ -438,11 +442,22 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
                     wb.nan_to_num_(nan=0.0)  # rows with no allowed key
                 if blocks is not None:
                     w[:, r0:r1, :k1].copy_(wb)
-                torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
+                if own is None:
+                    torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
             if site is not None and b == 0:
                 run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True, blocks=blocks,
                             finite=finite, query=qb, key=kb)
+    if own is not None:
+        q0, k0, v0, m0, sc0 = given
+        return own(module, q0, k0, v0, m0, scaling=sc0, dropout=0.0, **kwargs)[0], None
     return out.transpose(1, 2).contiguous(), None
+
+
+def _own_eager(module):
+    """The eager attention function of the module's own modelling file (transformers' ``eager_attention_forward``),
+    or None where the architecture has none (the capture's float32 computation then produces the output)."""
+    fn = getattr(sys.modules.get(type(module).__module__), "eager_attention_forward", None)
+    return fn if callable(fn) else None
 
 
 @contextlib.contextmanager

@@ -1,8 +1,9 @@
 """Where a model argument points, checked before anything heavy starts (no torch, no transformers).
 
-:func:`locate` turns what a user typed — a folder written by ``save_pretrained`` or a shipped reference model
-``ref:<scheme>`` — into a :class:`Located` checkpoint: its folder, its display name, its raw config, and whether the
-weights are safetensors. Every problem a folder can have that needs no model to see (missing, no config, a config
+:func:`locate` turns what a user typed — a folder written by ``save_pretrained``, a shipped reference model
+``ref:<scheme>``, a hub id ``org/name`` already in the local hub cache (``HF_HUB_CACHE``, else ``HF_HOME/hub``, else
+``~/.cache/huggingface/hub``; nothing is downloaded), or a ``.gguf`` file — into a :class:`Located` checkpoint: its
+folder, its display name, its raw config, and whether the weights are safetensors. Every problem a folder can have that needs no model to see (missing, no config, a config
 that is not JSON, modelling code shipped inside, pickle-only weights, no weights) is an
 :class:`~attnpos.errors.AttnposError` here, so the command line refuses it in well under a second.
 
@@ -15,6 +16,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -37,6 +39,7 @@ class Located:
     config: dict
     safetensors: bool
     reference: bool = False
+    gguf: str | None = None         # the file name inside ``path`` of a GGUF checkpoint
 
 
 def reference_names() -> list[str]:
@@ -107,8 +110,12 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
            trust_remote_code: bool = False) -> Located:
     """Find and check the checkpoint ``path_or_name`` refers to (see the module doc)."""
     text = str(path_or_name)
+    if text.lower().endswith(".gguf"):
+        return locate_gguf(Path(text).expanduser())
     if text.startswith("ref:"):
         p, name, ref = reference_dir(text[4:]), text, True
+    elif looks_like_hub_id(text) and not Path(text).expanduser().exists():
+        p, name, ref = hub_snapshot(text), text, False
     else:
         (p, name), ref = _folder(text), False
     cfg = read_config(p)
@@ -220,3 +227,135 @@ def position_tensor_problem(p: Path) -> str | None:
             "relative_key variants). transformers 5 no longer implements them and would drop these weights "
             "while loading, so attnpos would measure a model that was never trained; it refuses the checkpoint. "
             "Analyse a checkpoint with absolute positions or one of the schemes attnpos knows.")
+
+
+# ------------------------------------------------------------------------------- the local hub cache
+
+HUB_ID_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,95}/[A-Za-z0-9][A-Za-z0-9._-]{0,95}(@[A-Za-z0-9._/-]{1,100})?\Z")
+
+
+def looks_like_hub_id(text: str) -> bool:
+    """``org/name`` (optionally ``@revision``): the way the hub names a model."""
+    return bool(HUB_ID_RE.match(text)) and ".." not in text
+
+
+def hub_cache() -> Path:
+    """The hub cache folder as the hub's own client finds it: ``HF_HUB_CACHE``, else ``HF_HOME/hub``, else
+    ``~/.cache/huggingface/hub`` (its documented layout: ``models--org--name/snapshots/<revision>/``, with
+    ``refs/main`` naming the revision — common practice of the hub client, from its documentation)."""
+    if os.environ.get("HF_HUB_CACHE"):
+        return Path(os.environ["HF_HUB_CACHE"]).expanduser()
+    home = os.environ.get("HF_HOME") or os.path.join(os.environ.get("XDG_CACHE_HOME", "~/.cache"), "huggingface")
+    return Path(home).expanduser() / "hub"
+
+
+def cached_models(cache: Path | None = None) -> list[str]:
+    """The ``org/name`` ids of the models in the hub cache that have at least one snapshot."""
+    cache = cache or hub_cache()
+    if not cache.is_dir():
+        return []
+    out = []
+    for d in sorted(cache.glob("models--*")):
+        if (d / "snapshots").is_dir() and any((d / "snapshots").iterdir()):
+            out.append(d.name[len("models--"):].replace("--", "/"))
+    return out
+
+
+def hub_snapshot(hub_id: str) -> Path:
+    """The snapshot folder of ``org/name[@revision]`` in the local hub cache; a clear error listing what is cached
+    when it is not there (nothing is ever downloaded)."""
+    repo, _, revision = hub_id.partition("@")
+    cache = hub_cache()
+    folder = cache / ("models--" + repo.replace("/", "--"))
+    snapshots = folder / "snapshots"
+    rev = revision or "main"
+    ref = folder / "refs" / rev
+    chosen = None
+    if ref.is_file():
+        chosen = snapshots / ref.read_text(encoding="utf-8").strip()
+    elif revision and (snapshots / revision).is_dir():
+        chosen = snapshots / revision
+    elif not revision and snapshots.is_dir():
+        found = [d for d in snapshots.iterdir() if d.is_dir()]
+        if len(found) == 1:
+            chosen = found[0]
+    if chosen is None or not (chosen / "config.json").is_file():
+        cached = cached_models(cache)
+        listing = ", ".join(cached[:12]) + (f" and {len(cached) - 12} more" if len(cached) > 12 else "")
+        what = f"revision {rev!r} of {repo}" if revision or folder.is_dir() else repo
+        raise AttnposError(f"There is no folder {hub_id!r}, and {what} is not in the local hub cache at {cache} "
+                           "(attnpos never downloads). "
+                           + (f"Cached there: {listing}. " if cached else "Nothing is cached there. ")
+                           + "Fetch it once where downloads are allowed (e.g. `hf download " + repo + "`), set "
+                           "HF_HOME or HF_HUB_CACHE to the cache that holds it, or give the model's folder.")
+    return chosen
+
+
+# ------------------------------------------------------------------------------- GGUF files
+
+GGUF_RENAMES = {"qwen2moe": "qwen2_moe", "qwen3moe": "qwen3_moe", "gpt-oss": "gpt_oss", "minimax-m2": "minimax_m2"}
+"""GGUF architecture names transformers maps to another name (transformers' modeling_gguf_pytorch_utils)."""
+
+
+def gguf_supported_architectures() -> list[str]:
+    """The GGUF architectures transformers can load (its GGUF config mapping; torch is not imported)."""
+    from transformers.integrations.ggml import GGUF_CONFIG_MAPPING
+
+    return sorted(k for k in GGUF_CONFIG_MAPPING if k not in ("general", "tokenizer"))
+
+
+def gguf_dequantisable() -> list[str]:
+    """The GGML tensor types the ``gguf`` package dequantises (tried on one zero block of each type)."""
+    import numpy as np
+    from gguf import GGML_QUANT_SIZES, GGMLQuantizationType, dequantize
+
+    ok = []
+    for q in GGMLQuantizationType:
+        block, size = GGML_QUANT_SIZES[q]
+        data = (np.zeros(block, np.float32) if q == GGMLQuantizationType.F32 else
+                np.zeros(block, np.float16) if q == GGMLQuantizationType.F16 else np.zeros(size, np.uint8))
+        try:
+            dequantize(data, q)
+        except (NotImplementedError, ValueError, KeyError, TypeError):
+            continue
+        ok.append(q.name)
+    return ok
+
+
+def gguf_facts(file: Path) -> tuple[str, list[str]]:
+    """The architecture and the tensor types of a GGUF file (read from its header; no tensor is dequantised)."""
+    try:
+        from gguf import GGUFReader
+    except ImportError:
+        raise AttnposError("Reading a .gguf file needs the `gguf` package (and `accelerate`): "
+                           "pip install 'attnpos[gguf]'.") from None
+    try:
+        reader = GGUFReader(str(file))
+        field = reader.fields["general.architecture"]
+        arch = bytes(field.parts[field.data[0]]).decode("utf-8")
+        types = sorted({t.tensor_type.name for t in reader.tensors})
+    except (KeyError, ValueError, OSError, IndexError, UnicodeDecodeError) as exc:
+        raise AttnposError(f"{file} cannot be read as a GGUF file ({type(exc).__name__}: {exc}); it is damaged or "
+                           "not GGUF. Export it again, or give a folder with config.json + safetensors.") from None
+    return arch, types
+
+
+def locate_gguf(file: Path) -> Located:
+    """A ``.gguf`` file transformers can load: an architecture it maps and tensor types ``gguf`` dequantises
+    (transformers dequantises every tensor when it loads GGUF; the model then runs in the loading dtype)."""
+    if not file.is_file():
+        raise AttnposError(f"No GGUF file at {file}. Give the path of an existing .gguf file.")
+    arch, types = gguf_facts(file)
+    known = gguf_supported_architectures()
+    if GGUF_RENAMES.get(arch, arch).replace("-", "_") not in known:
+        raise AttnposError(f"{file.name} holds a {arch!r} model; transformers loads GGUF files of these "
+                           f"architectures only: {', '.join(known)}. Convert the model to a transformers folder "
+                           "(config.json + safetensors) where it was made, and give that folder.")
+    ok = set(gguf_dequantisable())
+    bad = [t for t in types if t not in ok]
+    if bad:
+        raise AttnposError(f"{file.name} holds tensors quantised as {', '.join(bad)}, which the gguf package cannot "
+                           f"dequantise (it can: {', '.join(sorted(ok))}). Re-quantise the file to one of those "
+                           "(e.g. Q8_0 or Q4_K), or give a transformers folder.")
+    return Located(path=file.parent, name=file.name, config={"model_type": GGUF_RENAMES.get(arch, arch)},
+                   safetensors=True, gguf=file.name)

@@ -98,8 +98,14 @@ class Subject:
             "stacks": [list(s) for s in self.stacks], "fingerprint": self.fingerprint,
             "context_limit": self.context_limit, "training_length": self.training_length,
             "uses_position_ids": self.uses_position_ids, "notes": list(self.notes),
-            "excluded": list(self.excluded), "rope_fraction": self.rope_fraction,
+            "excluded": list(self.excluded), "rope_fraction": self.rope_fraction, "dtype": self.dtype,
         }
+
+    @property
+    def dtype(self) -> str:
+        """The dtype the weights are kept in (attention scores are computed in float32 regardless)."""
+        p = next(iter(self.model.parameters()), None)
+        return str(p.dtype).replace("torch.", "") if p is not None else "float32"
 
     def __repr__(self) -> str:
         return (f"Subject({self.name!r}, {self.architecture}, scheme={self.scheme}, layers={self.n_layers}, "
@@ -109,19 +115,25 @@ class Subject:
 # ---------------------------------------------------------------------------------------------------- loading
 
 def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = None, allow_pickle: bool = False,
-         trust_remote_code: bool = False, training_length: int | None = None) -> Subject:
+         trust_remote_code: bool = False, training_length: int | None = None, dtype: str = "float32") -> Subject:
     """Load a local checkpoint (or ``"ref:<scheme>"``) as a :class:`Subject`.
 
     Args:
-        path_or_name: a folder with ``config.json`` and weights, or ``ref:learned-absolute`` … ``ref:none``.
+        path_or_name: a folder with ``config.json`` and weights, ``ref:learned-absolute`` … ``ref:none``, a hub id
+            ``org/name`` already in the local hub cache, or a ``.gguf`` file (dequantised while loading).
         scheme: state the position scheme by hand (one name for all layers, or one per layer) when detection
             cannot tell; names: ``learned-absolute``, ``sinusoidal``, ``relative-bias``, ``alibi``, ``rope``,
             ``none``.
         allow_pickle: also accept ``*.bin`` pickle weights (loaded with ``weights_only``).
         trust_remote_code: run modelling code shipped inside the folder. Off by default; only for folders you trust.
         training_length: the context length the model was trained on, if its config does not record it.
+        dtype: ``"float32"`` (default), ``"bfloat16"`` or ``"float16"``: the weights are kept in it; attention
+            scores are always computed and reduced in float32.
     """
+    torch_dtype = weights_dtype(dtype)
     loc = locate(path_or_name, allow_pickle=allow_pickle, trust_remote_code=trust_remote_code)
+    if loc.gguf:
+        return _load_gguf(loc, torch_dtype, scheme=scheme, training_length=training_length)
     p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
     if use_safetensors:
         problem = position_tensor_problem(p)
@@ -146,7 +158,7 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     bars = hf_logging.is_progress_bar_enabled()
     hf_logging.disable_progress_bar()   # a few-MB checkpoint does not need a loading bar in every notebook cell
     try:
-        model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch.float32,
+        model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch_dtype,
                                           use_safetensors=use_safetensors, weights_only=True,
                                           trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001 - wrap with context
@@ -168,6 +180,57 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
     return from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
+
+
+def weights_dtype(name) -> torch.dtype:
+    """The torch dtype of a ``--dtype`` name; a clear error for one the CPU cannot compute in."""
+    from .core.settings import DTYPES
+
+    if isinstance(name, torch.dtype):
+        name = str(name).replace("torch.", "")
+    if name not in DTYPES:
+        raise AttnposError(f"Unknown dtype {name!r}; choose one of {', '.join(DTYPES)} (attention scores are computed "
+                           "in float32 whatever the weights' dtype).")
+    dt = getattr(torch, name)
+    if dt != torch.float32:
+        try:   # the matrix product every layer needs, tried once on tiny tensors
+            a = torch.ones(4, 4, dtype=dt)
+            torch.nn.functional.linear(a, a).sum().item()
+            torch.nn.functional.layer_norm(a, (4,)).sum().item()
+        except RuntimeError as exc:
+            raise AttnposError(f"This CPU build of torch cannot compute in {name} ({_one_line(exc)}). Load the model "
+                               "in float32 (--dtype float32), or bfloat16 if that works here.") from None
+    return dt
+
+
+def _load_gguf(loc, dtype, *, scheme=None, training_length=None) -> Subject:
+    """Load a GGUF file with transformers' GGUF loading (every tensor dequantised by the gguf package, then kept
+    in ``dtype``). GGUF-loaded models refuse ``save_pretrained``; to keep one as safetensors, build a plain model
+    from its config and copy the weights."""
+    from transformers import AutoConfig, AutoTokenizer
+
+    try:
+        import accelerate  # noqa: F401 - transformers' GGUF loading needs it
+        import gguf  # noqa: F401
+    except ImportError:
+        raise AttnposError("Loading a .gguf file needs the `gguf` and `accelerate` packages: "
+                           "pip install 'attnpos[gguf]'.") from None
+    p, f = loc.path, loc.gguf
+    try:
+        config = AutoConfig.from_pretrained(p, gguf_file=f)
+        model = _model_class(config).from_pretrained(p, gguf_file=f, config=config, attn_implementation="eager",
+                                                     dtype=dtype)
+        tokenizer = AutoTokenizer.from_pretrained(p, gguf_file=f)
+    except (ValueError, NotImplementedError, KeyError, RuntimeError) as exc:
+        raise AttnposError(f"transformers could not load {p / f} ({type(exc).__name__}: {_one_line(exc)}). Its GGUF "
+                           "loading covers some architectures and quantisations only; convert the model to a "
+                           "transformers folder (config.json + safetensors) where it was made.") from None
+    model.eval()
+    subject = from_model(model, tokenizer, name=loc.name, path=str(p / f), scheme=scheme,
+                         training_length=training_length)
+    subject.notes.append(f"Loaded from GGUF ({f}): every tensor was dequantised while loading, so attnpos measures "
+                         f"the dequantised weights in {str(dtype).replace('torch.', '')}.")
+    return subject
 
 
 def _one_line(exc: BaseException, limit: int = 400) -> str:
@@ -198,7 +261,7 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
     config = model.config
     devices = sorted({str(t.device) for t in list(model.parameters()) + list(model.buffers())} - {"cpu"})
     if devices:
-        raise AttnposError(f"The model's weights are on {', '.join(devices)}; attnpos records on the CPU (float32). "
+        raise AttnposError(f"The model's weights are on {', '.join(devices)}; attnpos records on the CPU. "
                            "Move the model first with `model.to('cpu')`, or load it with attnpos.load(folder).")
     bad = has_nonfinite_weights(model)
     if bad:

@@ -149,3 +149,72 @@ def test_shared_layers_refuse_ablation():
     s = _subject("albert")
     with pytest.raises(attnpos.AttnposError, match="applied 3 times"):
         ablate(s, ["L0.H0"], [TEXT])
+
+
+@pytest.mark.parametrize("arch,dtype", [("llama", "bfloat16"), ("bert", "bfloat16"), ("t5", "bfloat16"),
+                                        ("bart", "bfloat16"), ("bloom", "bfloat16"), ("llama", "float16")])
+def test_low_precision_weights_outputs_unchanged_scores_in_float32(arch, dtype):
+    # the model's own eager attention (its modelling file's eager_attention_forward) produces the output it passes
+    # on, with its own rounding; the reducers get float32 scores computed beside it
+    s = _subject(arch)
+    s.model.to(getattr(torch, dtype))
+    assert s.dtype == dtype
+    grabbed, keep = [], tiny.keep_reducer()
+
+    class Rows(attnpos.capture.Reducer):
+        name = "rows"
+
+        def begin(self, subject, units):
+            self.err = []
+
+        def update(self, cap):
+            if cap.query is not None and cap.site.stack != "decoder":
+                # scores from the float32 queries and keys, recomputed in float64 (the scaling is 1/sqrt(d) here,
+                # except T5, which does not scale — Raffel et al. 2020)
+                q, k = cap.query.double(), cap.key.double()
+                scale = 1.0 if arch == "t5" else q.shape[-1] ** -0.5
+                ref = (q @ k.transpose(-1, -2)) * scale
+                if arch != "t5":        # T5 adds its relative bias; compare the plain dot products elsewhere
+                    got = cap.zeroed_scores().double()
+                    self.err.append(float(((got - ref) * cap.allowed).abs().max()))
+
+        def result(self):
+            return self.err
+
+    hook = s.model.register_forward_hook(lambda m, a, out: grabbed.append(out))
+    try:
+        rec = record(s, [TEXT], [keep, Rows()], hidden_states=True)
+    finally:
+        hook.remove()
+    with torch.no_grad():
+        plain = forward(s, rec.units[0].ids, offset=0, want_weights=False, hidden=True)
+    got, ref = _tensors(grabbed[-1]), _tensors(plain)
+    for name, r in ref.items():
+        assert torch.equal(got[name], r), f"{arch} in {dtype}: {name} changed under capture"
+    for sc, w, _, _ in rec.results["keep"].values():
+        assert sc.dtype == torch.float32 and w.dtype == torch.float32
+    if rec.capture == "registry" and arch != "t5":
+        assert rec.results["rows"] and max(rec.results["rows"]) < 1e-4
+
+
+def test_dtype_names_checked():
+    from attnpos.subject import weights_dtype
+
+    assert weights_dtype("bfloat16") == torch.bfloat16
+    with pytest.raises(attnpos.AttnposError, match="float32, bfloat16, float16"):
+        weights_dtype("int8")
+
+
+def test_dtype_the_cpu_cannot_compute_is_a_clear_error(monkeypatch):
+    from attnpos.subject import weights_dtype
+
+    real = torch.nn.functional.linear
+
+    def no_half(x, w, b=None):
+        if x.dtype == torch.float16:
+            raise RuntimeError('"addmm_impl_cpu_" not implemented for \'Half\'')   # what older CPU builds said
+        return real(x, w, b)
+
+    monkeypatch.setattr(torch.nn.functional, "linear", no_half)
+    with pytest.raises(attnpos.AttnposError, match="cannot compute in float16"):
+        weights_dtype("float16")

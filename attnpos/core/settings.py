@@ -22,3 +22,7 @@ ABLATION_BOOT = 200
 
 #: training context of the reference models, in tokens (attnpos train --context)
 REFERENCE_CONTEXT = 128
+
+#: the dtypes weights can be kept in (attnpos scan --dtype); the first is the default. Attention scores are always
+#: computed and reduced in float32, whatever the weights' dtype.
+DTYPES = ("float32", "bfloat16", "float16")

@@ -218,3 +218,31 @@ def test_dtype_the_cpu_cannot_compute_is_a_clear_error(monkeypatch):
     monkeypatch.setattr(torch.nn.functional, "linear", no_half)
     with pytest.raises(attnpos.AttnposError, match="cannot compute in float16"):
         weights_dtype("float16")
+
+
+# ------------------------------------------------------------------------------------------------ the README table
+
+def test_families_table_matches_what_attnpos_does():
+    # every row of attnpos.core.families is checked against a tiny model of that family
+    from attnpos.core import families
+
+    assert set(families.names()) == set(tiny.FAMILIES)
+    for spec in families.FAMILIES:
+        s = _subject(spec.name)
+        assert s.model.config.model_type == spec.model_type
+        kind = "encoder-decoder" if s.is_encoder_decoder else "causal" if s.causal else "encoder"
+        assert kind == spec.kind, spec.name
+        assert "/".join(sorted(set(s.schemes), key=spec.scheme.split("/").index)) == spec.scheme, spec.name
+        assert s.rope_fraction == spec.rope_fraction, spec.name
+        assert record(s, [TEXT]).score_kind == spec.score_kind, spec.name
+
+
+def test_readme_families_table_is_generated():
+    from pathlib import Path
+
+    from attnpos.core import families
+
+    text = (Path(__file__).resolve().parent.parent / "README.md").read_text(encoding="utf-8")
+    block = text[text.index("<!-- families:start -->") + len("<!-- families:start -->"):
+                 text.index("<!-- families:end -->")]
+    assert block.strip() == families.readme_table()

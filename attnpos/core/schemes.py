@@ -129,8 +129,9 @@ def has_rotary(model) -> bool:
 
 def rope_fraction(model) -> float | None:
     """The share of each head's dimensions RoPE rotates: transformers 5 keeps it in
-    ``rope_parameters["partial_rotary_factor"]`` (older configs: ``rotary_pct``, ``partial_rotary_factor``); None
-    when the config states none (all dimensions rotate). A factor that rotates no whole dimension pair counts as 0
+    ``rope_parameters["partial_rotary_factor"]`` (older configs: ``rotary_pct``, ``partial_rotary_factor``;
+    CodeGen and GPT-J: ``rotary_dim`` out of the head width); None when the config states none (all dimensions
+    rotate). A factor that rotates no whole dimension pair counts as 0
     (the model computes ``int(head_dim * factor)`` rotated dimensions — transformers' GPT-NeoX attention)."""
     config = model.config
     rp = getattr(config, "rope_parameters", None)
@@ -138,12 +139,15 @@ def rope_fraction(model) -> float | None:
     for name in ("partial_rotary_factor", "rotary_pct"):
         if factor is None:
             factor = getattr(config, name, None)
-    if factor is None:
-        return None
-    factor = float(factor)
     heads = getattr(config, "num_attention_heads", None)
     head_dim = getattr(config, "head_dim", None) or (config.hidden_size // heads
                                                      if heads and getattr(config, "hidden_size", None) else None)
+    rotary_dim = getattr(config, "rotary_dim", None)     # CodeGen, GPT-J: rotated dimensions per head
+    if factor is None and isinstance(rotary_dim, int) and head_dim:
+        factor = rotary_dim / head_dim
+    if factor is None:
+        return None
+    factor = float(factor)
     if head_dim and int(head_dim * factor) == 0:
         return 0.0
     return factor

@@ -71,6 +71,10 @@ def _folder(text: str) -> tuple[Path, str]:
                            "'ref:rope' (choices: " + ", ".join("ref:" + s for s in reference_names()) + ").")
     if p.is_file():
         p = p.parent
+    gguf_files = sorted(p.glob("*.gguf")) if not (p / "config.json").exists() else []
+    if gguf_files:
+        raise AttnposError(f"The folder {p} holds a GGUF file but no config.json; give the .gguf file itself "
+                           f"(e.g. attnpos scan {gguf_files[0]}).")
     if not (p / "config.json").exists():
         raise AttnposError(f"The folder {p} has no config.json, so it is not a transformers checkpoint. Point "
                            "attnpos at the folder that `save_pretrained` wrote (config.json + *.safetensors).")

@@ -6,6 +6,7 @@ copy of the weights ever exists), scans one text of T random tokens with ``attnp
 peak RSS (VmHWM) next to the size of the bf16 weights. Target: peak RSS ≤ weights + 1.5 GB at T = 1024.
 
     python bench/bf16_memory.py                  # the 1B shape at T = 1024 (a few minutes on 2 cores)
+    python bench/bf16_memory.py --full           # the same with the scan's shift test, induction test, bootstrap
     python bench/bf16_memory.py --layers 2 --T 256   # a quick look
 
 Peak RSS includes Python, torch and transformers themselves. It prints one JSON object (``--out`` also writes it).
@@ -48,6 +49,9 @@ def main(argv=None) -> int:
     ap.add_argument("--mlp", type=int, default=5632)
     ap.add_argument("--vocab", type=int, default=32000)
     ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--full", action="store_true",
+                    help="the scan with its defaults (shift test, induction test, bootstrap) instead of capture, "
+                         "split and roles only")
     ap.add_argument("--out", type=Path, default=None, help="also write the JSON here")
     args = ap.parse_args(argv)
 
@@ -84,7 +88,12 @@ def main(argv=None) -> int:
     # T − 1 random printable bytes: with the byte tokenizer's <bos>, exactly T random tokens
     text = "".join(map(chr, rng.integers(33, 127, args.T - 1)))
     t0 = time.perf_counter()
-    scan = attnpos.scan(subject, [text], n_boot=0, shift=False, induction=False, keep_maps=0, progress=False)
+    if args.full:
+        what = "attnpos.scan(subject, [text])"
+        scan = attnpos.scan(subject, [text], progress=False)
+    else:
+        what = "attnpos.scan(subject, [text], n_boot=0, shift=False, induction=False, keep_maps=0)"
+        scan = attnpos.scan(subject, [text], n_boot=0, shift=False, induction=False, keep_maps=0, progress=False)
     assert len(scan.tokens[0]) == args.T, len(scan.tokens[0])
     scan_s = time.perf_counter() - t0
     peak = _status_mb("VmHWM")
@@ -96,7 +105,7 @@ def main(argv=None) -> int:
         "peak_rss_gb": round((peak or 0) / 1024, 3),
         "peak_minus_weights_gb": round(((peak or 0) / 1024) - weights / 2**30, 3),
         "target_extra_gb": TARGET_EXTRA_GB, "build_s": round(build_s, 1), "scan_s": round(scan_s, 1),
-        "what_ran": "attnpos.scan(subject, [text], n_boot=0, shift=False, induction=False, keep_maps=0)",
+        "what_ran": what,
         "python": sys.version.split()[0], "torch": torch.__version__, "threads": args.threads,
     }
     report["meets_target"] = report["peak_minus_weights_gb"] <= TARGET_EXTRA_GB

@@ -207,3 +207,10 @@ def test_smollm2_previous_token_heads_in_early_layers(smol_scan):
     early = df[df.layer <= 3]
     assert early.mass_previous.max() > 0.5
     assert (early.role == "previous-token").any()
+
+
+def test_folder_with_only_a_gguf_file_points_at_the_file(tmp_path):
+    f = _gguf(tmp_path / "m.gguf", "llama")
+    with pytest.raises(attnpos.AttnposError, match="give the .gguf file itself"):
+        locate(tmp_path)
+    assert str(f) in str(pytest.raises(attnpos.AttnposError, locate, tmp_path).value)

@@ -136,6 +136,23 @@ def test_shared_layer_recorded_per_application():
     assert not np.allclose(res["mass"]["previous"][0], res["mass"]["previous"][1])
 
 
+def test_shared_layer_groups_in_the_order_they_run():
+    # ALBERT with 2 groups of 2 layers over 4 depths: depth i runs group int(i / 2) (transformers'
+    # AlbertTransformer.forward), so 8 applications of 4 modules, each twice, in order; the maps equal eager's
+    model = tiny.build("albert", layers=4, wide=WIDE, seed=3, num_hidden_groups=2, inner_group_num=2)
+    s = attnpos.subject.from_model(model, tiny.tokenizer())
+    order = [site.name.split("albert_layer_groups.")[1].split(".attention")[0] for site in s.sites]
+    assert order == ["0.albert_layers.0", "0.albert_layers.1"] * 2 + ["1.albert_layers.0", "1.albert_layers.1"] * 2
+    assert [site.application for site in s.sites] == [0, 0, 1, 1, 0, 0, 1, 1]
+    rec = record(s, [TEXT], keep="all")
+    with torch.no_grad():
+        eager = forward(s, rec.units[0].ids, offset=0, want_weights=True, hidden=False)
+    assert len(eager.attentions) == len(s.sites) == 8
+    for site, att in zip(s.sites, eager.attentions):
+        for h in range(s.n_heads):
+            assert float((torch.from_numpy(rec.maps[(0, "main", site.layer, h)]) - att[0, h]).abs().max()) <= TOL
+
+
 def test_shared_module_called_more_often_than_known_is_refused():
     s = _subject("albert")
     del s.sites[2:]                       # pretend attnpos knew only two of the three applications

@@ -83,7 +83,8 @@ def build(arch: str, *, layers: int = 2, heads: int = 4, hidden: int = 32, seed:
         model = tf.BartForConditionalGeneration(cfg)
     elif arch == "albert":                   # one layer shared across depth
         cfg = tf.AlbertConfig(num_hidden_layers=max(layers, 3), num_attention_heads=heads, hidden_size=hidden,
-                              embedding_size=16, intermediate_size=hidden * 2, max_position_embeddings=256, **common)
+                              embedding_size=16, intermediate_size=hidden * 2, max_position_embeddings=256, **common,
+                              **over)
         model = tf.AlbertModel(cfg)
     elif arch == "distilbert":
         cfg = tf.DistilBertConfig(n_layers=layers, n_heads=heads, dim=hidden, hidden_dim=hidden * 2,

@@ -228,8 +228,13 @@ def _load_gguf(loc, dtype, *, scheme=None, training_length=None) -> Subject:
     model.eval()
     subject = from_model(model, tokenizer, name=loc.name, path=str(p / f), scheme=scheme,
                          training_length=training_length)
-    subject.notes.append(f"Loaded from GGUF ({f}): every tensor was dequantised while loading, so attnpos measures "
-                         f"the dequantised weights in {str(dtype).replace('torch.', '')}.")
+    packed = [n for n, t in model.named_parameters() if not t.is_floating_point()]
+    if packed:    # transformers keeps some architectures' blocks packed when a GGUF matmul kernel is installed
+        subject.notes.append(f"Loaded from GGUF ({f}): {len(packed)} weight(s) stay in their quantised blocks and are "
+                             "dequantised by every matrix product; attnpos measures the model as it computes.")
+    else:
+        subject.notes.append(f"Loaded from GGUF ({f}): every tensor was dequantised while loading, so attnpos "
+                             f"measures the dequantised weights in {str(dtype).replace('torch.', '')}.")
     return subject
 
 

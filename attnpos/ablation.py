@@ -82,6 +82,10 @@ def _slices(subject: Subject) -> dict[tuple[str, int], tuple[torch.nn.Module, in
     """(stack, layer) → (output projection, width of one head's slice of its input)."""
     out = {}
     for site in subject.sites:
+        if site.shared > 1:
+            raise AttnposError(f"{site.name} is one attention module applied {site.shared} times (layers shared "
+                               "across depth); replacing a head's output there would change every application at "
+                               "once, so attnpos does not ablate such models. Scan them instead.")
         proj = output_projection(subject, site)
         width = _in_features(proj)
         if not subject.n_heads or width % subject.n_heads:

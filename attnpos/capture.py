@@ -171,9 +171,12 @@ class _Run:
         self.keep_scores = keep_scores
         self.score_kind = score_kind
         self.offset = offset
-        self.site_of = {id(s.module): s for s in subject.sites}
+        self.sites_of: dict[int, list[AttentionSite]] = {}   # id(module) → its sites, one per application
+        for site in subject.sites:
+            self.sites_of.setdefault(id(site.module), []).append(site)
+        self.calls: dict[int, int] = {}                 # id(module) → times called in this forward pass
         self.text = 0
-        self.seen: set = set()
+        self.seen: set = set()                          # (stack, layer) of the sites delivered in this forward
         self.maps: dict = {}
         self.score_maps: dict = {}
         self.nonfinite: set = set()
@@ -193,6 +196,27 @@ class _Run:
                 self._masks.clear()
             hit = self._masks[key] = (attention_mask, _mask_facts(attention_mask, q_len, k_len, causal))
         return hit[1]
+
+    def start_text(self, t: int) -> None:
+        self.text = t
+        self.seen = set()
+        self.calls = {}
+
+    def site_for(self, module) -> AttentionSite | None:
+        """The site of this call of ``module`` (the next application of a shared module), or None for a module
+        attnpos does not record (cross-attention). A module called more often than it has sites would mix several
+        applications into one layer: refused."""
+        sites = self.sites_of.get(id(module))
+        if sites is None:
+            return None
+        n = self.calls.get(id(module), 0)
+        self.calls[id(module)] = n + 1
+        if n >= len(sites):
+            raise AttnposError(
+                f"The attention module {sites[0].name} ran {n + 1} times in one forward pass, but attnpos expected "
+                f"{len(sites)}: the model shares it across depth in a way attnpos does not know, and recording it "
+                "would mix its applications into one layer. Please report the architecture.")
+        return sites[n]
 
     def buffer(self, name: str, shape: tuple[int, ...], blocks: tuple | None = None) -> torch.Tensor:
         """A float32 work tensor of ``shape``, reused across chunks, layers and texts of this run (fresh pages for
@@ -221,7 +245,7 @@ class _Run:
         ``blocks``: row blocks outside which every pair is disallowed (see :class:`LayerCapture`); ``finite``:
         the caller has already checked the zeroed scores for NaN and ±inf (the result); ``query``/``key``: the
         chunk's (n, T, d) queries and keys (registry path)."""
-        self.seen.add(id(site.module))
+        self.seen.add((site.stack, site.layer))
         n = weights.shape[0]
         # NaN anywhere, or ±inf on an allowed pair (the capture function turns NaN weights of such rows into 0, so
         # the scores are what shows an overflow or a NaN weight); min and max propagate NaN and show ±inf
@@ -329,10 +353,18 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
     copied into the two buffers, which hold 0 beyond the blocks.
     """
     run = _ACTIVE[-1] if _ACTIVE else None
-    site = run.site_of.get(id(module)) if run else None
+    site = run.site_for(module) if run else None
     if kwargs.get("s_aux") is not None or kwargs.get("sinks") is not None:
         raise AttnposError("This model uses attention sinks (learned extra logits); attnpos cannot capture it yet.")
     bsz, n_heads, q_len, d = query.shape
+    # weights kept in bfloat16/float16: the model's own eager attention computes the output it passes on (with its
+    # own rounding), and attnpos computes the scores and weights the reducers see in float32 beside it
+    own = _own_eager(module) if query.dtype != torch.float32 else None
+    given = (query, key, value, attention_mask, scaling)
+    if key.shape[1] <= 0 or n_heads % key.shape[1]:
+        raise AttnposError(f"An attention module hands over {n_heads} query heads and {key.shape[1]} key/value heads; "
+                           "grouped-query attention needs the key/value heads to divide the query heads, and "
+                           "transformers' own attention rejects this too. Fix the config's head counts.")
     n_rep = n_heads // key.shape[1]
     if n_rep > 1:  # grouped-query attention: repeat key/value heads as the model's eager path does
         key = key.repeat_interleave(n_rep, dim=1)
@@ -342,7 +374,8 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
         scaling = d ** -0.5
     bias = kwargs.get("position_bias")
     softcap = kwargs.get("softcap")
-    causal = site.causal if site is not None else bool(getattr(module, "is_causal", False))
+    # a module attnpos does not record (cross-attention) gets exactly eager attention: the model's mask, no other
+    causal = site.causal if site is not None else False
     facts = (run.mask_facts if run is not None else _mask_facts)(attention_mask, q_len, k_len, causal)
     allowed, pattern, empty_rows, has_values = facts
     mask_add = attention_mask[..., :k_len] if has_values else None
@@ -350,7 +383,7 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
     per_head = q_len * k_len * 4
     n_chunks = -(-n_heads // max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1))))
     chunk = -(-n_heads // n_chunks)          # equal chunks: 12 heads in 3 × 4 rather than 5 + 5 + 2
-    out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype)
+    out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype) if own is None else None
     neg_inf = torch.tensor(float("-inf"))
     # causal and square (the usual case): row blocks, each forming only the keys it may see
     blocks = causal_blocks(q_len) if pattern == "causal" and q_len == k_len else None
@@ -409,11 +442,22 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
                     wb.nan_to_num_(nan=0.0)  # rows with no allowed key
                 if blocks is not None:
                     w[:, r0:r1, :k1].copy_(wb)
-                torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
+                if own is None:
+                    torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
             if site is not None and b == 0:
                 run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True, blocks=blocks,
                             finite=finite, query=qb, key=kb)
+    if own is not None:
+        q0, k0, v0, m0, sc0 = given
+        return own(module, q0, k0, v0, m0, scaling=sc0, dropout=0.0, **kwargs)[0], None
     return out.transpose(1, 2).contiguous(), None
+
+
+def _own_eager(module):
+    """The eager attention function of the module's own modelling file (transformers' ``eager_attention_forward``),
+    or None where the architecture has none (the capture's float32 computation then produces the output)."""
+    fn = getattr(sys.modules.get(type(module).__module__), "eager_attention_forward", None)
+    return fn if callable(fn) else None
 
 
 @contextlib.contextmanager
@@ -458,6 +502,7 @@ def _registry_path(subject: Subject, run: "_Run | None" = None):
     handles = []
 
     def keep_rotary(module, args, kwargs):
+        refuse_cross_call(run, module, kwargs)
         pe = kwargs.get("position_embeddings")
         if isinstance(pe, (tuple, list)) and len(pe) == 2 and all(isinstance(t, torch.Tensor) for t in pe):
             run.rotary[id(module)] = (pe[0], pe[1])
@@ -465,12 +510,32 @@ def _registry_path(subject: Subject, run: "_Run | None" = None):
 
     try:
         with attention_function(subject, capture_attention):
-            for site in subject.sites if run is not None else ():
-                handles.append(site.module.register_forward_pre_hook(keep_rotary, with_kwargs=True))
+            for module in _site_modules(subject) if run is not None else ():
+                handles.append(module.register_forward_pre_hook(keep_rotary, with_kwargs=True))
             yield
     finally:
         for h in handles:
             h.remove()
+
+
+CROSS_INPUTS = ("key_value_states", "encoder_hidden_states", "cross_attention_states")
+"""Keyword arguments that make an attention module attend to another sequence (transformers' names)."""
+
+
+def refuse_cross_call(run, module, kwargs) -> None:
+    """A module recorded as self-attention that is handed another sequence's states is cross-attention attnpos
+    failed to recognise by name: stop rather than take it for self-attention."""
+    if any(kwargs.get(k) is not None for k in CROSS_INPUTS):
+        sites = run.sites_of.get(id(module)) if run is not None else None
+        name = sites[0].name if sites else type(module).__name__
+        raise AttnposError(f"The attention module {name} attends to another sequence (it is cross-attention), but "
+                           "attnpos took it for self-attention. Please report the architecture; attnpos will not "
+                           "record cross-attention as self-attention.")
+
+
+def _site_modules(subject: Subject) -> list:
+    """Each recorded attention module once (a shared module serves several sites)."""
+    return list({id(s.module): s.module for s in subject.sites}.values())
 
 
 def _all_configs(model) -> list:
@@ -496,9 +561,13 @@ def _weights_path(subject: Subject, run_ref: list):
     saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
     handles = []
 
-    def make_hook(site):
+    def pre_hook(module, args, kwargs):
+        refuse_cross_call(run_ref[-1], module, kwargs)
+
+    def make_hook():
         def hook(module, args, kwargs, output):
             run = run_ref[-1]
+            site = run.site_for(module)
             if not isinstance(output, tuple):
                 return output
             for k, o in enumerate(output):
@@ -522,8 +591,9 @@ def _weights_path(subject: Subject, run_ref: list):
     try:
         for c in configs:
             c._attn_implementation_internal = "eager"
-        for site in subject.sites:
-            handles.append(site.module.register_forward_hook(make_hook(site), with_kwargs=True))
+        for module in _site_modules(subject):
+            handles.append(module.register_forward_pre_hook(pre_hook, with_kwargs=True))
+            handles.append(module.register_forward_hook(make_hook(), with_kwargs=True))
         yield
     finally:
         for h in handles:
@@ -623,12 +693,11 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
         ctx = _registry_path(subject, run) if chosen == "registry" else _weights_path(subject, _ACTIVE)
         with ctx, torch.no_grad():
             for t in iterator:
-                run.text = t
-                run.seen = set()
+                run.start_text(t)
                 ids = prefix + list(units[t].ids)
                 out = forward(subject, ids, offset=position_offset, want_weights=(chosen != "registry"),
                                hidden=hidden_states)
-                missing = [s for s in subject.sites if id(s.module) not in run.seen]
+                missing = [s for s in subject.sites if (s.stack, s.layer) not in run.seen]
                 if missing:
                     if chosen == "registry" and t == 0 and len(missing) == len(subject.sites) and path is None:
                         # the architecture does not call the registry: switch paths for this subject

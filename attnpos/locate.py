@@ -1,8 +1,9 @@
 """Where a model argument points, checked before anything heavy starts (no torch, no transformers).
 
-:func:`locate` turns what a user typed — a folder written by ``save_pretrained`` or a shipped reference model
-``ref:<scheme>`` — into a :class:`Located` checkpoint: its folder, its display name, its raw config, and whether the
-weights are safetensors. Every problem a folder can have that needs no model to see (missing, no config, a config
+:func:`locate` turns what a user typed — a folder written by ``save_pretrained``, a shipped reference model
+``ref:<scheme>``, a hub id ``org/name`` already in the local hub cache (``HF_HUB_CACHE``, else ``HF_HOME/hub``, else
+``~/.cache/huggingface/hub``; nothing is downloaded), or a ``.gguf`` file — into a :class:`Located` checkpoint: its
+folder, its display name, its raw config, and whether the weights are safetensors. Every problem a folder can have that needs no model to see (missing, no config, a config
 that is not JSON, modelling code shipped inside, pickle-only weights, no weights) is an
 :class:`~attnpos.errors.AttnposError` here, so the command line refuses it in well under a second.
 
@@ -15,6 +16,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -37,6 +39,7 @@ class Located:
     config: dict
     safetensors: bool
     reference: bool = False
+    gguf: str | None = None         # the file name inside ``path`` of a GGUF checkpoint
 
 
 def reference_names() -> list[str]:
@@ -68,6 +71,10 @@ def _folder(text: str) -> tuple[Path, str]:
                            "'ref:rope' (choices: " + ", ".join("ref:" + s for s in reference_names()) + ").")
     if p.is_file():
         p = p.parent
+    gguf_files = sorted(p.glob("*.gguf")) if not (p / "config.json").exists() else []
+    if gguf_files:
+        raise AttnposError(f"The folder {p} holds a GGUF file but no config.json; give the .gguf file itself "
+                           f"(e.g. attnpos scan {gguf_files[0]}).")
     if not (p / "config.json").exists():
         raise AttnposError(f"The folder {p} has no config.json, so it is not a transformers checkpoint. Point "
                            "attnpos at the folder that `save_pretrained` wrote (config.json + *.safetensors).")
@@ -107,8 +114,12 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
            trust_remote_code: bool = False) -> Located:
     """Find and check the checkpoint ``path_or_name`` refers to (see the module doc)."""
     text = str(path_or_name)
+    if text.lower().endswith(".gguf"):
+        return locate_gguf(Path(text).expanduser())
     if text.startswith("ref:"):
         p, name, ref = reference_dir(text[4:]), text, True
+    elif looks_like_hub_id(text) and not Path(text).expanduser().exists():
+        p, name, ref = hub_snapshot(text), text, False
     else:
         (p, name), ref = _folder(text), False
     cfg = read_config(p)
@@ -116,4 +127,239 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
         raise AttnposError(f"The folder {p} ships its own modelling code (auto_map / *.py). attnpos never runs code "
                            "from a model folder unless you ask: pass trust_remote_code=True (CLI: "
                            "--trust-remote-code) only if you trust its author.")
+    problem = head_count_problem(cfg)
+    if problem:
+        raise AttnposError(f"{p}/config.json has {problem}. transformers' own forward pass rejects such a config (or "
+                           "runs it wrong); fix the head counts in config.json, or re-save the model that works.")
+    problem = position_config_problem(cfg)
+    if problem:
+        raise AttnposError(f"{p}/config.json: {problem}")
     return Located(path=p, name=name, config=cfg, safetensors=weights_are_safetensors(p, allow_pickle), reference=ref)
+
+
+# ------------------------------------------------------------------------------- config and tensor checks
+# (each one a function of its own: what a config or a weights file says that transformers would silently run
+# differently or reject later; the capture and load call them again on a model built in memory)
+
+_HEADS = ("num_attention_heads", "n_head", "num_heads", "n_heads", "encoder_attention_heads", "decoder_attention_heads")
+_KV_HEADS = ("num_key_value_heads", "num_kv_heads", "n_head_kv", "n_kv_heads")
+_HIDDEN = ("hidden_size", "n_embd", "d_model", "dim")
+_HEAD_DIM = ("head_dim", "d_kv", "attention_head_size", "kv_channels")
+RELATIVE_KEY_TYPES = ("relative_key", "relative_key_query")
+
+
+def _sub_configs(cfg: dict) -> list[dict]:
+    """The config and the configs nested in it (text_config, encoder, decoder, …)."""
+    out, todo = [], [cfg]
+    while todo:
+        c = todo.pop()
+        out.append(c)
+        todo.extend(v for v in c.values() if isinstance(v, dict) and ("model_type" in v or any(h in v for h in _HEADS)))
+    return out
+
+
+def _int(v) -> int | None:
+    return v if isinstance(v, int) and not isinstance(v, bool) else None
+
+
+def head_count_problem(cfg: dict) -> str | None:
+    """What is wrong with a config's head counts that transformers' own forward would reject (or silently run
+    wrong), or None: key/value heads that do not divide the query heads (the grouped-query repeat factor would be
+    fractional or 0), or a hidden size the heads do not divide where the head width is derived from it."""
+    for c in _sub_configs(cfg):
+        heads = next((_int(c.get(k)) for k in _HEADS if _int(c.get(k)) is not None), None)
+        if heads is None:
+            continue
+        if heads <= 0:
+            return f"{heads} attention heads; a model needs at least one"
+        kv = next((_int(c.get(k)) for k in _KV_HEADS if _int(c.get(k)) is not None), None)
+        if kv is not None and (kv <= 0 or kv > heads or heads % kv):
+            return (f"{kv} key/value heads for {heads} query heads; grouped-query attention shares each key/value "
+                    "head among a whole number of query heads, so the key/value heads must divide the query heads")
+        hidden = next((_int(c.get(k)) for k in _HIDDEN if _int(c.get(k)) is not None), None)
+        explicit = any(_int(c.get(k)) for k in _HEAD_DIM)
+        if hidden is not None and not explicit and hidden % heads:
+            return (f"a hidden size of {hidden} split into {heads} heads; with no head_dim given, each head's width "
+                    "is hidden size / heads, so the heads must divide the hidden size")
+    return None
+
+
+def position_config_problem(cfg: dict) -> str | None:
+    """A position encoding the config asks for that transformers 5 no longer implements, or None. BERT-family
+    ``position_embedding_type`` ``relative_key``/``relative_key_query`` (Shaw et al. 2018; Huang et al. 2020) is kept
+    in the config but ignored by transformers 5, which runs the model with its absolute table only."""
+    for c in _sub_configs(cfg):
+        pet = c.get("position_embedding_type")
+        if pet in RELATIVE_KEY_TYPES:
+            return (f"position_embedding_type={pet!r} asks for learned relative-position embeddings inside "
+                    "attention, which transformers 5 no longer implements: it would run this checkpoint with its "
+                    "absolute position table only and drop the relative weights, so attnpos would measure a model "
+                    "that was never trained. attnpos refuses it; analyse a checkpoint with absolute positions "
+                    "(position_embedding_type='absolute'), or one of the schemes attnpos knows.")
+    return None
+
+
+POSITION_TENSOR_NAMES = ("distance_embedding",)
+"""Weight names of position encodings transformers 5 drops as unexpected when it loads the checkpoint."""
+
+
+def safetensors_names(file: Path) -> list[str]:
+    """The tensor names in a safetensors file, read from its JSON header (no tensor is loaded)."""
+    with open(file, "rb") as fh:
+        head = fh.read(8)
+        if len(head) < 8:
+            return []
+        n = int.from_bytes(head, "little")
+        if n <= 0 or n > 100 * 2**20:
+            return []
+        try:
+            header = json.loads(fh.read(n).decode("utf-8"))
+        except (UnicodeDecodeError, json.JSONDecodeError):
+            return []
+    return [k for k in header if k != "__metadata__"] if isinstance(header, dict) else []
+
+
+def position_tensor_problem(p: Path) -> str | None:
+    """Tensors of a position encoding transformers would drop while loading the folder's safetensors, or None."""
+    found = []
+    for f in sorted(Path(p).glob("*.safetensors")):
+        found += [n for n in safetensors_names(f) if any(t in n.split(".") for t in POSITION_TENSOR_NAMES)]
+    if not found:
+        return None
+    return (f"the weights hold {len(found)} relative-position tensor(s) ({', '.join(found[:2])}"
+            f"{', …' if len(found) > 2 else ''}), learned relative-position embeddings inside attention (BERT's "
+            "relative_key variants). transformers 5 no longer implements them and would drop these weights "
+            "while loading, so attnpos would measure a model that was never trained; it refuses the checkpoint. "
+            "Analyse a checkpoint with absolute positions or one of the schemes attnpos knows.")
+
+
+# ------------------------------------------------------------------------------- the local hub cache
+
+HUB_ID_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,95}/[A-Za-z0-9][A-Za-z0-9._-]{0,95}(@[A-Za-z0-9._/-]{1,100})?\Z")
+
+
+def looks_like_hub_id(text: str) -> bool:
+    """``org/name`` (optionally ``@revision``): the way the hub names a model."""
+    return bool(HUB_ID_RE.match(text)) and ".." not in text
+
+
+def hub_cache() -> Path:
+    """The hub cache folder as the hub's own client finds it: ``HF_HUB_CACHE``, else ``HF_HOME/hub``, else
+    ``~/.cache/huggingface/hub`` (its documented layout: ``models--org--name/snapshots/<revision>/``, with
+    ``refs/main`` naming the revision — common practice of the hub client, from its documentation)."""
+    if os.environ.get("HF_HUB_CACHE"):
+        return Path(os.environ["HF_HUB_CACHE"]).expanduser()
+    home = os.environ.get("HF_HOME") or os.path.join(os.environ.get("XDG_CACHE_HOME", "~/.cache"), "huggingface")
+    return Path(home).expanduser() / "hub"
+
+
+def cached_models(cache: Path | None = None) -> list[str]:
+    """The ``org/name`` ids of the models in the hub cache that have at least one snapshot."""
+    cache = cache or hub_cache()
+    if not cache.is_dir():
+        return []
+    out = []
+    for d in sorted(cache.glob("models--*")):
+        if (d / "snapshots").is_dir() and any((d / "snapshots").iterdir()):
+            out.append(d.name[len("models--"):].replace("--", "/"))
+    return out
+
+
+def hub_snapshot(hub_id: str) -> Path:
+    """The snapshot folder of ``org/name[@revision]`` in the local hub cache; a clear error listing what is cached
+    when it is not there (nothing is ever downloaded)."""
+    repo, _, revision = hub_id.partition("@")
+    cache = hub_cache()
+    folder = cache / ("models--" + repo.replace("/", "--"))
+    snapshots = folder / "snapshots"
+    rev = revision or "main"
+    ref = folder / "refs" / rev
+    chosen = None
+    if ref.is_file():
+        chosen = snapshots / ref.read_text(encoding="utf-8").strip()
+    elif revision and (snapshots / revision).is_dir():
+        chosen = snapshots / revision
+    elif not revision and snapshots.is_dir():
+        found = [d for d in snapshots.iterdir() if d.is_dir()]
+        if len(found) == 1:
+            chosen = found[0]
+    if chosen is None or not (chosen / "config.json").is_file():
+        cached = cached_models(cache)
+        listing = ", ".join(cached[:12]) + (f" and {len(cached) - 12} more" if len(cached) > 12 else "")
+        what = f"revision {rev!r} of {repo}" if revision or folder.is_dir() else repo
+        raise AttnposError(f"There is no folder {hub_id!r}, and {what} is not in the local hub cache at {cache} "
+                           "(attnpos never downloads). "
+                           + (f"Cached there: {listing}. " if cached else "Nothing is cached there. ")
+                           + "Fetch it once where downloads are allowed (e.g. `hf download " + repo + "`), set "
+                           "HF_HOME or HF_HUB_CACHE to the cache that holds it, or give the model's folder.")
+    return chosen
+
+
+# ------------------------------------------------------------------------------- GGUF files
+
+GGUF_RENAMES = {"qwen2moe": "qwen2_moe", "qwen3moe": "qwen3_moe", "gpt-oss": "gpt_oss", "minimax-m2": "minimax_m2"}
+"""GGUF architecture names transformers maps to another name (transformers' modeling_gguf_pytorch_utils)."""
+
+
+def gguf_supported_architectures() -> list[str]:
+    """The GGUF architectures transformers can load (its GGUF config mapping; torch is not imported)."""
+    from transformers.integrations.ggml import GGUF_CONFIG_MAPPING
+
+    return sorted(k for k in GGUF_CONFIG_MAPPING if k not in ("general", "tokenizer"))
+
+
+def gguf_dequantisable() -> list[str]:
+    """The GGML tensor types the ``gguf`` package dequantises (tried on one zero block of each type)."""
+    import numpy as np
+    from gguf import GGML_QUANT_SIZES, GGMLQuantizationType, dequantize
+
+    ok = []
+    for q in GGMLQuantizationType:
+        block, size = GGML_QUANT_SIZES[q]
+        data = (np.zeros(block, np.float32) if q == GGMLQuantizationType.F32 else
+                np.zeros(block, np.float16) if q == GGMLQuantizationType.F16 else np.zeros(size, np.uint8))
+        try:
+            dequantize(data, q)
+        except (NotImplementedError, ValueError, KeyError, TypeError):
+            continue
+        ok.append(q.name)
+    return ok
+
+
+def gguf_facts(file: Path) -> tuple[str, list[str]]:
+    """The architecture and the tensor types of a GGUF file (read from its header; no tensor is dequantised)."""
+    try:
+        from gguf import GGUFReader
+    except ImportError:
+        raise AttnposError("Reading a .gguf file needs the `gguf` package (and `accelerate`): "
+                           "pip install 'attnpos[gguf]'.") from None
+    try:
+        reader = GGUFReader(str(file))
+        field = reader.fields["general.architecture"]
+        arch = bytes(field.parts[field.data[0]]).decode("utf-8")
+        types = sorted({t.tensor_type.name for t in reader.tensors})
+    except (KeyError, ValueError, OSError, IndexError, UnicodeDecodeError) as exc:
+        raise AttnposError(f"{file} cannot be read as a GGUF file ({type(exc).__name__}: {exc}); it is damaged or "
+                           "not GGUF. Export it again, or give a folder with config.json + safetensors.") from None
+    return arch, types
+
+
+def locate_gguf(file: Path) -> Located:
+    """A ``.gguf`` file transformers can load: an architecture it maps and tensor types ``gguf`` dequantises
+    (transformers dequantises every tensor when it loads GGUF; the model then runs in the loading dtype)."""
+    if not file.is_file():
+        raise AttnposError(f"No GGUF file at {file}. Give the path of an existing .gguf file.")
+    arch, types = gguf_facts(file)
+    known = gguf_supported_architectures()
+    if GGUF_RENAMES.get(arch, arch).replace("-", "_") not in known:
+        raise AttnposError(f"{file.name} holds a {arch!r} model; transformers loads GGUF files of these "
+                           f"architectures only: {', '.join(known)}. Convert the model to a transformers folder "
+                           "(config.json + safetensors) where it was made, and give that folder.")
+    ok = set(gguf_dequantisable())
+    bad = [t for t in types if t not in ok]
+    if bad:
+        raise AttnposError(f"{file.name} holds tensors quantised as {', '.join(bad)}, which the gguf package cannot "
+                           f"dequantise (it can: {', '.join(sorted(ok))}). Re-quantise the file to one of those "
+                           "(e.g. Q8_0 or Q4_K), or give a transformers folder.")
+    return Located(path=file.parent, name=file.name, config={"model_type": GGUF_RENAMES.get(arch, arch)},
+                   safetensors=True, gguf=file.name)

@@ -260,6 +260,9 @@ def variant_subject(subject, v: scalings.Variant, L: int):
             new = type(model)(cfg)
     finally:
         hf_logging.set_verbosity(level)
+    weights = next(model.parameters(), None)
+    if weights is not None:
+        new = new.to(weights.dtype)           # the variant keeps the weights' dtype (--dtype), as the checkpoint does
     missing, unexpected = new.load_state_dict(model.state_dict(), strict=False)
     tied = set(getattr(new, "_tied_weights_keys", None) or [])
     missing = [m for m in missing if m not in tied]

@@ -24,7 +24,7 @@ import torch
 
 from .core import schemes
 from .errors import AttnposError
-from .locate import locate
+from .locate import head_count_problem, locate, position_config_problem, position_tensor_problem
 
 ENCODER_TYPES = {"bert", "roberta", "distilbert", "electra", "xlm-roberta", "camembert", "mpnet", "deberta",
                  "albert", "ernie", "modernbert"}
@@ -35,11 +35,13 @@ class AttentionSite:
     """One self-attention module the capture watches."""
 
     stack: str          # "main", "encoder" or "decoder"
-    layer: int          # index within its stack
+    layer: int          # index within its stack (for a shared module: the application, in the order they run)
     name: str           # dotted module name inside the model
     module: torch.nn.Module
     causal: bool
     scheme: str
+    application: int = 0    # which call of ``module`` within one forward pass this site is (0 unless shared)
+    shared: int = 1         # how many sites the module serves (ALBERT-style sharing across depth: > 1)
 
 
 @dataclass
@@ -61,6 +63,8 @@ class Subject:
     is_encoder_decoder: bool = False
     notes: list[str] = field(default_factory=list)
     capture_path: str | None = None     # "registry" or "eager-weights", once a recording has found out which works
+    excluded: list[str] = field(default_factory=list)   # attention modules left out (cross-attention), by name
+    rope_fraction: float | None = None  # the share of each head's dimensions RoPE rotates, when below 1
 
     @property
     def schemes(self) -> list[str]:
@@ -94,7 +98,14 @@ class Subject:
             "stacks": [list(s) for s in self.stacks], "fingerprint": self.fingerprint,
             "context_limit": self.context_limit, "training_length": self.training_length,
             "uses_position_ids": self.uses_position_ids, "notes": list(self.notes),
+            "excluded": list(self.excluded), "rope_fraction": self.rope_fraction, "dtype": self.dtype,
         }
+
+    @property
+    def dtype(self) -> str:
+        """The dtype the weights are kept in (attention scores are computed in float32 regardless)."""
+        p = next(iter(self.model.parameters()), None)
+        return str(p.dtype).replace("torch.", "") if p is not None else "float32"
 
     def __repr__(self) -> str:
         return (f"Subject({self.name!r}, {self.architecture}, scheme={self.scheme}, layers={self.n_layers}, "
@@ -104,20 +115,30 @@ class Subject:
 # ---------------------------------------------------------------------------------------------------- loading
 
 def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = None, allow_pickle: bool = False,
-         trust_remote_code: bool = False, training_length: int | None = None) -> Subject:
+         trust_remote_code: bool = False, training_length: int | None = None, dtype: str = "float32") -> Subject:
     """Load a local checkpoint (or ``"ref:<scheme>"``) as a :class:`Subject`.
 
     Args:
-        path_or_name: a folder with ``config.json`` and weights, or ``ref:learned-absolute`` … ``ref:none``.
+        path_or_name: a folder with ``config.json`` and weights, ``ref:learned-absolute`` … ``ref:none``, a hub id
+            ``org/name`` already in the local hub cache, or a ``.gguf`` file (dequantised while loading).
         scheme: state the position scheme by hand (one name for all layers, or one per layer) when detection
             cannot tell; names: ``learned-absolute``, ``sinusoidal``, ``relative-bias``, ``alibi``, ``rope``,
             ``none``.
         allow_pickle: also accept ``*.bin`` pickle weights (loaded with ``weights_only``).
         trust_remote_code: run modelling code shipped inside the folder. Off by default; only for folders you trust.
         training_length: the context length the model was trained on, if its config does not record it.
+        dtype: ``"float32"`` (default), ``"bfloat16"`` or ``"float16"``: the weights are kept in it; attention
+            scores are always computed and reduced in float32.
     """
+    torch_dtype = weights_dtype(dtype)
     loc = locate(path_or_name, allow_pickle=allow_pickle, trust_remote_code=trust_remote_code)
+    if loc.gguf:
+        return _load_gguf(loc, torch_dtype, scheme=scheme, training_length=training_length)
     p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
+    if use_safetensors:
+        problem = position_tensor_problem(p)
+        if problem:
+            raise AttnposError(f"{p}: {problem}")
     from transformers import AutoConfig, AutoTokenizer
 
     if loc.reference or str(cfg_raw.get("model_type", "")).startswith("attnpos-"):
@@ -137,7 +158,7 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     bars = hf_logging.is_progress_bar_enabled()
     hf_logging.disable_progress_bar()   # a few-MB checkpoint does not need a loading bar in every notebook cell
     try:
-        model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch.float32,
+        model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch_dtype,
                                           use_safetensors=use_safetensors, weights_only=True,
                                           trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001 - wrap with context
@@ -159,6 +180,62 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
     return from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
+
+
+def weights_dtype(name) -> torch.dtype:
+    """The torch dtype of a ``--dtype`` name; a clear error for one the CPU cannot compute in."""
+    from .core.settings import DTYPES
+
+    if isinstance(name, torch.dtype):
+        name = str(name).replace("torch.", "")
+    if name not in DTYPES:
+        raise AttnposError(f"Unknown dtype {name!r}; choose one of {', '.join(DTYPES)} (attention scores are computed "
+                           "in float32 whatever the weights' dtype).")
+    dt = getattr(torch, name)
+    if dt != torch.float32:
+        try:   # the matrix product every layer needs, tried once on tiny tensors
+            a = torch.ones(4, 4, dtype=dt)
+            torch.nn.functional.linear(a, a).sum().item()
+            torch.nn.functional.layer_norm(a, (4,)).sum().item()
+        except RuntimeError as exc:
+            raise AttnposError(f"This CPU build of torch cannot compute in {name} ({_one_line(exc)}). Load the model "
+                               "in float32 (--dtype float32), or bfloat16 if that works here.") from None
+    return dt
+
+
+def _load_gguf(loc, dtype, *, scheme=None, training_length=None) -> Subject:
+    """Load a GGUF file with transformers' GGUF loading (every tensor dequantised by the gguf package, then kept
+    in ``dtype``). GGUF-loaded models refuse ``save_pretrained``; to keep one as safetensors, build a plain model
+    from its config and copy the weights."""
+    from transformers import AutoConfig, AutoTokenizer
+
+    try:
+        import accelerate  # noqa: F401 - transformers' GGUF loading needs it
+        import gguf  # noqa: F401
+    except ImportError:
+        raise AttnposError("Loading a .gguf file needs the `gguf` and `accelerate` packages: "
+                           "pip install 'attnpos[gguf]'.") from None
+    p, f = loc.path, loc.gguf
+    try:
+        config = AutoConfig.from_pretrained(p, gguf_file=f)
+        model = _model_class(config).from_pretrained(p, gguf_file=f, config=config, attn_implementation="eager",
+                                                     dtype=dtype)
+        tokenizer = AutoTokenizer.from_pretrained(p, gguf_file=f)
+    except (ValueError, NotImplementedError, KeyError, RuntimeError) as exc:
+        raise AttnposError(f"transformers could not load {p / f} ({type(exc).__name__}: {_one_line(exc)}). Its GGUF "
+                           "loading covers some architectures and quantisations only; convert the model to a "
+                           "transformers folder (config.json + safetensors) where it was made.") from None
+    model.eval()
+    subject = from_model(model, tokenizer, name=loc.name, path=str(p / f), scheme=scheme,
+                         training_length=training_length)
+    packed = [n for n, t in model.named_parameters() if not t.is_floating_point()]
+    if packed:    # transformers keeps some architectures' blocks packed when a GGUF matmul kernel is installed
+        subject.notes.append(f"Loaded from GGUF ({f}): {len(packed)} weight(s) stay in their quantised blocks and are "
+                             "dequantised by every matrix product; attnpos measures the model as it computes.")
+    else:
+        subject.notes.append(f"Loaded from GGUF ({f}): every tensor was dequantised while loading, so attnpos "
+                             f"measures the dequantised weights in {str(dtype).replace('torch.', '')}.")
+    return subject
 
 
 def _one_line(exc: BaseException, limit: int = 400) -> str:
@@ -189,7 +266,7 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
     config = model.config
     devices = sorted({str(t.device) for t in list(model.parameters()) + list(model.buffers())} - {"cpu"})
     if devices:
-        raise AttnposError(f"The model's weights are on {', '.join(devices)}; attnpos records on the CPU (float32). "
+        raise AttnposError(f"The model's weights are on {', '.join(devices)}; attnpos records on the CPU. "
                            "Move the model first with `model.to('cpu')`, or load it with attnpos.load(folder).")
     bad = has_nonfinite_weights(model)
     if bad:
@@ -197,7 +274,15 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
                            f"({', '.join(bad[:4])}{', …' if len(bad) > 4 else ''}), so its attention cannot be "
                            "measured. Repair or re-export the checkpoint (a NaN often comes from a diverged "
                            "training run or a failed conversion).")
-    sites = _find_sites(model)
+    cfg_dict = config.to_dict()
+    problem = position_config_problem(cfg_dict)
+    if problem:
+        raise AttnposError(f"The config of {type(model).__name__}: {problem}")
+    problem = head_count_problem(cfg_dict)
+    if problem:
+        raise AttnposError(f"The config of {type(model).__name__} has {problem}. transformers' own forward pass "
+                           "rejects such a config (or runs it wrong); fix the head counts in the config.")
+    sites, excluded = _find_sites(model)
     if not sites:
         raise AttnposError(f"Found no self-attention modules in {type(model).__name__}. attnpos looks for "
                            "modules whose class name ends in 'Attention'.")
@@ -239,12 +324,19 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
         limit = tl if tl and tl < 10**7 else None
     train_len = training_length or getattr(config, "attnpos_training_length", None)
     uses_pos = _uses_position_ids(model, sites)
+    notes = _site_notes(sites, excluded)
+    fraction = schemes.rope_fraction(model) if "rope" in detected else None
+    if fraction is not None and fraction < 1:
+        notes.append(f"RoPE rotates {fraction:g} of each head's dimensions (partial_rotary_factor); the rest of each "
+                     "query and key carries no position.")
+    else:
+        fraction = None
     return Subject(model=model, tokenizer=tokenizer, name=name, path=path,
                    architecture=type(model).__name__, sites=sites, causal=causal,
                    context_limit=int(limit) if limit else None,
                    training_length=int(train_len) if train_len else None,
                    fingerprint=fingerprint(model), uses_position_ids=uses_pos, n_heads=n_heads,
-                   is_encoder_decoder=is_ed)
+                   is_encoder_decoder=is_ed, notes=notes, excluded=excluded, rope_fraction=fraction)
 
 
 def _cfg(config, *names):
@@ -257,8 +349,9 @@ def _cfg(config, *names):
 
 # ---------------------------------------------------------------------------------------------------- sites
 
-def _find_sites(model) -> list[AttentionSite]:
-    """Innermost modules named *Attention, in order; cross-attention is left out."""
+def _find_sites(model) -> tuple[list[AttentionSite], list[str]]:
+    """Innermost modules named *Attention, in the order they run, one site per application (a module shared across
+    depth, ALBERT-style, gives one site per time it is applied); cross-attention is left out and returned by name."""
     named = list(model.named_modules())
     attn = [(n, m) for n, m in named if type(m).__name__.endswith("Attention")]
     inner = []
@@ -267,12 +360,13 @@ def _find_sites(model) -> list[AttentionSite]:
         if not has_child:
             inner.append((n, m))
     is_ed = bool(getattr(model.config, "is_encoder_decoder", False))
+    excluded = [n for n, m in inner if is_cross_attention(n, m)]
+    inner = _applications(model, [(n, m) for n, m in inner if n not in excluded])
     sites: list[AttentionSite] = []
     counters: dict[str, int] = {}
+    calls: dict[int, int] = {}
     for n, m in inner:
         low = n.lower()
-        if "encdec" in low or "cross" in low or getattr(m, "is_cross_attention", False):
-            continue
         if is_ed:
             stack = "decoder" if "decoder" in low.split(".") else "encoder"
         else:
@@ -280,8 +374,68 @@ def _find_sites(model) -> list[AttentionSite]:
         causal = _is_causal_module(model, m, stack)
         idx = counters.get(stack, 0)
         counters[stack] = idx + 1
-        sites.append(AttentionSite(stack=stack, layer=idx, name=n, module=m, causal=causal, scheme=""))
-    return sites
+        app = calls.get(id(m), 0)
+        calls[id(m)] = app + 1
+        sites.append(AttentionSite(stack=stack, layer=idx, name=n, module=m, causal=causal, scheme="",
+                                   application=app))
+    for site in sites:
+        site.shared = calls[id(site.module)]
+    return sites, excluded
+
+
+CROSS_NAMES = ("encoder_attn", "crossattention", "cross_attn", "cross_attention", "encdecattention", "enc_dec_attn",
+               "encoder_decoder_attention")
+"""Last components of module names that hold cross-attention (BART, mBART, Marian, Pegasus, Whisper:
+``encoder_attn``; BERT as a decoder: ``crossattention``; T5: ``EncDecAttention``)."""
+
+
+def is_cross_attention(name: str, module) -> bool:
+    """Whether the attention module ``name`` attends from one sequence to another (decoder → encoder)."""
+    last = name.lower().rsplit(".", 1)[-1]
+    if last in CROSS_NAMES or "cross" in last or "encdec" in last:
+        return True
+    return bool(getattr(module, "is_cross_attention", False))
+
+
+def _applications(model, inner: list[tuple[str, Any]]) -> list[tuple[str, Any]]:
+    """The self-attention modules in the order one forward pass applies them. ALBERT applies its layer groups
+    ``num_hidden_layers`` times (group ``int(i / (num_hidden_layers / num_hidden_groups))`` at depth i, each group's
+    ``inner_group_num`` layers in turn — transformers' AlbertTransformer.forward); every other architecture applies
+    each module once. The capture checks at run time that no module is called more often than it has sites."""
+    config = model.config
+    groups = getattr(config, "num_hidden_groups", None)
+    if getattr(config, "model_type", "") != "albert" or not groups:
+        return inner
+    depth = int(config.num_hidden_layers)
+    by_group: dict[int, list[tuple[str, Any]]] = {}
+    for n, m in inner:
+        parts = n.split(".")
+        if "albert_layer_groups" not in parts:
+            return inner
+        by_group.setdefault(int(parts[parts.index("albert_layer_groups") + 1]), []).append((n, m))
+    order = []
+    for i in range(depth):
+        order.extend(by_group.get(int(i / (depth / groups)), []))
+    return order
+
+
+def _site_notes(sites: list[AttentionSite], excluded: list[str]) -> list[str]:
+    notes = []
+    if excluded:
+        shown = ", ".join(excluded[:3]) + (", …" if len(excluded) > 3 else "")
+        notes.append(f"Left out {len(excluded)} cross-attention module(s) ({shown}): they attend from decoder "
+                     "positions to encoder positions, two different sequences, so distances and slots have no "
+                     "common meaning there. attnpos measures self-attention only; the cross-attention runs "
+                     "unchanged with the mask the model gives it.")
+    shared: dict[str, list[AttentionSite]] = {}
+    for site in sites:
+        if site.shared > 1:
+            shared.setdefault(site.name, []).append(site)
+    for name, group in shared.items():
+        layers = ", ".join(f"{s.stack}:L{s.layer}" if s.stack != "main" else f"L{s.layer}" for s in group)
+        notes.append(f"One attention module ({name}) is applied {len(group)} times (layers shared across depth); "
+                     f"each application is its own layer: {layers}.")
+    return notes
 
 
 def _is_causal_module(model, module, stack) -> bool:

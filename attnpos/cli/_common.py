@@ -39,7 +39,8 @@ def positive_number(text: str) -> float:
 
 def add_model_arguments(p: argparse.ArgumentParser, default: str | None = "ref:rope", name: str = "model") -> None:
     p.add_argument(name, nargs="?" if default else None, default=default,
-                   help="model folder (config.json + *.safetensors) or ref:<scheme>" +
+                   help="model folder (config.json + *.safetensors), ref:<scheme>, a hub id org/name in the "
+                        "local hub cache, or a .gguf file" +
                         (f" (default {default})" if default else ""))
     p.add_argument("--scheme", default=None,
                    help="state the position scheme by hand (one name, or comma-separated per layer): "
@@ -52,6 +53,11 @@ def add_loading_arguments(p: argparse.ArgumentParser) -> None:
                    help="also load pickle (*.bin) weights, with torch's weights_only restriction")
     p.add_argument("--trust-remote-code", action="store_true",
                    help="run modelling code shipped inside the model folder (only for folders you trust)")
+    from ..core.settings import DTYPES
+
+    p.add_argument("--dtype", choices=DTYPES, default=DTYPES[0],
+                   help="keep the weights in this dtype (attention scores are always computed in float32; "
+                        f"default {DTYPES[0]})")
 
 
 def add_text_arguments(p: argparse.ArgumentParser, windows: bool = True) -> None:
@@ -138,7 +144,7 @@ def load_subject(args, name: str = "model"):
     from ..subject import load
 
     return load(getattr(args, name), scheme=scheme_argument(args), allow_pickle=args.allow_pickle,
-                trust_remote_code=args.trust_remote_code)
+                trust_remote_code=args.trust_remote_code, dtype=getattr(args, "dtype", "float32"))
 
 
 def write(what: str, path: Path, save) -> None:

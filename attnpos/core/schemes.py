@@ -127,6 +127,32 @@ def has_rotary(model) -> bool:
             or bool(getattr(config, "rope_parameters", None)) or bool(getattr(config, "rope_theta", None)))
 
 
+def rope_fraction(model) -> float | None:
+    """The share of each head's dimensions RoPE rotates: transformers 5 keeps it in
+    ``rope_parameters["partial_rotary_factor"]`` (older configs: ``rotary_pct``, ``partial_rotary_factor``;
+    CodeGen and GPT-J: ``rotary_dim`` out of the head width); None when the config states none (all dimensions
+    rotate). A factor that rotates no whole dimension pair counts as 0
+    (the model computes ``int(head_dim * factor)`` rotated dimensions — transformers' GPT-NeoX attention)."""
+    config = model.config
+    rp = getattr(config, "rope_parameters", None)
+    factor = rp.get("partial_rotary_factor") if isinstance(rp, dict) else None
+    for name in ("partial_rotary_factor", "rotary_pct"):
+        if factor is None:
+            factor = getattr(config, name, None)
+    heads = getattr(config, "num_attention_heads", None)
+    head_dim = getattr(config, "head_dim", None) or (config.hidden_size // heads
+                                                     if heads and getattr(config, "hidden_size", None) else None)
+    rotary_dim = getattr(config, "rotary_dim", None)     # CodeGen, GPT-J: rotated dimensions per head
+    if factor is None and isinstance(rotary_dim, int) and head_dim:
+        factor = rotary_dim / head_dim
+    if factor is None:
+        return None
+    factor = float(factor)
+    if head_dim and int(head_dim * factor) == 0:
+        return 0.0
+    return factor
+
+
 def _attn_config_alibi(config) -> bool:
     """MPT keeps its ALiBi flag in a nested attention config (an object, or a dict in older files)."""
     ac = getattr(config, "attn_config", None)
@@ -179,9 +205,8 @@ def _detect_none(model) -> DetectResult:
     flags = _no_rope_layers(model)
     if flags is not None:
         return [not f for f in flags]
-    c = model.config
-    if getattr(c, "model_type", "") == "gpt_neox" and float(getattr(c, "rotary_pct", 1.0) or 0) == 0.0:
-        return True
+    if has_rotary(model) and rope_fraction(model) == 0.0:
+        return True     # rotary modules built, but a partial rotary factor of 0 rotates nothing
     return None
 
 

@@ -29,3 +29,6 @@ STRETCH_SEQUENCES = 8
 STRETCH_BOOT = 200
 #: texts (cut to the training length) on which the RoPE bands of the unscaled model are measured
 STRETCH_BAND_TEXTS = 4
+#: the dtypes weights can be kept in (attnpos scan --dtype); the first is the default. Attention scores are always
+#: computed and reduced in float32, whatever the weights' dtype.
+DTYPES = ("float32", "bfloat16", "float16")

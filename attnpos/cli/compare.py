@@ -51,7 +51,8 @@ def run(args) -> int:
         if s is None:
             from ..subject import load
 
-            s = load(getattr(args, name), allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code)
+            s = load(getattr(args, name), allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code,
+                     allow_missing_weights=args.allow_missing_weights)
         sides.append(s)
     res = compare(*sides, args.raw_texts, all_heads=args.all, n_boot=args.boot, shift=not args.no_shift,
                   induction=not args.no_induction, max_tokens=args.max_tokens)

@@ -1,0 +1,146 @@
+"""Faults that would lose work or measure the wrong model (loading, outputs, findings, interrupts, tampered files).
+
+Each test was written against the behaviour before the fix and failed there. No external check here: the
+package's own safety rules.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+import warnings
+from pathlib import Path
+
+import pytest
+import torch
+
+from attnpos.errors import AttnposError
+from hostile_kit import FERRY, assert_clean_error
+
+
+# ------------------------------------------------------------------------------------------ 1. missing weights
+
+def _edited_copy(src: Path, dst: Path, edit=None, config=None) -> Path:
+    """A copy of checkpoint ``src`` whose tensors went through ``edit(dict) -> dict`` and config through
+    ``config(dict)``."""
+    from safetensors.torch import load_file, save_file
+
+    shutil.copytree(src, dst)
+    if edit is not None:
+        tensors = edit(load_file(dst / "model.safetensors"))
+        save_file(tensors, dst / "model.safetensors", metadata={"format": "pt"})
+    if config is not None:
+        cfg = json.loads((dst / "config.json").read_text())
+        config(cfg)
+        (dst / "config.json").write_text(json.dumps(cfg))
+    return dst
+
+
+def _drop_layer1_qk(t):
+    return {k: v for k, v in t.items() if ".h.1.attn.c_attn." not in k}
+
+
+def test_missing_tensors_are_refused_and_named(gpt2_dir, tmp_path):
+    import attnpos
+
+    d = _edited_copy(gpt2_dir, tmp_path / "holes", _drop_layer1_qk)
+    with pytest.raises(AttnposError, match=r"missing.*h\.1\.attn\.c_attn\.weight") as err:
+        attnpos.load(d)
+    assert "allow_missing_weights" in str(err.value) and "above report" not in str(err.value)
+
+
+def test_allow_missing_weights_proceeds_and_is_stamped(gpt2_dir, tmp_path):
+    import attnpos
+
+    d = _edited_copy(gpt2_dir, tmp_path / "holes", _drop_layer1_qk)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        s = attnpos.load(d, allow_missing_weights=True)
+    assert any("c_attn.weight" in str(w.message) for w in caught)
+    assert "transformer.h.1.attn.c_attn.weight" in s.missing_weights
+    facts = s.describe()                       # the model section every result carries
+    assert "transformer.h.1.attn.c_attn.weight" in facts["missing_weights"]
+    assert any("randomly initialised" in n for n in facts["notes"])
+    assert attnpos.load(gpt2_dir).describe()["missing_weights"] == []
+
+
+def test_cli_allow_missing_weights_prints_a_notice_and_stamps_the_json(gpt2_dir, tmp_path, cli):
+    d = _edited_copy(gpt2_dir, tmp_path / "holes", _drop_layer1_qk)
+    text = tmp_path / "t.txt"
+    text.write_text(FERRY)
+    code, _, err = cli("scan", d, "--text", text, "--no-shift", "--no-induction", "--boot", "0")
+    assert_clean_error(code, err, "missing", "h.1.attn.c_attn", "--allow-missing-weights")
+    out = tmp_path / "scan.json"
+    code, _, err = cli("scan", d, "--text", text, "--no-shift", "--no-induction", "--boot", "0", "--json", out,
+                       "--allow-missing-weights")
+    assert code == 0, err
+    assert "notice:" in err and "c_attn" in err
+    model = json.loads(out.read_text())["model"]
+    assert "transformer.h.1.attn.c_attn.weight" in model["missing_weights"]
+
+
+def test_a_tensor_of_another_shape_is_named(gpt2_dir, tmp_path):
+    import attnpos
+
+    def reshape(t):
+        t["transformer.h.0.attn.c_proj.weight"] = torch.zeros(32, 16)
+        return t
+
+    d = _edited_copy(gpt2_dir, tmp_path / "shape", reshape)
+    with pytest.raises(AttnposError, match=r"another shape.*h\.0\.attn\.c_proj\.weight"):
+        attnpos.load(d)
+
+
+def test_unexpected_tensors_inside_the_model_are_refused_outside_only_noted(gpt2_dir, tmp_path):
+    import attnpos
+
+    def extra_inside(t):
+        t["transformer.h.0.attn.surplus"] = torch.zeros(3)
+        return t
+
+    def extra_outside(t):
+        t["cls.predictions.bias"] = torch.zeros(3)
+        return t
+
+    with pytest.raises(AttnposError, match=r"do not belong.*surplus"):
+        attnpos.load(_edited_copy(gpt2_dir, tmp_path / "inside", extra_inside))
+    s = attnpos.load(_edited_copy(gpt2_dir, tmp_path / "outside", extra_outside))
+    assert s.missing_weights == [] and any("cls.predictions.bias" in n for n in s.notes)
+
+
+def _no_allocation(monkeypatch):
+    """Make any model construction fail loudly: a refusal must come before it."""
+    import transformers
+
+    def boom(*a, **k):
+        raise AssertionError("a model was built before the refusal")
+
+    monkeypatch.setattr(transformers.PreTrainedModel, "from_pretrained", classmethod(boom))
+
+
+@pytest.mark.parametrize("key, value, words", [
+    ("n_layer", 2000, ("2000 layers", "only 2")),
+    ("n_positions", 10**8, ("100000000 positions", "40 rows")),
+])
+def test_a_config_claiming_more_than_the_weights_hold_is_refused_before_allocation(gpt2_dir, tmp_path, monkeypatch,
+                                                                                   cli, key, value, words):
+    import attnpos
+
+    d = _edited_copy(gpt2_dir, tmp_path / "big", config=lambda c: c.update({key: value}))
+    _no_allocation(monkeypatch)
+    with pytest.raises(AttnposError) as err:
+        attnpos.load(d)
+    for w in words:
+        assert w in str(err.value)
+    code, _, err = cli("scan", d)
+    assert_clean_error(code, err, *words)
+
+
+def test_a_model_bigger_than_the_memory_available_is_refused_with_the_estimate(monkeypatch):
+    import attnpos
+    from attnpos import sizes
+
+    monkeypatch.setattr(sizes, "available_memory", lambda: 2**20)
+    _no_allocation(monkeypatch)
+    with pytest.raises(AttnposError, match=r"would need about [\d.]+ MiB of memory.*1\.0 MiB available"):
+        attnpos.load("ref:rope")

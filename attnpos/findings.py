@@ -609,7 +609,7 @@ class Findings:
 
     def _write(self, findings: list[Finding]) -> None:
         try:
-            write_atomic(self.path, _encode(findings))
+            write_atomic(self.path, _encode(findings), findings=True)
         except OSError as exc:
             raise AttnposError(
                 f"Could not save the findings file {str(self.path)!r} ({exc.strerror or exc}); the file on disk is "
@@ -833,7 +833,7 @@ class Findings:
         else:
             data = _encode(self._read())
         try:
-            write_atomic(out.resolve(), data)
+            write_atomic(out.resolve(), data, findings=suffix == ".json")  # a JSON export is a findings file
         except OSError as exc:
             raise AttnposError(
                 f"Could not write the export {str(out)!r} ({exc.strerror or exc}). Check free space and "

@@ -28,7 +28,10 @@ def _is_scan_file(x: str) -> bool:
 
 def check(args) -> None:
     inputs = {"A": Path(args.a) if _is_scan_file(args.a) else None,
-              "B": Path(args.b) if _is_scan_file(args.b) else None, "--text": args.text}
+              "B": Path(args.b) if _is_scan_file(args.b) else None, "--text": c.TextInputs(args.text or [])}
+    for name in ("a", "b"):
+        if not _is_scan_file(getattr(args, name)):
+            inputs[f"model {name.upper()}"] = c.model_files(c.check_model(args, name))
     c.check_outputs({"--json": args.json}, inputs)
     args.sides = []
     for name in ("a", "b"):
@@ -38,7 +41,6 @@ def check(args) -> None:
 
             args.sides.append(Scan.load(x))          # a damaged scan file is refused now
         else:
-            c.check_model(args, name)
             args.sides.append(None)
     args.raw_texts = None if all(s is not None for s in args.sides) else c.read_texts(args)
 

@@ -144,3 +144,70 @@ def test_a_model_bigger_than_the_memory_available_is_refused_with_the_estimate(m
     _no_allocation(monkeypatch)
     with pytest.raises(AttnposError, match=r"would need about [\d.]+ MiB of memory.*1\.0 MiB available"):
         attnpos.load("ref:rope")
+
+
+# ------------------------------------------------------------------------------------------ 2. outputs over inputs
+
+@pytest.fixture
+def notes(tmp_path) -> Path:
+    from attnpos.findings import Findings
+
+    path = tmp_path / "notes.json"
+    Findings(path).add("L0.H1", "anchors on the first token")
+    return path
+
+
+def _notes_intact(path: Path) -> None:
+    from attnpos.findings import Findings
+
+    assert [f.body for f in Findings(path).all()] == ["anchors on the first token"]
+
+
+@pytest.mark.parametrize("argv", [
+    ["scan", "ref:rope", "--json", "{notes}", "--findings", "{notes}"],
+    ["scan", "ref:rope", "--json", "{notes}", "--findings", "{notes}", "--html", "{tmp}/r.html"],
+    ["scan", "ref:rope", "--html", "{tmp}/r.html", "--json", "{tmp}/sub/../notes.json", "--findings", "{notes}"],
+    ["scan", "ref:rope", "--json", "{notes}"],                    # a findings file not named as --findings
+    ["scan", "ref:rope", "--html", "{notes}"],
+    ["probe", "ref:rope", "--json", "{notes}"],
+    ["length", "ref:rope", "--to", "256", "--json", "{notes}"],
+    ["ablate", "ref:rope", "--json", "{notes}"],
+    ["compare", "ref:rope", "ref:none", "--json", "{notes}"],
+])
+def test_an_output_over_a_findings_file_is_refused_before_any_work(argv, notes, tmp_path, cli, monkeypatch):
+    (tmp_path / "sub").mkdir()
+    _no_allocation(monkeypatch)
+    code, _, err = cli(*[a.format(notes=notes, tmp=tmp_path) for a in argv])
+    assert_clean_error(code, err, "notes.json")
+    _notes_intact(notes)
+
+
+def test_an_output_into_the_model_folder_or_over_a_text_is_refused(gpt2_dir, tmp_path, cli, monkeypatch):
+    d = shutil.copytree(gpt2_dir, tmp_path / "model")
+    config = (d / "config.json").read_bytes()
+    texts = tmp_path / "texts"
+    texts.mkdir()
+    (texts / "a.txt").write_text(FERRY)
+    _no_allocation(monkeypatch)
+    for argv in (["scan", d, "--json", d / "config.json"], ["probe", d, "--json", d / "model.safetensors"],
+                 ["scan", d, "--text", texts, "--html", texts / "a.txt"],
+                 ["compare", d, "ref:rope", "--json", d / "config.json"]):
+        code, _, err = cli(*argv)
+        assert_clean_error(code, err, "input")
+    assert (d / "config.json").read_bytes() == config and (texts / "a.txt").read_text() == FERRY
+
+
+def test_a_read_only_output_is_refused_up_front(tmp_path, cli, monkeypatch):
+    out = tmp_path / "old.json"
+    out.write_text("{}")
+    out.chmod(0o444)
+    _no_allocation(monkeypatch)
+    code, _, err = cli("scan", "ref:rope", "--json", out)
+    assert_clean_error(code, err, "read-only")
+    assert out.read_text() == "{}"
+
+
+def test_reference_corpus_out_is_checked(tmp_path, cli, notes):
+    code, _, err = cli("reference", "corpus", "--out", notes)
+    assert_clean_error(code, err, "findings file")
+    _notes_intact(notes)

@@ -211,3 +211,77 @@ def test_reference_corpus_out_is_checked(tmp_path, cli, notes):
     code, _, err = cli("reference", "corpus", "--out", notes)
     assert_clean_error(code, err, "findings file")
     _notes_intact(notes)
+
+
+# ------------------------------------------------------------------------------------------ 3. and 5. findings
+
+def test_recover_keeps_every_note_that_is_still_readable(tmp_path):
+    from attnpos.findings import Findings
+
+    path = tmp_path / "notes.json"
+    store = Findings(path)
+    for n in range(3):
+        store.add(f"L{n}.H0", f"note {n}")
+    doc = json.loads(path.read_text())
+    doc["findings"][1]["layer"] = 10**6            # one entry made unreadable by hand
+    path.write_text(json.dumps(doc))
+    with pytest.raises(AttnposError, match="corrupt"):
+        store.all()
+    backup = store.recover()
+    assert [f.body for f in store.all()] == ["note 0", "note 2"]
+    assert json.loads(backup.read_text()) == doc
+    store.add("L5.H1", "after recovery")               # the store works again
+    assert len(store.all()) == 3
+
+
+def test_add_and_update_never_write_what_the_reader_refuses(tmp_path):
+    from attnpos.findings import Findings
+
+    store = Findings(tmp_path / "notes.json")
+    for bad in ("L1000000.H0", {"kind": "head", "layer": 10**6, "head": 0}, {"kind": "layer", "layer": -1}):
+        with pytest.raises(AttnposError):
+            store.add(bad, "x")
+    f = store.add("L3.H2", "ok")
+    with pytest.raises(AttnposError):
+        store.update(f.id, status="maybe")
+    store.remove(f.id)                                  # the store still works: nothing bricked it
+    assert store.all() == []
+
+
+def test_a_symlinked_findings_path_is_announced_and_never_written_through_by_recover(tmp_path):
+    from attnpos.findings import Findings, LinkNotice
+
+    target_dir, link_dir = tmp_path / "system", tmp_path / "mine"
+    target_dir.mkdir()
+    link_dir.mkdir()
+    target = target_dir / "passwd"
+    target.write_text("root:x:0:0:root:/root:/bin/sh\n")
+    link = link_dir / "notes.json"
+    link.symlink_to(target)
+    with pytest.warns(LinkNotice, match="symbolic link"):
+        store = Findings(link)
+    with pytest.raises(AttnposError, match="corrupt"):
+        store.all()
+    with pytest.raises(AttnposError, match="corrupt"):
+        store.add("model", "x")
+    with pytest.raises(AttnposError, match="symbolic link"):
+        store.recover()
+    assert target.read_text() == "root:x:0:0:root:/root:/bin/sh\n"
+    assert sorted(p.name for p in target_dir.iterdir()) == ["passwd"]     # no backup or lock beside the target
+    assert link.is_symlink() and any(".corrupt-" in p.name for p in link_dir.iterdir())
+
+
+def test_a_read_only_findings_file_is_not_rewritten(tmp_path):
+    from attnpos.findings import Findings
+
+    path = tmp_path / "notes.json"
+    store = Findings(path)
+    f = store.add("model", "keep")
+    before = path.read_bytes()
+    path.chmod(0o444)
+    for change in (lambda: store.add("L0", "new"), lambda: store.update(f.id, body="changed"),
+                   lambda: store.remove(f.id)):
+        with pytest.raises(AttnposError, match="read-only"):
+            change()
+    assert path.read_bytes() == before and (path.stat().st_mode & 0o777) == 0o444
+    assert [g.body for g in store.all()] == ["keep"]

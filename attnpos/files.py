@@ -81,6 +81,19 @@ def temp_copy(path: Path, data: bytes) -> Path:
     return tmp
 
 
+def safe_text(text: str) -> str:
+    r"""``text`` with the bytes of a name that is not UTF-8 (Python's surrogate escapes) shown as ``\xNN``, so a
+    file name in another encoding can be written into JSON, HTML or Markdown.
+
+    >>> print(safe_text(b"caf\xe9.txt".decode("utf-8", "surrogateescape")))
+    caf\xe9.txt
+    """
+    try:
+        return text.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "backslashreplace").decode("utf-8")
+
+
 def encode_text(data: bytes | str, path: Path) -> bytes:
     """Text as UTF-8; a lone surrogate (from a file name that is not UTF-8) is an error before anything is written."""
     if isinstance(data, bytes):

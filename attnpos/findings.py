@@ -61,7 +61,7 @@ import filelock
 
 from .core import keys
 from .errors import AttnposError
-from .files import write_atomic, write_new
+from .files import safe_text, write_atomic, write_new
 
 FORMAT = "attnpos.findings/1"
 """The ``format`` value this module writes and reads."""
@@ -832,7 +832,7 @@ class Findings:
         order = sorted(range(len(findings)), key=lambda n: (
             _target_sort_key(findings[n].kind, findings[n].stack, findings[n].layer, findings[n].head), n))
         lines = ["# attnpos findings", ""]
-        where = f"File: {_md_cell(str(self.path))}; {len(findings)} finding{'' if len(findings) == 1 else 's'}."
+        where = f"File: {_md_cell(safe_text(str(self.path)))}; {len(findings)} finding{'' if len(findings) == 1 else 's'}."
         if fingerprint is None:
             lines.append(f"{where} Staleness not checked (no subject fingerprint given).")
         else:

@@ -24,6 +24,7 @@ import torch
 
 from .core import schemes
 from .errors import AttnposError
+from .files import safe_text
 from .locate import locate
 
 ENCODER_TYPES = {"bert", "roberta", "distilbert", "electra", "xlm-roberta", "camembert", "mpnet", "deberta",
@@ -167,7 +168,8 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     except Exception as exc:  # noqa: BLE001
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
-    subject = from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
+    subject = from_model(model, tokenizer, name=safe_text(name), path=safe_text(str(p)), scheme=scheme,
+                         training_length=training_length)
     subject.missing_weights = random_init
     if random_init:
         subject.notes.append(f"{len(random_init)} tensor(s) missing from the weights or of another shape were left "

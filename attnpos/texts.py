@@ -22,6 +22,7 @@ from typing import Iterable, Sequence
 import numpy as np
 
 from .errors import AttnposError
+from .files import safe_text
 
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_text"
 
@@ -109,9 +110,10 @@ def read(inputs: Iterable[str | Path] | str | Path, *, lines: bool = False) -> l
             if lines:
                 for k, line in enumerate(body.splitlines()):
                     if line.strip():
-                        out.append(RawText(name=f"{f.stem}:{k + 1}", text=line, source=str(f)))
+                        out.append(RawText(name=f"{safe_text(f.stem)}:{k + 1}", text=line,
+                                           source=safe_text(str(f))))
             else:
-                out.append(RawText(name=f.stem, text=body, source=str(f)))
+                out.append(RawText(name=safe_text(f.stem), text=body, source=safe_text(str(f))))
     return check(out)
 
 

@@ -285,3 +285,92 @@ def test_a_read_only_findings_file_is_not_rewritten(tmp_path):
             change()
     assert path.read_bytes() == before and (path.stat().st_mode & 0o777) == 0o444
     assert [g.body for g in store.all()] == ["keep"]
+
+
+# ------------------------------------------------------------------------------------------ 4. atomic writes
+
+def _no_temporaries(folder: Path) -> bool:
+    return not [p for p in folder.iterdir() if p.name.endswith(".tmp")]
+
+
+@pytest.mark.parametrize("fault", ["fsync", "replace"])
+def test_a_failure_part_way_leaves_the_old_file_and_no_temporary(tmp_path, monkeypatch, fault):
+    import os
+
+    from attnpos import files
+    from attnpos.report import write_report
+    from attnpos.views.synthetic import synthetic_scan
+
+    scan = synthetic_scan(2, 2, seed=0)
+    for save in (scan.save, lambda p: write_report(scan, p)):
+        out = tmp_path / "out.file"
+        out.write_text("the old file")
+
+        def full_disk(*a, **k):
+            raise OSError(28, "No space left on device")
+
+        monkeypatch.setattr(files.os, fault, full_disk)
+        with pytest.raises(OSError):
+            save(out)
+        monkeypatch.setattr(files.os, fault, getattr(os, fault))
+        assert out.read_text() == "the old file" and _no_temporaries(tmp_path)
+
+
+def test_raced_writers_to_one_path_all_succeed(tmp_path):
+    import threading
+
+    from attnpos.files import write_atomic
+
+    out, errors = tmp_path / "report.html", []
+
+    def writer(k):
+        try:
+            for n in range(15):
+                write_atomic(out, f"writer {k} pass {n}\n" * 200)
+        except Exception as exc:  # noqa: BLE001 - collected for the assert
+            errors.append(exc)
+
+    threads = [threading.Thread(target=writer, args=(k,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert errors == []
+    lines = set(out.read_text().splitlines())
+    assert len(lines) == 1 and _no_temporaries(tmp_path)
+
+
+# ------------------------------------------------------------------------------------------ 8. names not in UTF-8
+
+def test_file_names_that_are_not_utf8_reach_json_report_and_markdown(tmp_path):
+    import os
+
+    from attnpos import texts
+    from attnpos.findings import Findings
+    from attnpos.report import write_report
+    from attnpos.views.synthetic import synthetic_scan
+
+    folder = Path(os.fsdecode(bytes(tmp_path) + b"/caf\xe9"))
+    folder.mkdir()
+    (folder / os.fsdecode(b"r\xe9cit.txt")).write_text(FERRY)
+    [raw] = texts.read([folder])
+    assert raw.name == "r\\xe9cit" and "caf\\xe9" in raw.source
+    scan = synthetic_scan(2, 2, seed=0)
+    scan.texts[0]["name"], scan.texts[0]["source"] = raw.name, raw.source
+    scan.save(folder / "scan.json")
+    write_report(scan, folder / "r.html")
+    store = Findings(folder / "notes.json")
+    store.add("model", "a note")
+    assert "caf\\\\xe9" in store.export(folder / "notes.md").read_text()      # a Markdown-escaped backslash
+
+
+def test_a_lone_surrogate_in_a_result_is_a_clear_error_and_the_old_file_stays(tmp_path):
+    from attnpos.views.synthetic import synthetic_scan
+
+    scan = synthetic_scan(2, 2, seed=0)
+    out = tmp_path / "scan.json"
+    out.write_text("old")
+    scan.texts[0]["name"] = "bad\udce9"
+    with pytest.raises(AttnposError, match="not valid UTF-8"):
+        scan.save(out)
+    assert out.read_text() == "old" and _no_temporaries(tmp_path)

@@ -417,6 +417,35 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
 
 
 @contextlib.contextmanager
+def hooked(pairs, *, pre: bool = True, with_kwargs: bool = False):
+    """Register a forward hook (``pre=True``: a forward pre-hook) per ``(module, hook)`` pair for the block, and
+    remove every one of them on exit, also on error or Ctrl-C.
+
+    The removal does not rely on handles: a hook is remembered *before* it is registered, and on exit every entry
+    holding that hook object is taken out of its module's hook tables, so an interrupt that lands between a
+    registration and the bookkeeping after it still leaves no hook behind. A user's own hooks are never touched.
+    """
+    placed: list[tuple[torch.nn.Module, Any]] = []
+    try:
+        for m, h in pairs:
+            placed.append((m, h))
+            if pre:
+                m.register_forward_pre_hook(h, with_kwargs=with_kwargs)
+            else:
+                m.register_forward_hook(h, with_kwargs=with_kwargs)
+        yield
+    finally:
+        for m, h in placed:
+            table = m._forward_pre_hooks if pre else m._forward_hooks
+            extras = ((m._forward_pre_hooks_with_kwargs,) if pre else
+                      (m._forward_hooks_with_kwargs, getattr(m, "_forward_hooks_always_called", {})))
+            for key in [k for k, v in table.items() if v is h]:
+                table.pop(key, None)
+                for extra in extras:
+                    extra.pop(key, None)
+
+
+@contextlib.contextmanager
 def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
     """Run ``subject`` through the attention function ``fn`` for the duration of the block.
 
@@ -455,22 +484,16 @@ def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
 def _registry_path(subject: Subject, run: "_Run | None" = None):
     """Switch the model to the capture function for the duration of a run, with a pre-hook on every attention
     module that keeps the rotary (cos, sin) tables it is handed (for reducers that read rotated pairs)."""
-    handles = []
-
     def keep_rotary(module, args, kwargs):
         pe = kwargs.get("position_embeddings")
         if isinstance(pe, (tuple, list)) and len(pe) == 2 and all(isinstance(t, torch.Tensor) for t in pe):
             run.rotary[id(module)] = (pe[0], pe[1])
         return None
 
-    try:
-        with attention_function(subject, capture_attention):
-            for site in subject.sites if run is not None else ():
-                handles.append(site.module.register_forward_pre_hook(keep_rotary, with_kwargs=True))
-            yield
-    finally:
-        for h in handles:
-            h.remove()
+    sites = subject.sites if run is not None else ()
+    with attention_function(subject, capture_attention), \
+            hooked(((site.module, keep_rotary) for site in sites), pre=True, with_kwargs=True):
+        yield
 
 
 def _all_configs(model) -> list:
@@ -494,7 +517,6 @@ def _weights_path(subject: Subject, run_ref: list):
     """Eager output_attentions + a forward hook per attention module that takes and drops the weights."""
     configs = _all_configs(subject.model)
     saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
-    handles = []
 
     def make_hook(site):
         def hook(module, args, kwargs, output):
@@ -522,12 +544,9 @@ def _weights_path(subject: Subject, run_ref: list):
     try:
         for c in configs:
             c._attn_implementation_internal = "eager"
-        for site in subject.sites:
-            handles.append(site.module.register_forward_hook(make_hook(site), with_kwargs=True))
-        yield
+        with hooked(((site.module, make_hook(site)) for site in subject.sites), pre=False, with_kwargs=True):
+            yield
     finally:
-        for h in handles:
-            h.remove()
         for c, v in saved:
             c._attn_implementation_internal = v
 
@@ -618,8 +637,8 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
         from tqdm.auto import tqdm
 
         iterator = tqdm(iterator, desc=f"recording {subject.name}", unit="text")
-    _ACTIVE.append(run)
     try:
+        _ACTIVE.append(run)
         ctx = _registry_path(subject, run) if chosen == "registry" else _weights_path(subject, _ACTIVE)
         with ctx, torch.no_grad():
             for t in iterator:

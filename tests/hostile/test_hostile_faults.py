@@ -374,3 +374,79 @@ def test_a_lone_surrogate_in_a_result_is_a_clear_error_and_the_old_file_stays(tm
     with pytest.raises(AttnposError, match="not valid UTF-8"):
         scan.save(out)
     assert out.read_text() == "old" and _no_temporaries(tmp_path)
+
+
+# ------------------------------------------------------------------------------------------ 7. Ctrl-C during setup
+
+def _interrupt_at(real, k: int, calls: list):
+    """``real`` wrapped: the ``k``-th call registers for real and then raises KeyboardInterrupt (the interrupt lands
+    just after the registration, before any bookkeeping)."""
+
+    def wrapped(*a, **kw):
+        calls.append(1)
+        out = real(*a, **kw)
+        if len(calls) == k:
+            raise KeyboardInterrupt
+        return out
+
+    return wrapped
+
+
+def _logits(s, ids):
+    with torch.no_grad():
+        return s.model(input_ids=torch.tensor([ids])).logits
+
+
+def _interrupt_each_registration(monkeypatch, target, attr, run, s, ids):
+    """Interrupt ``run`` at every registration through ``target.attr`` in turn; returns how many there were."""
+    from hostile_kit import assert_same_state, model_state
+
+    run()      # transformers installs its own output-capturing hooks on the first such forward: not ours
+    before, clean = model_state(s.model), _logits(s, ids)
+    k = 0
+    while True:
+        k += 1
+        with monkeypatch.context() as patch:
+            patch.setattr(target, attr, _interrupt_at(getattr(target, attr), k, []))
+            try:
+                run()
+                interrupted = False
+            except KeyboardInterrupt:
+                interrupted = True
+        assert_same_state(before, model_state(s.model))
+        assert torch.equal(_logits(s, ids), clean)
+        if not interrupted:
+            return k - 1
+
+
+@pytest.mark.parametrize("arch", ["llama", "bloom"])     # the registry path and the eager-weights path
+def test_an_interrupt_at_any_hook_registration_leaves_the_model_as_it_was(arch, monkeypatch):
+    import tiny
+    from attnpos.ablation import ablate
+    from attnpos.capture import record
+    from attnpos.reducers import WeightStats
+
+    s = tiny.subject(arch)
+    ids = s.tokenizer(FERRY)["input_ids"][:24]
+    runs = [lambda: ablate(s, ["L0.H1", "L1.H0"], [FERRY], n_boot=0, progress=False),
+            lambda: record(s, [FERRY], [WeightStats()])]
+    for name in ("register_forward_pre_hook", "register_forward_hook"):
+        total = sum(_interrupt_each_registration(monkeypatch, torch.nn.Module, name, run, s, ids) for run in runs)
+        if name == "register_forward_pre_hook" or arch == "bloom":
+            assert total > 0, name          # the injection really hit registrations
+
+
+@pytest.mark.parametrize("which", ["fn", "mask"])
+def test_an_interrupt_at_a_registry_entry_leaves_the_registries_as_they_were(which, monkeypatch):
+    import tiny
+    from transformers import AttentionInterface
+    from transformers.masking_utils import AttentionMaskInterface
+    from attnpos.capture import record
+    from attnpos.reducers import WeightStats
+
+    s = tiny.subject("llama")
+    ids = s.tokenizer(FERRY)["input_ids"][:24]
+    registry = AttentionInterface if which == "fn" else AttentionMaskInterface
+    n = _interrupt_each_registration(monkeypatch, registry, "register",
+                                     lambda: record(s, [FERRY], [WeightStats()]), s, ids)
+    assert n >= 1

@@ -411,6 +411,10 @@ def _decode(raw: bytes) -> list[Finding]:
         doc = json.loads(text)
     except json.JSONDecodeError as exc:
         raise _Unreadable(f"it is not valid JSON ({exc.msg} at line {exc.lineno} column {exc.colno})") from None
+    except RecursionError:
+        raise _Unreadable("it is nested too deeply to be a findings file") from None
+    except ValueError as exc:     # e.g. a number of thousands of digits
+        raise _Unreadable(f"it holds a value attnpos cannot read ({str(exc)[:80]})") from None
     if not isinstance(doc, dict) or "format" not in doc:
         raise _Unreadable(f'it is JSON but not an attnpos findings file (no "format": "{FORMAT}" at the top)')
     fmt = doc["format"]

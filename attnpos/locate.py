@@ -121,6 +121,7 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
     if safe:
         sizes.check_checkpoint(p, cfg)       # config against the weights' headers and the machine, before allocation
     else:
+        sizes.refuse_zero_sizes(p, cfg)
         sizes.refuse_if_too_big(sizes.estimate_config_bytes(cfg), f"The model in {p} (as its config.json describes "
                                 "it, in float32)", "Check the sizes in config.json, or load it on a machine with "
                                 "more memory.")

@@ -133,9 +133,24 @@ def layers_in_names(names) -> int | None:
     return best
 
 
+HEAD_NAMES = ("num_attention_heads", "n_head", "num_heads", "n_heads")
+
+
+def refuse_zero_sizes(folder, cfg: dict) -> None:
+    """A config with no attention heads, no width, no layers or an empty vocabulary describes no model to study."""
+    for what, names in (("attention heads", HEAD_NAMES), ("hidden width", WIDTH_NAMES), ("layers", LAYER_NAMES),
+                        ("vocabulary entries", ("vocab_size",))):
+        for n in names:
+            if n in cfg and cfg[n] == 0 and not isinstance(cfg[n], bool):
+                raise AttnposError(f"{folder}/config.json says {n} = 0: a model with no {what} has nothing attnpos "
+                                   "could measure. Fix config.json (the checkpoint's weights show the real size), "
+                                   "or re-save the checkpoint with `model.save_pretrained(folder)`.")
+
+
 def check_checkpoint(folder: Path, cfg: dict) -> None:
     """Refuse a config that claims more layers or positions than the safetensors weights in ``folder`` hold, or a
     model bigger than the memory available, before anything is allocated."""
+    refuse_zero_sizes(folder, cfg)
     tables = {}
     numel = 0
     for f in sorted(Path(folder).glob("*.safetensors")):

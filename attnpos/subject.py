@@ -168,6 +168,9 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     except Exception as exc:  # noqa: BLE001
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
+    if getattr(tokenizer, "vocab_size", 1) == 0:
+        raise AttnposError(f"The tokenizer in {p} has an empty vocabulary, so no text can be turned into tokens. Save "
+                           "the model's tokenizer into the folder again with `tokenizer.save_pretrained(folder)`.")
     subject = from_model(model, tokenizer, name=safe_text(name), path=safe_text(str(p)), scheme=scheme,
                          training_length=training_length)
     subject.missing_weights = random_init

@@ -168,9 +168,16 @@ def display_tokens(tokenizer, ids: Sequence[int]) -> list[str]:
 def _encode(tokenizer, text: str) -> list[int]:
     """Token ids without special tokens, quietly (the length check against the model's limit is ours)."""
     try:
-        return list(tokenizer(text, add_special_tokens=False, verbose=False)["input_ids"])
-    except TypeError:  # a tokenizer-like object without the verbose switch
-        return list(tokenizer(text, add_special_tokens=False)["input_ids"])
+        try:
+            return list(tokenizer(text, add_special_tokens=False, verbose=False)["input_ids"])
+        except TypeError:  # a tokenizer-like object without the verbose switch
+            return list(tokenizer(text, add_special_tokens=False)["input_ids"])
+    except (AttnposError, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - the tokenizer's own errors (a broken vocabulary) explained
+        raise AttnposError(f"The model's tokenizer failed on a text ({type(exc).__name__}: {str(exc)[:200]}). Its "
+                           "tokenizer files are probably damaged or incomplete (an empty vocabulary, no unknown "
+                           "token); save the tokenizer again with `tokenizer.save_pretrained(folder)`.") from None
 
 
 def template(tokenizer) -> tuple[list[int], list[int]]:

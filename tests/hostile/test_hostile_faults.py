@@ -450,3 +450,179 @@ def test_an_interrupt_at_a_registry_entry_leaves_the_registries_as_they_were(whi
     n = _interrupt_each_registration(monkeypatch, registry, "register",
                                      lambda: record(s, [FERRY], [WeightStats()]), s, ids)
     assert n >= 1
+
+
+# ------------------------------------------------------------------------------------------ 8. raw exceptions
+
+def _scan_json():
+    from attnpos.views.synthetic import synthetic_scan
+
+    return synthetic_scan(2, 2, seed=0).to_json()
+
+
+def _tamper(name):
+    d = _scan_json()
+    if name == "layers-as-text":
+        d["model"]["layers"] = "2"
+    elif name == "no-fingerprint":
+        del d["model"]["fingerprint"]
+    elif name == "no-model":
+        del d["model"]
+    elif name == "n-tokens-as-text":
+        d["texts"][0]["n_tokens"] = "89"
+    elif name == "text-entry-not-an-object":
+        d["texts"][0] = "text0"
+    elif name == "ragged-profile":
+        d["heads"][1]["profile"]["distance"] = d["heads"][1]["profile"]["distance"][:-1]
+    elif name == "duplicate-heads":
+        d["heads"][1] = d["heads"][0]
+    elif name == "mass-as-text":
+        d["heads"][0]["mass"]["previous"] = "high"
+    elif name == "tokens-not-strings":
+        d["tokens"][0] = [1, 2, 3]
+    return d
+
+
+@pytest.mark.parametrize("name", ["layers-as-text", "no-fingerprint", "no-model", "n-tokens-as-text",
+                                  "text-entry-not-an-object", "ragged-profile", "duplicate-heads", "mass-as-text",
+                                  "tokens-not-strings"])
+def test_a_tampered_scan_file_is_a_clear_error_in_compare(name, tmp_path, cli):
+    good, bad = tmp_path / "good.json", tmp_path / "bad.json"
+    good.write_text(json.dumps(_scan_json()))
+    bad.write_text(json.dumps(_tamper(name)))
+    code, _, err = cli("compare", good, bad)
+    assert_clean_error(code, err, "scan")
+
+
+@pytest.mark.parametrize("raw", [b"[" * 100_000 + b"]" * 100_000,
+                                 b'{"format": "attnpos.findings/1", "findings": [{"layer": ' + b"9" * 5000 + b"}]}"],
+                         ids=["deeply-nested", "5000-digits"])
+def test_a_hostile_findings_file_is_a_clear_error(raw, tmp_path, cli):
+    from attnpos.findings import Findings
+
+    path = tmp_path / "notes.json"
+    path.write_bytes(raw)
+    with pytest.raises(AttnposError, match="corrupt"):
+        Findings(path).all()
+    code, _, err = cli("scan", "ref:rope", "--findings", path, "--html", tmp_path / "r.html")
+    assert_clean_error(code, err, "corrupt")
+    assert Findings(path).recover() is not None and Findings(path).all() == []
+
+
+@pytest.mark.parametrize("key", ["n_head", "vocab_size", "n_embd"])
+def test_a_config_with_a_zero_size_is_a_clear_error(gpt2_dir, tmp_path, cli, key):
+    d = _edited_copy(gpt2_dir, tmp_path / "zero", config=lambda c: c.update({key: 0}))
+    code, _, err = cli("scan", d)
+    assert_clean_error(code, err, f"{key} = 0")
+
+
+def test_an_empty_tokenizer_vocabulary_is_a_clear_error(gpt2_dir, tmp_path, cli):
+    d = shutil.copytree(gpt2_dir, tmp_path / "tok")
+    tj = json.loads((d / "tokenizer.json").read_text())
+    tj["model"]["vocab"] = {}
+    (d / "tokenizer.json").write_text(json.dumps(tj))
+    code, _, err = cli("scan", d, "--no-shift", "--no-induction", "--boot", "0")
+    assert_clean_error(code, err, "tokenizer")
+
+
+# A property-based check (hypothesis): any tampering of a scan or a findings file ends in AttnposError or a working
+# result, never in another exception.
+
+_JUNK = ["7", "", None, True, -1, 1.5, 10**30, [], {}, [1, "a"], {"a": None}, "nan"]
+
+
+def _paths(x, p=()):
+    yield p
+    if isinstance(x, dict):
+        for k, v in x.items():
+            yield from _paths(v, p + (k,))
+    elif isinstance(x, list):
+        for i, v in enumerate(x[:2]):
+            yield from _paths(v, p + (i,))
+
+
+def _apply(doc, edits):
+    import copy
+
+    doc = copy.deepcopy(doc)
+    for path, junk, drop in edits:
+        target = doc
+        try:
+            for k in path[:-1]:
+                target = target[k]
+            if drop and isinstance(target, dict):
+                target.pop(path[-1], None)
+            else:
+                target[path[-1]] = copy.deepcopy(junk)
+        except (KeyError, IndexError, TypeError):
+            pass
+    return doc
+
+
+def _edits(doc):
+    from hypothesis import strategies as st
+
+    places = [p for p in _paths(doc) if p]
+    return st.lists(st.tuples(st.sampled_from(places), st.sampled_from(_JUNK), st.booleans()), min_size=1,
+                    max_size=3)
+
+
+def test_tampered_scan_json_only_ever_raises_attnpos_errors():
+    from hypothesis import HealthCheck, given, settings
+
+    from attnpos.compare import compare
+    from attnpos.report import report_html
+    from attnpos.results.scan import Scan
+
+    base = _scan_json()
+    reference = Scan.from_json(base)
+
+    @settings(max_examples=100, deadline=None, derandomize=True, suppress_health_check=list(HealthCheck))
+    @given(_edits(base))
+    def check(edits):
+        try:
+            scan = Scan.from_json(_apply(base, edits))
+            scan.text()
+            report_html(scan)
+            compare(scan, reference)
+        except AttnposError:
+            pass
+
+    check()
+
+
+def test_tampered_findings_json_only_ever_raises_attnpos_errors(tmp_path):
+    from hypothesis import HealthCheck, given, settings
+
+    from attnpos.findings import Findings
+
+    path = tmp_path / "notes.json"
+    store = Findings(path)
+    store.add("L1.H0", "looks back one token", fingerprint="fp", author="kim")
+    store.add("model", "no position table")
+    base = json.loads(path.read_text())
+
+    @settings(max_examples=100, deadline=None, derandomize=True, suppress_health_check=list(HealthCheck))
+    @given(_edits(base))
+    def check(edits):
+        for p in tmp_path.iterdir():
+            p.unlink()
+        path.write_text(json.dumps(_apply(base, edits)))
+        s = Findings(path)
+        try:
+            found = len(s.all())
+        except AttnposError:
+            try:
+                s.recover()
+            except AttnposError:
+                pass
+            found = None
+        try:
+            s.add("L0", "after the tampering")
+            s.to_markdown("fp")
+        except AttnposError:
+            pass
+        if found is not None:
+            assert len(s.all()) >= found          # nothing readable was lost
+
+    check()

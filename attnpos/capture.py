@@ -31,6 +31,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import torch
 
+from . import sizes
 from .errors import AttnposError
 from .subject import AttentionSite, Subject
 from .texts import TextUnit, as_raw, prepare
@@ -40,7 +41,7 @@ FUNCTION_NAME = "attnpos_capture"
 # bytes one chunk of (heads, T, T) float32 may take; heads are processed in chunks to bound memory (the capture
 # holds two such buffers, a reducer may hold a third). Fewer, larger chunks mean fewer tensor operations, which
 # matters most on a busy machine, where every parallel operation waits for its threads.
-CHUNK_BYTES = 256 * 2**20
+CHUNK_BYTES = sizes.CAPTURE_CHUNK_BYTES
 
 # rows per block of a causal layer: block r0:r1 only forms keys < r1, so q·kᵀ, the softmax, weights·v and the
 # reducers' sums touch about (1 + 1/blocks)/2 of the (T, T) pairs, and one block's rows stay in cache between steps

@@ -27,6 +27,7 @@ BYTES_PER_VALUE = 4
 HEADER_LIMIT = 100 * 2**20
 """The largest safetensors header read (a real header is a few kB per thousand tensors)."""
 
+HEAD_NAMES = ("num_attention_heads", "n_head", "num_heads", "n_heads")
 LAYER_NAMES = ("num_hidden_layers", "n_layer", "num_layers", "n_layers", "num_decoder_layers", "encoder_layers",
                "decoder_layers")
 WIDTH_NAMES = ("hidden_size", "n_embd", "d_model", "dim")
@@ -133,9 +134,6 @@ def layers_in_names(names) -> int | None:
     return best
 
 
-HEAD_NAMES = ("num_attention_heads", "n_head", "num_heads", "n_heads")
-
-
 def refuse_zero_sizes(folder, cfg: dict) -> None:
     """A config with no attention heads, no width, no layers or an empty vocabulary describes no model to study."""
     for what, names in (("attention heads", HEAD_NAMES), ("hidden width", WIDTH_NAMES), ("layers", LAYER_NAMES),
@@ -182,3 +180,42 @@ def check_checkpoint(folder: Path, cfg: dict) -> None:
     refuse_if_too_big(estimate, f"The model in {folder} (as its config.json describes it, in float32)",
                       "Check the sizes in config.json (num_hidden_layers, hidden_size, vocab_size, "
                       "max_position_embeddings), or load it on a machine with more memory.")
+
+
+CAPTURE_CHUNK_BYTES = 256 * 2**20
+"""Bytes one chunk of (heads, T, T) float32 may take in the capture (``attnpos.capture.CHUNK_BYTES``)."""
+
+PROCESS_BYTES = 512 * 2**20
+"""Python, torch and transformers themselves, before any model: about 0.5 GB (measured: ``attnpos length ref:rope
+--to 1024`` peaks at 0.56 GB, see bench/README.md)."""
+
+
+def heads_per_chunk(n_heads: int, T: int, chunk_bytes: int = CAPTURE_CHUNK_BYTES) -> int:
+    """How many heads the capture handles at once for a sequence of ``T`` tokens (its own rule, repeated here
+    without torch)."""
+    n_heads = max(1, n_heads)
+    per_head = BYTES_PER_VALUE * T * T
+    n_chunks = -(-n_heads // max(1, min(n_heads, chunk_bytes // max(per_head, 1))))
+    return -(-n_heads // n_chunks)
+
+
+def estimate_sequence_bytes(cfg: dict, T: int, chunk_bytes: int = CAPTURE_CHUNK_BYTES) -> int:
+    """Peak memory of recording one sequence of ``T`` tokens (``attnpos length --to T``): the process and the
+    model, then (5 × heads per chunk + 4) float32 arrays of T × T — the capture's score, weight and block
+    buffers, the reducers' temporaries, the masks — and the logits of the token loss.
+
+    An upper bound fitted to measured peaks of ``attnpos length ref:rope --sequences 1`` at T = 1024 … 8192
+    (bench/README.md): it is 1.1–1.5× the measured peak there.
+    """
+    heads = _first(cfg, HEAD_NAMES) or 1
+    vocab = _int(cfg.get("vocab_size")) or 0
+    arrays = 5 * heads_per_chunk(heads, T, chunk_bytes) + 4
+    return (PROCESS_BYTES + estimate_config_bytes(cfg) + arrays * BYTES_PER_VALUE * T * T
+            + 2 * BYTES_PER_VALUE * T * vocab)
+
+
+def refuse_long_sequence(cfg: dict, T: int, what: str) -> None:
+    """Refuse a sequence length whose recording would need more memory than is available, with the estimate."""
+    refuse_if_too_big(estimate_sequence_bytes(cfg, T), f"{what} (sequences of {T} tokens)",
+                      "Choose a smaller --to (memory grows with its square), or run it on a machine with more "
+                      "memory.")

@@ -30,6 +30,9 @@ def add_arguments(p) -> None:
 
 def check(args) -> None:
     loc = c.check_model(args)
+    from ..sizes import refuse_long_sequence
+
+    refuse_long_sequence(loc.config, args.to, f"attnpos length --to {args.to} on {args.model}")
     c.check_outputs({"--json": args.json}, {"--text": c.TextInputs(args.text or []),
                                              "the model folder": c.model_files(loc)})
     from ..texts import read

@@ -626,3 +626,50 @@ def test_tampered_findings_json_only_ever_raises_attnpos_errors(tmp_path):
             assert len(s.all()) >= found          # nothing readable was lost
 
     check()
+
+
+# ------------------------------------------------------------------------------------------ 6. size sanity
+
+def test_a_huge_binary_file_is_refused_from_its_first_bytes(tmp_path):
+    import tracemalloc
+
+    from attnpos import texts
+
+    big = tmp_path / "disk.txt"
+    with open(big, "wb") as fh:
+        fh.truncate(1_500_000_000)          # 1.5 GB of NUL bytes, sparse: no disk space used
+    tracemalloc.start()
+    try:
+        with pytest.raises(AttnposError, match="binary"):
+            texts.read([big])
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    assert peak < 50 * 2**20                 # the file was not read whole
+
+
+def test_a_text_too_big_for_memory_is_refused_before_it_is_read(tmp_path, monkeypatch):
+    from attnpos import sizes, texts
+
+    path = tmp_path / "long.txt"
+    path.write_text(FERRY * 100)
+    monkeypatch.setattr(sizes, "available_memory", lambda: 100_000)
+    with pytest.raises(AttnposError, match=r"would need about .* of memory"):
+        texts.read([path])
+
+
+def test_length_to_beyond_the_memory_is_refused_up_front(cli, monkeypatch):
+    from attnpos import sizes
+
+    monkeypatch.setattr(sizes, "available_memory", lambda: 4 * 2**30)
+    _no_allocation(monkeypatch)
+    code, _, err = cli("length", "ref:rope", "--to", "20000")
+    assert_clean_error(code, err, "--to 20000", "would need about 14.0 GiB", "4.0 GiB available", "smaller --to")
+    import attnpos
+    from attnpos.length import length
+
+    monkeypatch.undo()
+    s = attnpos.load("ref:rope")
+    monkeypatch.setattr(sizes, "available_memory", lambda: 4 * 2**30)
+    with pytest.raises(AttnposError, match="would need about 14.0 GiB"):
+        length(s, to=20000, n_sequences=1, n_boot=0)

@@ -70,15 +70,16 @@ def default_texts() -> list[RawText]:
 SNIFF_BYTES = 8192
 """How much of a text file is looked at (for NUL bytes and a UTF-16 mark) before the rest is read."""
 
-TEXT_MEMORY_FACTOR = 40
+TEXT_MEMORY_FACTOR = 250
 """Bytes of memory per byte of text file, a rough upper bound for reading and tokenising it: the bytes, the
-decoded text, a token id and a display string per token as Python objects (a byte-level tokenizer makes one token
-per byte). Measured by ``bench/text_memory.py`` (see bench/README.md)."""
+decoded text, the tokenizer's output for the whole text, and a token id and a display string per token as Python
+objects (a byte-level tokenizer makes one token per byte). Measured with ref:rope: 235 bytes per byte at 1 MB, 198
+at 5 MB (``python bench/text_memory.py read 1000000 5000000``, see bench/README.md)."""
 
 
 def _decode(path: Path) -> str:
     try:
-        with open(path, "rb") as fh:
+        with path.open("rb") as fh:
             head = fh.read(SNIFF_BYTES)
             _sniff(path, head)                 # a binary file is refused before it is read whole
             size = os.fstat(fh.fileno()).st_size

@@ -197,7 +197,12 @@ def check_loaded_tensors(model, info: dict, *, where: str, allow_missing: bool =
     warning says so). Unexpected tensors outside the model's modules (the task head of a fuller checkpoint, such
     as ``cls.predictions.*`` beside a BERT encoder) are never used and only noted.
 
+    ``model`` may be None (a loader that has not built one yet): every unexpected tensor then counts.
+
     Returns ``(randomly_initialised, unused)``: sorted tensor names (missing or reshaped; unexpected).
+
+    >>> check_loaded_tensors(None, {"missing_keys": [], "unexpected_keys": [], "mismatched_keys": []}, where="x")
+    ([], [])
     """
     def names(key) -> list[str]:
         out = []
@@ -206,11 +211,13 @@ def check_loaded_tensors(model, info: dict, *, where: str, allow_missing: bool =
         return sorted(set(out))
 
     missing, mismatched, unexpected = names("missing_keys"), names("mismatched_keys"), names("unexpected_keys")
-    own = {n.split(".")[0] for n, _ in model.named_children()} | {n.split(".")[0] for n, _ in
-                                                                  model.named_parameters(recurse=False)}
+    own = set() if model is None else ({n for n, _ in model.named_children()} |
+                                       {n for n, _ in model.named_parameters(recurse=False)})
     prefix = getattr(model, "base_model_prefix", "") or ""
 
     def inside(name: str) -> bool:
+        if model is None:
+            return True             # no model to tell a task head from the body: every extra tensor counts
         first = name.split(".")[0]
         if first == prefix and first not in own:
             first = (name.split(".") + [""])[1]

@@ -145,3 +145,25 @@ def write_new(path: str | os.PathLike, data: bytes | str) -> Path:
             os.unlink(tmp)
     fsync_dir(path.parent)
     return path
+
+
+def move_files_into(staging: str | os.PathLike, folder: str | os.PathLike) -> list[Path]:
+    """Move every file that a library wrote into ``staging`` (a temporary folder inside ``folder``, e.g. by
+    ``save_pretrained``) into ``folder``: each is fsynced and renamed over its namesake, so every file of
+    ``folder`` is the old one or the new one, never a part. Returns the files moved."""
+    staging, folder = Path(staging), Path(folder)
+    moved = []
+    for f in sorted(staging.iterdir()):
+        if not f.is_file():
+            continue
+        fd = os.open(f, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        target = folder / f.name
+        check_writable(target)
+        os.replace(f, target)
+        moved.append(target)
+    fsync_dir(folder)
+    return moved

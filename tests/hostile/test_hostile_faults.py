@@ -676,3 +676,23 @@ def test_length_to_beyond_the_memory_is_refused_up_front(cli, monkeypatch):
     monkeypatch.setattr(sizes, "available_memory", lambda: 4 * 2**30)
     with pytest.raises(AttnposError, match="would need about 14.0 GiB"):
         length(s, to=20000, n_sequences=1, n_boot=0)
+
+
+def test_saving_a_trained_model_fails_whole_or_not_at_all(tmp_path, monkeypatch):
+    import tiny
+    from attnpos.reference import train as train_mod
+
+    out = tmp_path / "model"
+    first = tiny.build("gpt2", seed=0)
+    train_mod.save(first, out)
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+
+    def full_disk(self, *a, **k):
+        raise OSError(28, "No space left on device")
+
+    import transformers
+
+    monkeypatch.setattr(transformers.PreTrainedTokenizerFast, "save_pretrained", full_disk)
+    with pytest.raises(OSError):
+        train_mod.save(tiny.build("gpt2", seed=1), out)       # weights written, tokenizer fails
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before    # no half-new model, no staging folder

@@ -31,7 +31,6 @@ Command line: ``attnpos ablate ref:rope --heads L0.H1,L2.H0 --json ablation.json
 
 from __future__ import annotations
 
-import contextlib
 import sys
 from typing import Any, Iterable
 
@@ -39,7 +38,7 @@ import numpy as np
 import pandas as pd
 import torch
 
-from .capture import forward, next_token_loss
+from .capture import forward, hooked, next_token_loss
 from .errors import AttnposError
 from .core import keys, settings
 from .results.ablation import CAUTION, COLUMNS, AblationResult  # noqa: F401
@@ -95,16 +94,9 @@ def _slices(subject: Subject) -> dict[tuple[str, int], tuple[torch.nn.Module, in
     return out
 
 
-@contextlib.contextmanager
 def _hooks(modules_hooks: Iterable[tuple[torch.nn.Module, Any]]):
-    handles = []
-    try:
-        for m, h in modules_hooks:
-            handles.append(m.register_forward_pre_hook(h))
-        yield
-    finally:
-        for h in handles:
-            h.remove()
+    """Forward pre-hooks for the block, all removed on exit (also after a Ctrl-C mid-registration)."""
+    return hooked(modules_hooks, pre=True)
 
 
 def parse_heads(subject: Subject, heads) -> list[tuple[str, int, int]]:

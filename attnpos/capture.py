@@ -31,6 +31,7 @@ from typing import Any, Iterable, Sequence
 import numpy as np
 import torch
 
+from . import sizes
 from .errors import AttnposError
 from .subject import AttentionSite, Subject
 from .texts import TextUnit, as_raw, prepare
@@ -40,7 +41,7 @@ FUNCTION_NAME = "attnpos_capture"
 # bytes one chunk of (heads, T, T) float32 may take; heads are processed in chunks to bound memory (the capture
 # holds two such buffers, a reducer may hold a third). Fewer, larger chunks mean fewer tensor operations, which
 # matters most on a busy machine, where every parallel operation waits for its threads.
-CHUNK_BYTES = 256 * 2**20
+CHUNK_BYTES = sizes.CAPTURE_CHUNK_BYTES
 
 # rows per block of a causal layer: block r0:r1 only forms keys < r1, so q·kᵀ, the softmax, weights·v and the
 # reducers' sums touch about (1 + 1/blocks)/2 of the (T, T) pairs, and one block's rows stay in cache between steps
@@ -461,6 +462,35 @@ def _own_eager(module):
 
 
 @contextlib.contextmanager
+def hooked(pairs, *, pre: bool = True, with_kwargs: bool = False):
+    """Register a forward hook (``pre=True``: a forward pre-hook) per ``(module, hook)`` pair for the block, and
+    remove every one of them on exit, also on error or Ctrl-C.
+
+    The removal does not rely on handles: a hook is remembered *before* it is registered, and on exit every entry
+    holding that hook object is taken out of its module's hook tables, so an interrupt that lands between a
+    registration and the bookkeeping after it still leaves no hook behind. A user's own hooks are never touched.
+    """
+    placed: list[tuple[torch.nn.Module, Any]] = []
+    try:
+        for m, h in pairs:
+            placed.append((m, h))
+            if pre:
+                m.register_forward_pre_hook(h, with_kwargs=with_kwargs)
+            else:
+                m.register_forward_hook(h, with_kwargs=with_kwargs)
+        yield
+    finally:
+        for m, h in placed:
+            table = m._forward_pre_hooks if pre else m._forward_hooks
+            extras = ((m._forward_pre_hooks_with_kwargs,) if pre else
+                      (m._forward_hooks_with_kwargs, getattr(m, "_forward_hooks_always_called", {})))
+            for key in [k for k, v in table.items() if v is h]:
+                table.pop(key, None)
+                for extra in extras:
+                    extra.pop(key, None)
+
+
+@contextlib.contextmanager
 def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
     """Run ``subject`` through the attention function ``fn`` for the duration of the block.
 
@@ -499,8 +529,6 @@ def attention_function(subject: Subject, fn, name: str = FUNCTION_NAME):
 def _registry_path(subject: Subject, run: "_Run | None" = None):
     """Switch the model to the capture function for the duration of a run, with a pre-hook on every attention
     module that keeps the rotary (cos, sin) tables it is handed (for reducers that read rotated pairs)."""
-    handles = []
-
     def keep_rotary(module, args, kwargs):
         refuse_cross_call(run, module, kwargs)
         pe = kwargs.get("position_embeddings")
@@ -508,14 +536,10 @@ def _registry_path(subject: Subject, run: "_Run | None" = None):
             run.rotary[id(module)] = (pe[0], pe[1])
         return None
 
-    try:
-        with attention_function(subject, capture_attention):
-            for module in _site_modules(subject) if run is not None else ():
-                handles.append(module.register_forward_pre_hook(keep_rotary, with_kwargs=True))
-            yield
-    finally:
-        for h in handles:
-            h.remove()
+    modules = _site_modules(subject) if run is not None else ()
+    with attention_function(subject, capture_attention), \
+            hooked(((m, keep_rotary) for m in modules), pre=True, with_kwargs=True):
+        yield
 
 
 CROSS_INPUTS = ("key_value_states", "encoder_hidden_states", "cross_attention_states")
@@ -559,7 +583,6 @@ def _weights_path(subject: Subject, run_ref: list):
     """Eager output_attentions + a forward hook per attention module that takes and drops the weights."""
     configs = _all_configs(subject.model)
     saved = [(c, c.__dict__.get("_attn_implementation_internal", None)) for c in configs]
-    handles = []
 
     def pre_hook(module, args, kwargs):
         refuse_cross_call(run_ref[-1], module, kwargs)
@@ -591,13 +614,11 @@ def _weights_path(subject: Subject, run_ref: list):
     try:
         for c in configs:
             c._attn_implementation_internal = "eager"
-        for module in _site_modules(subject):
-            handles.append(module.register_forward_pre_hook(pre_hook, with_kwargs=True))
-            handles.append(module.register_forward_hook(make_hook(), with_kwargs=True))
-        yield
+        modules = _site_modules(subject)
+        with hooked(((m, pre_hook) for m in modules), pre=True, with_kwargs=True), \
+                hooked(((m, make_hook()) for m in modules), pre=False, with_kwargs=True):
+            yield
     finally:
-        for h in handles:
-            h.remove()
         for c, v in saved:
             c._attn_implementation_internal = v
 
@@ -688,8 +709,8 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
         from tqdm.auto import tqdm
 
         iterator = tqdm(iterator, desc=f"recording {subject.name}", unit="text")
-    _ACTIVE.append(run)
     try:
+        _ACTIVE.append(run)
         ctx = _registry_path(subject, run) if chosen == "registry" else _weights_path(subject, _ACTIVE)
         with ctx, torch.no_grad():
             for t in iterator:

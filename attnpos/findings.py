@@ -61,7 +61,7 @@ import filelock
 
 from .core import keys
 from .errors import AttnposError
-from .files import write_atomic, write_new
+from .files import safe_text, write_atomic, write_new
 
 FORMAT = "attnpos.findings/1"
 """The ``format`` value this module writes and reads."""
@@ -98,6 +98,11 @@ _ID_RE = re.compile(r"[A-Za-z0-9_-]{1,64}\Z", re.ASCII)
 _SURROGATE_RE = re.compile("[\ud800-\udfff]")
 
 TargetLike = Union[str, Mapping[str, Any]]
+
+
+class LinkNotice(UserWarning):
+    """The findings path is a symbolic link: attnpos says which file it reads and writes."""
+
 _T = TypeVar("_T")
 
 
@@ -406,6 +411,10 @@ def _decode(raw: bytes) -> list[Finding]:
         doc = json.loads(text)
     except json.JSONDecodeError as exc:
         raise _Unreadable(f"it is not valid JSON ({exc.msg} at line {exc.lineno} column {exc.colno})") from None
+    except RecursionError:
+        raise _Unreadable("it is nested too deeply to be a findings file") from None
+    except ValueError as exc:     # e.g. a number of thousands of digits
+        raise _Unreadable(f"it holds a value attnpos cannot read ({str(exc)[:80]})") from None
     if not isinstance(doc, dict) or "format" not in doc:
         raise _Unreadable(f'it is JSON but not an attnpos findings file (no "format": "{FORMAT}" at the top)')
     fmt = doc["format"]
@@ -430,6 +439,27 @@ def _decode(raw: bytes) -> list[Finding]:
         seen.add(finding.id)
         findings.append(finding)
     return findings
+
+
+def _salvage(raw: bytes) -> list[Finding]:
+    """The entries of an unreadable file that are still valid findings (first of each id), in file order."""
+    try:
+        doc = json.loads(raw.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError, RecursionError):
+        return []
+    if not isinstance(doc, dict) or doc.get("format") != FORMAT:
+        return []      # not (or no longer) this format: nothing in it is known to be a finding
+    records = doc.get("findings")
+    kept, seen = [], set()
+    for record in records if isinstance(records, list) else []:
+        try:
+            finding = _finding_from_record(record)
+        except (_BadRecord, AttnposError, TypeError, ValueError, RecursionError):
+            continue
+        if finding.id not in seen:
+            seen.add(finding.id)
+            kept.append(finding)
+    return kept
 
 
 # ----------------------------------------------------------------------------------------------------------------
@@ -471,7 +501,11 @@ class Findings:
 
     def __init__(self, path: str | os.PathLike[str] = DEFAULT_FILENAME, *, lock_timeout: float = LOCK_TIMEOUT_S):
         given = Path(os.fspath(path)).expanduser()
-        # Resolve symlinks so the rename replaces the real file (not the link) and every kernel locks one path.
+        # Resolve symlinks so the rename replaces the real file (not the link) and every kernel locks one path; a
+        # link is said so, its target must be a findings file before anything is written, and recover() refuses
+        # to act through it. Backups of an unreadable file go beside the path as given, never beside a target.
+        self.given = given.absolute()
+        self.linked = given.is_symlink()
         self.path = given.resolve()
         folder = self.path.parent
         if not folder.is_dir():
@@ -486,6 +520,11 @@ class Findings:
             )
         self.lock_path = Path(str(self.path) + ".lock")
         self._lock = filelock.FileLock(str(self.lock_path), timeout=lock_timeout)
+        if self.linked:
+            import warnings
+
+            warnings.warn(f"the findings path {str(self.given)!r} is a symbolic link; attnpos reads and writes its "
+                          f"target {str(self.path)!r}.", LinkNotice, stacklevel=2)
 
     def __repr__(self) -> str:
         return f"Findings({str(self.path)!r})"
@@ -493,9 +532,10 @@ class Findings:
     # -- reading ------------------------------------------------------------------------------------------------
 
     def _backup_name(self, stamp: str, n: int) -> Path:
-        stem = self.path.name[:-5] if self.path.name.endswith(".json") else self.path.name
+        where = self.given if self.linked else self.path
+        stem = where.name[:-5] if where.name.endswith(".json") else where.name
         suffix = f"-{n}" if n else ""
-        return self.path.parent / f"{stem}.corrupt-{stamp}{suffix}.json"
+        return where.parent / f"{stem}.corrupt-{stamp}{suffix}.json"
 
     def _existing_backup(self, raw: bytes) -> Path | None:
         pattern = glob.escape(str(self._backup_name("X", 0))).replace(".corrupt-X.json", ".corrupt-*.json")
@@ -608,8 +648,16 @@ class Findings:
             self._lock.release()
 
     def _write(self, findings: list[Finding]) -> None:
+        data = _encode(findings)
         try:
-            write_atomic(self.path, _encode(findings))
+            _decode(data)      # the reader's own check: nothing is written that the next read would refuse
+        except _Unreadable as exc:
+            raise AttnposError(
+                f"This change to {str(self.path)!r} was refused: the file would not be readable afterwards "
+                f"({exc.detail}). The file on disk is unchanged. Check the values passed and try again."
+            ) from None
+        try:
+            write_atomic(self.path, data, findings=True)
         except OSError as exc:
             raise AttnposError(
                 f"Could not save the findings file {str(self.path)!r} ({exc.strerror or exc}); the file on disk is "
@@ -618,6 +666,8 @@ class Findings:
 
     def _mutate(self, change: Callable[[list[Finding]], tuple[list[Finding] | None, _T]]) -> _T:
         """Lock, re-read, apply ``change`` (returns the new list, or None for no write), write, unlock."""
+        if self.linked:
+            self._read()       # a link whose target is not a findings file is refused before a lock is made there
         with self._locked():
             new, result = change(self._read())
             if new is not None:
@@ -717,12 +767,22 @@ class Findings:
         self._mutate(change)
 
     def recover(self) -> Path | None:
-        """Move an unreadable findings file aside and start an empty one; returns where the old file went.
+        """Move an unreadable findings file aside and start afresh with the notes that can still be read; returns
+        where the old file went.
 
         This is the explicit way out after a "corrupt findings file" error: the old bytes are kept at
-        ``<name>.corrupt-<timestamp>.json`` (the same copy the error named, when it is still there). Returns None
-        when there is no file. Refuses, with an error, when the file is readable: there is nothing to recover.
+        ``<name>.corrupt-<timestamp>.json`` (the same copy the error named, when it is still there), and every
+        entry of the old file that is still a valid finding is kept in the new file, so recover() never leaves
+        fewer notes than a reader could find. Returns None when there is no file. Refuses, with an error, when the
+        file is readable (there is nothing to recover), when it is read-only, and when the path is a symbolic link
+        (recover() never writes through a link: call it on the real file).
         """
+        if self.linked:
+            raise AttnposError(
+                f"The findings path {str(self.given)!r} is a symbolic link (to {str(self.path)!r}); recover() never "
+                f"replaces a file through a link. Check that the target is really your findings file, then call "
+                f"Findings({str(self.path)!r}).recover(), or remove the link."
+            )
         with self._locked():
             try:
                 raw = self.path.read_bytes()
@@ -743,12 +803,12 @@ class Findings:
                     f"aside files that cannot be read). To start afresh, remove the findings one by one or use "
                     f"another file name."
                 )
+            kept = _salvage(raw)
             try:
                 backup = self._existing_backup(raw)
                 if backup is None:
                     backup = self._backup(raw)
-                os.unlink(self.path)
-                self._write([])
+                self._write(kept)
             except OSError as exc:
                 raise AttnposError(
                     f"Could not move the unreadable findings file {str(self.path)!r} aside ({exc.strerror or exc}). "
@@ -776,7 +836,7 @@ class Findings:
         order = sorted(range(len(findings)), key=lambda n: (
             _target_sort_key(findings[n].kind, findings[n].stack, findings[n].layer, findings[n].head), n))
         lines = ["# attnpos findings", ""]
-        where = f"File: {_md_cell(str(self.path))}; {len(findings)} finding{'' if len(findings) == 1 else 's'}."
+        where = f"File: {_md_cell(safe_text(str(self.path)))}; {len(findings)} finding{'' if len(findings) == 1 else 's'}."
         if fingerprint is None:
             lines.append(f"{where} Staleness not checked (no subject fingerprint given).")
         else:
@@ -833,7 +893,7 @@ class Findings:
         else:
             data = _encode(self._read())
         try:
-            write_atomic(out.resolve(), data)
+            write_atomic(out.resolve(), data, findings=suffix == ".json")  # a JSON export is a findings file
         except OSError as exc:
             raise AttnposError(
                 f"Could not write the export {str(out)!r} ({exc.strerror or exc}). Check free space and "

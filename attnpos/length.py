@@ -43,6 +43,7 @@ import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer
+from . import sizes
 from .core import schemes, settings
 from .errors import AttnposError
 from .results.length import CAUTION, LengthResult  # noqa: F401  (CAUTION: this stage's caution)
@@ -447,6 +448,7 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
         subject = load(subject)
     L, source = training_length_of(subject, training_length)
     to, notes = resolve_to(subject, to, L)
+    sizes.refuse_long_sequence(subject.model.config.to_dict(), to, f"Measuring {subject.name} past its training length")
     units, snotes = sequences(subject, texts, to, n_sequences)
     notes += snotes
     edges = bin_edges(to, L, bins)

@@ -20,6 +20,7 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
+from . import sizes
 from .errors import AttnposError
 
 REFERENCE_ROOT = Path(__file__).resolve().parent / "reference" / "weights"
@@ -134,7 +135,15 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
     problem = position_config_problem(cfg)
     if problem:
         raise AttnposError(f"{p}/config.json: {problem}")
-    return Located(path=p, name=name, config=cfg, safetensors=weights_are_safetensors(p, allow_pickle), reference=ref)
+    safe = weights_are_safetensors(p, allow_pickle)
+    if safe:
+        sizes.check_checkpoint(p, cfg)       # config against the weights' headers and the machine, before allocation
+    else:
+        sizes.refuse_zero_sizes(p, cfg)
+        sizes.refuse_if_too_big(sizes.estimate_config_bytes(cfg), f"The model in {p} (as its config.json describes "
+                                "it, in float32)", "Check the sizes in config.json, or load it on a machine with "
+                                "more memory.")
+    return Located(path=p, name=name, config=cfg, safetensors=safe, reference=ref)
 
 
 # ------------------------------------------------------------------------------- config and tensor checks
@@ -167,11 +176,12 @@ def head_count_problem(cfg: dict) -> str | None:
     wrong), or None: key/value heads that do not divide the query heads (the grouped-query repeat factor would be
     fractional or 0), or a hidden size the heads do not divide where the head width is derived from it."""
     for c in _sub_configs(cfg):
-        heads = next((_int(c.get(k)) for k in _HEADS if _int(c.get(k)) is not None), None)
-        if heads is None:
+        key = next((k for k in _HEADS if _int(c.get(k)) is not None), None)
+        if key is None:
             continue
+        heads = _int(c.get(key))
         if heads <= 0:
-            return f"{heads} attention heads; a model needs at least one"
+            return f"{key} = {heads} attention heads; a model needs at least one"
         kv = next((_int(c.get(k)) for k in _KV_HEADS if _int(c.get(k)) is not None), None)
         if kv is not None and (kv <= 0 or kv > heads or heads % kv):
             return (f"{kv} key/value heads for {heads} query heads; grouped-query attention shares each key/value "

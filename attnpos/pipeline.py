@@ -41,7 +41,8 @@ def versions() -> dict:
 
 def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, n_boot: int = settings.SCAN_BOOT,
          shift: bool = True, induction: bool = True, keep_maps: int = 2, max_map_tokens: int = 512,
-         progress: bool | None = None, allow_pickle: bool = False, trust_remote_code: bool = False) -> Scan:
+         progress: bool | None = None, allow_pickle: bool = False, trust_remote_code: bool = False,
+         allow_missing_weights: bool = False) -> Scan:
     """Scan a model on texts and return a :class:`~attnpos.results.scan.Scan`.
 
     Args:
@@ -56,7 +57,8 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
             ``max_map_tokens`` tokens.
     """
     subject = model if isinstance(model, Subject) else load(model, scheme=scheme, allow_pickle=allow_pickle,
-                                                            trust_remote_code=trust_remote_code)
+                                                            trust_remote_code=trust_remote_code,
+                                                            allow_missing_weights=allow_missing_weights)
     if max_tokens is None and subject.training_length:
         # past the training length a model is in territory it never saw (that is `attnpos length`'s question);
         # a scan describes the model where it was trained

@@ -24,6 +24,7 @@ import torch
 
 from .core import schemes
 from .errors import AttnposError
+from .files import safe_text
 from .locate import head_count_problem, locate, position_config_problem, position_tensor_problem
 
 ENCODER_TYPES = {"bert", "roberta", "distilbert", "electra", "xlm-roberta", "camembert", "mpnet", "deberta",
@@ -62,6 +63,7 @@ class Subject:
     n_heads: int
     is_encoder_decoder: bool = False
     notes: list[str] = field(default_factory=list)
+    missing_weights: list[str] = field(default_factory=list)   # tensors left randomly initialised (opt-in only)
     capture_path: str | None = None     # "registry" or "eager-weights", once a recording has found out which works
     excluded: list[str] = field(default_factory=list)   # attention modules left out (cross-attention), by name
     rope_fraction: float | None = None  # the share of each head's dimensions RoPE rotates, when below 1
@@ -99,6 +101,7 @@ class Subject:
             "context_limit": self.context_limit, "training_length": self.training_length,
             "uses_position_ids": self.uses_position_ids, "notes": list(self.notes),
             "excluded": list(self.excluded), "rope_fraction": self.rope_fraction, "dtype": self.dtype,
+            "missing_weights": list(self.missing_weights),
         }
 
     @property
@@ -115,7 +118,8 @@ class Subject:
 # ---------------------------------------------------------------------------------------------------- loading
 
 def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = None, allow_pickle: bool = False,
-         trust_remote_code: bool = False, training_length: int | None = None, dtype: str = "float32") -> Subject:
+         trust_remote_code: bool = False, training_length: int | None = None, dtype: str = "float32",
+         allow_missing_weights: bool = False) -> Subject:
     """Load a local checkpoint (or ``"ref:<scheme>"``) as a :class:`Subject`.
 
     Args:
@@ -129,11 +133,16 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         training_length: the context length the model was trained on, if its config does not record it.
         dtype: ``"float32"`` (default), ``"bfloat16"`` or ``"float16"``: the weights are kept in it; attention
             scores are always computed and reduced in float32.
+        allow_missing_weights: load a checkpoint whose weights lack tensors the model needs (or hold them in
+            another shape): those stay randomly initialised, the subject's ``missing_weights`` names them, every
+            result records them in its model section, and a notice says so. Off by default: such a load is refused
+            (see :func:`check_loaded_tensors`).
     """
     torch_dtype = weights_dtype(dtype)
     loc = locate(path_or_name, allow_pickle=allow_pickle, trust_remote_code=trust_remote_code)
     if loc.gguf:
-        return _load_gguf(loc, torch_dtype, scheme=scheme, training_length=training_length)
+        return _load_gguf(loc, torch_dtype, scheme=scheme, training_length=training_length,
+                          allow_missing_weights=allow_missing_weights)
     p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
     if use_safetensors:
         problem = position_tensor_problem(p)
@@ -158,9 +167,10 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     bars = hf_logging.is_progress_bar_enabled()
     hf_logging.disable_progress_bar()   # a few-MB checkpoint does not need a loading bar in every notebook cell
     try:
-        model = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch_dtype,
-                                          use_safetensors=use_safetensors, weights_only=True,
-                                          trust_remote_code=trust_remote_code)
+        model, info = model_cls.from_pretrained(p, config=config, attn_implementation="eager", dtype=torch_dtype,
+                                                use_safetensors=use_safetensors, weights_only=True,
+                                                trust_remote_code=trust_remote_code, output_loading_info=True,
+                                                ignore_mismatched_sizes=True)   # mismatches are named below
     except Exception as exc:  # noqa: BLE001 - wrap with context
         if "weights only load failed" in str(exc).lower():
             raise AttnposError(f"Refused the pickle weights in {p}: they hold objects other than tensors (such a file "
@@ -174,12 +184,88 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         if bars:
             hf_logging.enable_progress_bar()
     model.eval()
+    random_init, unused = check_loaded_tensors(model, info, where=str(p), allow_missing=allow_missing_weights)
     try:
         tokenizer = AutoTokenizer.from_pretrained(p, trust_remote_code=trust_remote_code)
     except Exception as exc:  # noqa: BLE001
         raise AttnposError(f"Could not load a tokenizer from {p} ({type(exc).__name__}: {_one_line(exc)}). Save the "
                            "tokenizer into the model folder with `tokenizer.save_pretrained(folder)`.") from None
-    return from_model(model, tokenizer, name=name, path=str(p), scheme=scheme, training_length=training_length)
+    if getattr(tokenizer, "vocab_size", 1) == 0:
+        raise AttnposError(f"The tokenizer in {p} has an empty vocabulary, so no text can be turned into tokens. Save "
+                           "the model's tokenizer into the folder again with `tokenizer.save_pretrained(folder)`.")
+    subject = from_model(model, tokenizer, name=safe_text(name), path=safe_text(str(p)), scheme=scheme,
+                         training_length=training_length)
+    subject.missing_weights = random_init
+    if random_init:
+        subject.notes.append(f"{len(random_init)} tensor(s) missing from the weights or of another shape were left "
+                             f"randomly initialised ({_names(random_init)}); loaded with allow_missing_weights.")
+    if unused:
+        subject.notes.append(f"the weights hold {len(unused)} tensor(s) the loaded model does not use "
+                             f"({_names(unused)}).")
+    return subject
+
+
+def _names(names: list[str], n: int = 6) -> str:
+    return ", ".join(names[:n]) + (f", … ({len(names) - n} more)" if len(names) > n else "")
+
+
+def check_loaded_tensors(model, info: dict, *, where: str, allow_missing: bool = False) -> tuple[list[str], list[str]]:
+    """Check what a loader reports about the tensors it read (transformers' ``output_loading_info``: a dict with
+    ``missing_keys``, ``unexpected_keys`` and ``mismatched_keys``); every loader of attnpos calls this.
+
+    A missing tensor or one of another shape would be randomly initialised and then measured as if trained; an
+    unexpected tensor inside the model's own modules means the weights were saved for another config (more layers,
+    another layout). Either is an :class:`AttnposError` naming the tensors, unless ``allow_missing`` (then a
+    warning says so). Unexpected tensors outside the model's modules (the task head of a fuller checkpoint, such
+    as ``cls.predictions.*`` beside a BERT encoder) are never used and only noted.
+
+    ``model`` may be None (a loader that has not built one yet): every unexpected tensor then counts.
+
+    Returns ``(randomly_initialised, unused)``: sorted tensor names (missing or reshaped; unexpected).
+
+    >>> check_loaded_tensors(None, {"missing_keys": [], "unexpected_keys": [], "mismatched_keys": []}, where="x")
+    ([], [])
+    """
+    def names(key) -> list[str]:
+        out = []
+        for item in info.get(key) or ():
+            out.append(str(item[0]) if isinstance(item, (tuple, list)) else str(item))
+        return sorted(set(out))
+
+    missing, mismatched, unexpected = names("missing_keys"), names("mismatched_keys"), names("unexpected_keys")
+    own = set() if model is None else ({n for n, _ in model.named_children()} |
+                                       {n for n, _ in model.named_parameters(recurse=False)})
+    prefix = getattr(model, "base_model_prefix", "") or ""
+
+    def inside(name: str) -> bool:
+        if model is None:
+            return True             # no model to tell a task head from the body: every extra tensor counts
+        first = name.split(".")[0]
+        if first == prefix and first not in own:
+            first = (name.split(".") + [""])[1]
+        return first in own
+
+    wrong = [n for n in unexpected if inside(n)]
+    problems = []
+    if missing:
+        problems.append(f"{len(missing)} tensor(s) the model needs are missing ({_names(missing)})")
+    if mismatched:
+        problems.append(f"{len(mismatched)} tensor(s) have another shape than the config implies "
+                        f"({_names(mismatched)})")
+    if wrong:
+        problems.append(f"{len(wrong)} tensor(s) do not belong to the model the config describes ({_names(wrong)})")
+    if problems and not allow_missing:
+        raise AttnposError(f"The weights in {where} do not match its config: {'; '.join(problems)}. Loading would "
+                           "fill the gaps with random values and measure them as if trained. Re-save the checkpoint "
+                           "with `model.save_pretrained(folder)`, fix config.json, or pass allow_missing_weights=True "
+                           "(CLI: --allow-missing-weights) to go on anyway; the results then record which tensors "
+                           "were random.")
+    if problems:
+        import warnings
+
+        warnings.warn(f"loading {where} with allow_missing_weights: {'; '.join(problems)}; these stay "
+                      "random and every result records them.", stacklevel=2)
+    return sorted(set(missing) | set(mismatched)), unexpected
 
 
 def weights_dtype(name) -> torch.dtype:
@@ -203,7 +289,7 @@ def weights_dtype(name) -> torch.dtype:
     return dt
 
 
-def _load_gguf(loc, dtype, *, scheme=None, training_length=None) -> Subject:
+def _load_gguf(loc, dtype, *, scheme=None, training_length=None, allow_missing_weights=False) -> Subject:
     """Load a GGUF file with transformers' GGUF loading (every tensor dequantised by the gguf package, then kept
     in ``dtype``). GGUF-loaded models refuse ``save_pretrained``; to keep one as safetensors, build a plain model
     from its config and copy the weights."""
@@ -218,16 +304,18 @@ def _load_gguf(loc, dtype, *, scheme=None, training_length=None) -> Subject:
     p, f = loc.path, loc.gguf
     try:
         config = AutoConfig.from_pretrained(p, gguf_file=f)
-        model = _model_class(config).from_pretrained(p, gguf_file=f, config=config, attn_implementation="eager",
-                                                     dtype=dtype)
+        model, info = _model_class(config).from_pretrained(p, gguf_file=f, config=config, attn_implementation="eager",
+                                                           dtype=dtype, output_loading_info=True)
         tokenizer = AutoTokenizer.from_pretrained(p, gguf_file=f)
     except (ValueError, NotImplementedError, KeyError, RuntimeError) as exc:
         raise AttnposError(f"transformers could not load {p / f} ({type(exc).__name__}: {_one_line(exc)}). Its GGUF "
                            "loading covers some architectures and quantisations only; convert the model to a "
                            "transformers folder (config.json + safetensors) where it was made.") from None
     model.eval()
+    random_init, _ = check_loaded_tensors(model, info, where=str(p / f), allow_missing=allow_missing_weights)
     subject = from_model(model, tokenizer, name=loc.name, path=str(p / f), scheme=scheme,
                          training_length=training_length)
+    subject.missing_weights = random_init
     packed = [n for n, t in model.named_parameters() if not t.is_floating_point()]
     if packed:    # transformers keeps some architectures' blocks packed when a GGUF matmul kernel is installed
         subject.notes.append(f"Loaded from GGUF ({f}): {len(packed)} weight(s) stay in their quantised blocks and are "

@@ -14,6 +14,7 @@ unit of its own, and a notice says so; nothing is silently truncated.
 from __future__ import annotations
 
 import hashlib
+import os
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -21,7 +22,9 @@ from typing import Iterable, Sequence
 
 import numpy as np
 
+from . import sizes
 from .errors import AttnposError
+from .files import safe_text
 
 SAMPLE_DIR = Path(__file__).resolve().parent.parent / "sample_text"
 
@@ -64,23 +67,42 @@ def default_texts() -> list[RawText]:
     return read([SAMPLE_DIR])
 
 
+SNIFF_BYTES = 8192
+"""How much of a text file is looked at (for NUL bytes and a UTF-16 mark) before the rest is read."""
+
+TEXT_MEMORY_FACTOR = 250
+"""Bytes of memory per byte of text file, a rough upper bound for reading and tokenising it: the bytes, the
+decoded text, the tokenizer's output for the whole text, and a token id and a display string per token as Python
+objects (a byte-level tokenizer makes one token per byte). Measured with ref:rope: 235 bytes per byte at 1 MB, 198
+at 5 MB (``python bench/text_memory.py read 1000000 5000000``, see bench/README.md)."""
+
+
 def _decode(path: Path) -> str:
     try:
-        data = path.read_bytes()
+        with path.open("rb") as fh:
+            head = fh.read(SNIFF_BYTES)
+            _sniff(path, head)                 # a binary file is refused before it is read whole
+            size = os.fstat(fh.fileno()).st_size
+            sizes.refuse_if_too_big(size * TEXT_MEMORY_FACTOR, f"Reading {path} ({sizes.human_bytes(size)}) with its "
+                                    "tokens", "Split the text into smaller files, or scan a part of it.")
+            data = head + fh.read()
     except OSError as exc:
         raise AttnposError(f"Cannot read {path} ({exc.strerror or exc}). Check that the file exists and is readable "
                            "by you, then try again.") from None
-    if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
-        raise AttnposError(f"{path} is UTF-16 text (it starts with a UTF-16 byte-order mark); attnpos reads UTF-8. "
-                           "Convert it, e.g. `iconv -f utf-16 -t utf-8 in.txt > out.txt`.")
-    if b"\x00" in data[:8192]:
-        raise AttnposError(f"{path} looks like a binary file (it contains NUL bytes), not text. Pass plain UTF-8 "
-                           "text files (.txt).")
     try:
         return data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
         raise AttnposError(f"{path} is not valid UTF-8 (byte 0x{data[exc.start]:02x} at offset {exc.start}). "
                            "Convert it, e.g. `iconv -f latin1 -t utf-8 in.txt > out.txt`.") from None
+
+
+def _sniff(path: Path, data: bytes) -> None:
+    if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        raise AttnposError(f"{path} is UTF-16 text (it starts with a UTF-16 byte-order mark); attnpos reads UTF-8. "
+                           "Convert it, e.g. `iconv -f utf-16 -t utf-8 in.txt > out.txt`.")
+    if b"\x00" in data:
+        raise AttnposError(f"{path} looks like a binary file (it contains NUL bytes), not text. Pass plain UTF-8 "
+                           "text files (.txt).")
 
 
 def read(inputs: Iterable[str | Path] | str | Path, *, lines: bool = False) -> list[RawText]:
@@ -109,9 +131,10 @@ def read(inputs: Iterable[str | Path] | str | Path, *, lines: bool = False) -> l
             if lines:
                 for k, line in enumerate(body.splitlines()):
                     if line.strip():
-                        out.append(RawText(name=f"{f.stem}:{k + 1}", text=line, source=str(f)))
+                        out.append(RawText(name=f"{safe_text(f.stem)}:{k + 1}", text=line,
+                                           source=safe_text(str(f))))
             else:
-                out.append(RawText(name=f.stem, text=body, source=str(f)))
+                out.append(RawText(name=safe_text(f.stem), text=body, source=safe_text(str(f))))
     return check(out)
 
 
@@ -166,9 +189,16 @@ def display_tokens(tokenizer, ids: Sequence[int]) -> list[str]:
 def _encode(tokenizer, text: str) -> list[int]:
     """Token ids without special tokens, quietly (the length check against the model's limit is ours)."""
     try:
-        return list(tokenizer(text, add_special_tokens=False, verbose=False)["input_ids"])
-    except TypeError:  # a tokenizer-like object without the verbose switch
-        return list(tokenizer(text, add_special_tokens=False)["input_ids"])
+        try:
+            return list(tokenizer(text, add_special_tokens=False, verbose=False)["input_ids"])
+        except TypeError:  # a tokenizer-like object without the verbose switch
+            return list(tokenizer(text, add_special_tokens=False)["input_ids"])
+    except (AttnposError, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - the tokenizer's own errors (a broken vocabulary) explained
+        raise AttnposError(f"The model's tokenizer failed on a text ({type(exc).__name__}: {str(exc)[:200]}). Its "
+                           "tokenizer files are probably damaged or incomplete (an empty vocabulary, no unknown "
+                           "token); save the tokenizer again with `tokenizer.save_pretrained(folder)`.") from None
 
 
 def template(tokenizer) -> tuple[list[int], list[int]]:

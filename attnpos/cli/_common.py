@@ -58,6 +58,9 @@ def add_loading_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--dtype", choices=DTYPES, default=DTYPES[0],
                    help="keep the weights in this dtype (attention scores are always computed in float32; "
                         f"default {DTYPES[0]})")
+    p.add_argument("--allow-missing-weights", action="store_true",
+                   help="go on when the weights lack tensors the config needs (or hold them in another shape): "
+                        "they stay random, and the results record which")
 
 
 def add_text_arguments(p: argparse.ArgumentParser, windows: bool = True) -> None:
@@ -106,9 +109,26 @@ def _same(a: Path, b: Path) -> bool:
         return False
 
 
+def _input_files(value) -> list[Path]:
+    """The files an input argument reads: a file itself; for a folder, the files inside it (``suffix``-filtered for
+    text folders by the caller)."""
+    items = [value] if isinstance(value, (str, Path)) else list(value)
+    out = []
+    for item in items:
+        p = Path(item).expanduser()
+        if p.is_dir():
+            with_suffix = getattr(value, "suffix_filter", None)
+            out += [f for f in p.iterdir() if f.is_file() and (with_suffix is None or f.suffix == with_suffix)]
+        out.append(p)
+    return out
+
+
 def check_outputs(outputs: dict[str, Path | None], inputs: dict[str, Path | None] | None = None) -> None:
-    """Each output path can be written (its folder exists, it is not a folder), no two outputs are the same file,
-    and no output is one of the inputs (a findings file, a text)."""
+    """Each output path can be written (its folder exists, it is not a folder, not read-only, not a findings file
+    that is not the output's own kind), no two outputs are the same file, and no output is one of the inputs (a
+    findings file, a text, a file of the model folder). Inputs that are folders stand for every file in them."""
+    from ..files import check_writable
+
     outs = {flag: Path(p) for flag, p in outputs.items() if p is not None}
     for flag, path in outs.items():
         if path.is_dir():
@@ -121,17 +141,40 @@ def check_outputs(outputs: dict[str, Path | None], inputs: dict[str, Path | None
     items = list(outs.items())
     for i, (fa, pa) in enumerate(items):
         for fb, pb in items[i + 1:]:
-            if pa.expanduser().absolute() == pb.expanduser().absolute() or _same(pa, pb):
+            if _resolved(pa) == _resolved(pb) or _same(pa, pb):
                 raise AttnposError(f"{fa} and {fb} name the same file ({pa}); give each its own path.")
     for fi, pi in (inputs or {}).items():
         if pi is None:
             continue
-        for pin in ([pi] if isinstance(pi, (str, Path)) else list(pi)):
-            pin = Path(pin)
+        for pin in _input_files(pi):
             for fo, po in outs.items():
-                if po.expanduser().absolute() == pin.expanduser().absolute() or _same(po, pin):
+                if _resolved(po) == _resolved(pin) or _same(po, pin):
                     raise AttnposError(f"{fo} would overwrite {pin}, which is an input ({fi}); write to another "
                                        "path.")
+    for flag, path in outs.items():
+        try:
+            check_writable(path.expanduser())
+        except AttnposError as exc:
+            raise AttnposError(f"{flag}: {exc}") from None
+
+
+def _resolved(p: Path) -> Path:
+    """The absolute path with links and ``..`` resolved (a missing file resolves through its folder)."""
+    try:
+        return Path(p).expanduser().resolve()
+    except (OSError, RuntimeError):
+        return Path(p).expanduser().absolute()
+
+
+class TextInputs(list):
+    """``--text`` paths as an input of :func:`check_outputs`: a folder stands for its ``.txt`` files only."""
+
+    suffix_filter = ".txt"
+
+
+def model_files(located) -> list[Path]:
+    """The files of a located model folder, as inputs of :func:`check_outputs`."""
+    return [located.path]
 
 
 def scheme_argument(args):
@@ -144,7 +187,8 @@ def load_subject(args, name: str = "model"):
     from ..subject import load
 
     return load(getattr(args, name), scheme=scheme_argument(args), allow_pickle=args.allow_pickle,
-                trust_remote_code=args.trust_remote_code, dtype=getattr(args, "dtype", "float32"))
+                trust_remote_code=args.trust_remote_code, dtype=getattr(args, "dtype", "float32"),
+                allow_missing_weights=args.allow_missing_weights)
 
 
 def write(what: str, path: Path, save) -> None:

@@ -24,12 +24,13 @@ def add_arguments(p) -> None:
 
 
 def check(args) -> None:
-    c.check_outputs({"--json": args.json}, {"--text": args.text})
     if args.heads is not None:
         parsed = keys.parse_keys(args.heads)      # the grammar: a bad key is refused before the model loads
         if not parsed:
             raise AttnposError("--heads is empty: give keys such as L0.H1,L2.H3, or leave it out for every head.")
-    c.check_model(args)
+    loc = c.check_model(args)
+    c.check_outputs({"--json": args.json}, {"--text": c.TextInputs(args.text or []),
+                                             "the model folder": c.model_files(loc)})
     args.raw_texts = c.read_texts(args)
 
 

@@ -28,7 +28,10 @@ def _is_scan_file(x: str) -> bool:
 
 def check(args) -> None:
     inputs = {"A": Path(args.a) if _is_scan_file(args.a) else None,
-              "B": Path(args.b) if _is_scan_file(args.b) else None, "--text": args.text}
+              "B": Path(args.b) if _is_scan_file(args.b) else None, "--text": c.TextInputs(args.text or [])}
+    for name in ("a", "b"):
+        if not _is_scan_file(getattr(args, name)):
+            inputs[f"model {name.upper()}"] = c.model_files(c.check_model(args, name))
     c.check_outputs({"--json": args.json}, inputs)
     args.sides = []
     for name in ("a", "b"):
@@ -38,7 +41,6 @@ def check(args) -> None:
 
             args.sides.append(Scan.load(x))          # a damaged scan file is refused now
         else:
-            c.check_model(args, name)
             args.sides.append(None)
     args.raw_texts = None if all(s is not None for s in args.sides) else c.read_texts(args)
 
@@ -52,7 +54,7 @@ def run(args) -> int:
             from ..subject import load
 
             s = load(getattr(args, name), allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code,
-                     dtype=getattr(args, "dtype", "float32"))
+                     dtype=getattr(args, "dtype", "float32"), allow_missing_weights=args.allow_missing_weights)
         sides.append(s)
     res = compare(*sides, args.raw_texts, all_heads=args.all, n_boot=args.boot, shift=not args.no_shift,
                   induction=not args.no_induction, max_tokens=args.max_tokens)

@@ -29,8 +29,12 @@ def add_arguments(p) -> None:
 
 
 def check(args) -> None:
-    c.check_outputs({"--json": args.json}, {"--text": args.text})
-    c.check_model(args)
+    loc = c.check_model(args)
+    from ..sizes import refuse_long_sequence
+
+    refuse_long_sequence(loc.config, args.to, f"attnpos length --to {args.to} on {args.model}")
+    c.check_outputs({"--json": args.json}, {"--text": c.TextInputs(args.text or []),
+                                             "the model folder": c.model_files(loc)})
     from ..texts import read
 
     args.raw_texts = read(args.text) if args.text else None

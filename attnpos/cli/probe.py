@@ -21,8 +21,9 @@ def add_arguments(p) -> None:
 
 
 def check(args) -> None:
-    c.check_outputs({"--json": args.json}, {"--text": args.text})
-    c.check_model(args)
+    loc = c.check_model(args)
+    c.check_outputs({"--json": args.json}, {"--text": c.TextInputs(args.text or []),
+                                             "the model folder": c.model_files(loc)})
     args.raw_texts = c.read_texts(args)
 
 

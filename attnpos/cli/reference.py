@@ -21,7 +21,7 @@ def add_arguments(p) -> None:
 
 def check(args) -> None:
     if args.what == "corpus" and args.out is not None:
-        from .common import check_outputs
+        from ._common import check_outputs
 
         check_outputs({"--out": args.out})
 

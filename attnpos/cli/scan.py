@@ -23,9 +23,10 @@ def add_arguments(p) -> None:
 
 
 def check(args) -> None:
+    loc = c.check_model(args)
     c.check_outputs({"--json": args.json, "--html": args.html},
-                    {"--findings": args.findings, "--text": args.text})
-    c.check_model(args)
+                    {"--findings": args.findings, "--text": c.TextInputs(args.text or []),
+                     "the model folder": c.model_files(loc)})
     args.raw_texts = c.read_texts(args)
     args.store = None
     if args.html and args.findings:

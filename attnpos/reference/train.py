@@ -255,13 +255,21 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
 
 def save(model, out: str | os.PathLike) -> Path:
     """Save model (safetensors) + byte tokenizer into ``out``."""
+    import tempfile
+
+    from ..files import move_files_into
+
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    model.save_pretrained(out)
-    if not (out / "model.safetensors").exists():  # pragma: no cover - transformers 5 always writes safetensors
-        raise AttnposError(f"saving to {out} did not produce model.safetensors")
-    limit = None
-    if getattr(model.config, "model_type", "") == "gpt2":
-        limit = model.config.n_positions
-    build_tokenizer(model_max_length=limit).save_pretrained(out)
+    # written into a temporary folder inside out first, then moved file by file (fsync, rename): a failure
+    # part-way leaves the previous model in out whole
+    with tempfile.TemporaryDirectory(dir=out, prefix=".saving-") as staging:
+        model.save_pretrained(staging)
+        if not (Path(staging) / "model.safetensors").exists():  # pragma: no cover - transformers 5 writes it
+            raise AttnposError(f"saving to {out} did not produce model.safetensors")
+        limit = None
+        if getattr(model.config, "model_type", "") == "gpt2":
+            limit = model.config.n_positions
+        build_tokenizer(model_max_length=limit).save_pretrained(staging)
+        move_files_into(staging, out)
     return out

@@ -230,9 +230,58 @@ class Scan(Result):
         texts, tokens = data["texts"], data["tokens"]
         if not isinstance(texts, list) or not isinstance(tokens, list) or len(texts) != len(tokens):
             raise ValueError("texts and tokens must be lists of the same length")
-        attached = {k: protocol.load(v) for k, v in (data.get("attached") or {}).items()}
-        return cls(model=dict(data["model"]), texts=texts, tokens=tokens,
-                   special=data.get("special") or [[] for _ in texts], heads=table, profile=profile,
+        model = _checked_model(data["model"])
+        _checked_texts(texts, tokens)
+        special = data.get("special") or [[] for _ in texts]
+        if not (isinstance(special, list) and len(special) == len(texts) and all(
+                isinstance(x, list) and all(isinstance(i, int) and not isinstance(i, bool) for i in x)
+                for x in special)):
+            raise ValueError("special must hold one list of token indices per text")
+        attached = data.get("attached") or {}
+        if not isinstance(attached, dict):
+            raise ValueError("attached must be an object")
+        attached = {k: protocol.load(v) for k, v in attached.items()}
+        return cls(model=model, texts=texts, tokens=tokens,
+                   special=special, heads=table, profile=profile,
                    texts_hash=str(data.get("texts_hash", "")), versions=dict(data.get("versions") or {}),
                    extra=dict(data.get("extra") or {}), caution=str(data.get("caution") or CAUTION),
                    attached=attached)
+
+
+_MODEL_FIELDS = {"name": str, "architecture": str, "layers": int, "heads": int, "causal": bool, "fingerprint": str}
+
+
+def _checked_model(model) -> dict:
+    """The scan's model section, with the fields every reader of a scan relies on checked (a ValueError names the
+    first that is missing or of the wrong kind)."""
+    if not isinstance(model, dict):
+        raise ValueError("model must be an object")
+    for name, kind in _MODEL_FIELDS.items():
+        v = model.get(name)
+        if not isinstance(v, kind) or (kind is int and (isinstance(v, bool) or v < 0)):
+            raise ValueError(f"model.{name} must be {'a whole number' if kind is int else kind.__name__}, "
+                             f"not {v!r}")
+    sch = model.get("scheme")
+    if not (isinstance(sch, str) or (isinstance(sch, list) and sch and all(isinstance(x, str) for x in sch))):
+        raise ValueError(f"model.scheme must be a scheme name or a list of them, not {sch!r}")
+    for name in ("capture", "score_kind", "path"):
+        if model.get(name) is not None and not isinstance(model[name], str):
+            raise ValueError(f"model.{name} must be text, not {model[name]!r}")
+    return dict(model)
+
+
+def _checked_texts(texts: list, tokens: list) -> None:
+    for n, (t, toks) in enumerate(zip(texts, tokens)):
+        if not isinstance(t, dict) or not isinstance(t.get("name"), str):
+            raise ValueError(f"texts[{n}] must be an object with a name")
+        k = t.get("n_tokens")
+        if not isinstance(k, int) or isinstance(k, bool) or k < 0:
+            raise ValueError(f"texts[{n}].n_tokens must be a whole number, not {k!r}")
+        if t.get("source") is not None and not isinstance(t["source"], str):
+            raise ValueError(f"texts[{n}].source must be text")
+        w = t.get("window")
+        if w is not None and not (isinstance(w, list) and len(w) == 2 and all(
+                isinstance(i, int) and not isinstance(i, bool) for i in w)):
+            raise ValueError(f"texts[{n}].window must be null or two whole numbers")
+        if not isinstance(toks, list) or not all(isinstance(x, str) for x in toks):
+            raise ValueError(f"tokens[{n}] must be a list of token strings")

@@ -191,7 +191,8 @@ def curves_data(scan) -> dict:
     out: dict[str, Any] = {"probe": None, "length": None, "entropy": None}
     pr = att.get("probe")
     if pr is not None and pr.layers:
-        rows = sorted((e for e in pr.layers if isinstance(e, dict) and "layer" in e), key=lambda e: e["layer"])
+        rows = sorted((e for e in pr.layers if isinstance(e, dict) and isinstance(e.get("layer"), (int, float))
+                       and not isinstance(e.get("layer"), bool)), key=lambda e: e["layer"])
         if rows:
             out["probe"] = {k: np.array([num(e.get(k)) for e in rows], dtype=np.float64)
                             for k in ("layer", "r2", "r2_log", "control_r2", "selectivity", "mae", "untrained_r2")}

@@ -263,14 +263,17 @@ def test_unreadable_text_file_is_reported(tmp_path, gpt2_dir, cli, monkeypatch):
     # permissions cannot be used to provoke this when tests run as root, so the read itself fails
     f = tmp_path / "locked.txt"
     f.write_text(FERRY, encoding="utf-8")
-    real = type(f).read_bytes
+    real_read, real_open = type(f).read_bytes, type(f).open
 
-    def denied(self):
-        if self.name == "locked.txt":
-            raise PermissionError(13, "Permission denied")
-        return real(self)
+    def denied(real):
+        def read(self, *a, **k):
+            if self.name == "locked.txt":
+                raise PermissionError(13, "Permission denied")
+            return real(self, *a, **k)
+        return read
 
-    monkeypatch.setattr(type(f), "read_bytes", denied)
+    monkeypatch.setattr(type(f), "read_bytes", denied(real_read))
+    monkeypatch.setattr(type(f), "open", denied(real_open))       # the text is sniffed through open() first
     code, _, err = cli("scan", gpt2_dir, "--text", f, *FAST)
     assert_clean_error(code, err, "locked.txt", "permission denied", "readable")
 

@@ -4,7 +4,9 @@
   the uniform spread over the allowed keys, mean weight per slot (for anchors), mean weight per distance.
 * :class:`SplitStats` — per text and head, the sufficient statistics of the score split (see :mod:`attnpos.split`):
   row-centred score sums per distance and per key (slot and token), and the within-row sum of squares. With
-  these, the least-squares split is solved exactly without ever holding the pairs.
+  these, the least-squares split is solved exactly without ever holding the pairs. For the position-pair part it
+  also keeps each text's row-centred scores on the first :data:`PAIR_MAX` × :data:`PAIR_MAX` (query, key)
+  positions, from which the split forms the per-(i, j) products across texts.
 
 Both are vectorised over heads and pairs; neither keeps a map.
 """
@@ -26,6 +28,10 @@ EXACT = 16          # distances / slots below this are their own bucket
 PER_OCTAVE = 4      # log-spaced buckets per doubling beyond EXACT
 TOP_TOKENS = 48     # key tokens with their own content term; the rest share one
 NEAR = 32           # weight-by-distance kept for |δ| ≤ NEAR
+# the position-pair part is estimated on queries and keys at positions below PAIR_MAX: each text keeps its
+# row-centred scores there (PAIR_MAX² floats per head and text — 4 kB; 32 keeps a scan of 270 heads on 64 texts
+# under 300 MB), and the first positions are where texts overlap most (every text has them)
+PAIR_MAX = 32
 
 
 def blas_one_thread():
@@ -499,6 +505,9 @@ class SplitStats(Reducer):
         self.ssw = np.zeros((n, S, H))
         self.gram_key = np.zeros((n, S), dtype=np.int64)   # which Gram (mask pattern) each text/site used
         self.grams: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+        self.R = min(PAIR_MAX, self.design.max_t)
+        self.pair = np.zeros((n, S, H, self.R, self.R), dtype=np.float32)   # row-centred scores, pair region
+        self.regions: dict[tuple, dict] = {}                                 # per pattern: see _region
         self._rows: dict[tuple, tuple] = {}               # per pattern: layout, keys per row, row feature counts
         self._scratch: torch.Tensor | None = None         # centred scores, when row constants are large
         self._layer_gram: dict[tuple, tuple] = {}         # (text, site) → its pattern key
@@ -527,9 +536,21 @@ class SplitStats(Reducer):
                 kind = ("none" if a.all() else "causal" if np.array_equal(a, np.tri(*a.shape, dtype=bool))
                         else "general")
                 self._rows[key] = (kind, torch.from_numpy(a.sum(1).astype(np.float64)), torch.from_numpy(C))
+                self.regions[key] = self._region(cap, a, C)
             self.gram_key[cap.text, si] = list(self.grams).index(key)
             self._layer_gram[at] = key
         return self._rows[self._layer_gram[at]]
+
+    def _region(self, cap: LayerCapture, a: np.ndarray, C: np.ndarray) -> dict:
+        """What the split needs to evaluate a fit on the pair region (queries and keys below R = PAIR_MAX) of one
+        mask pattern: the mask there, the allowed keys per row, the rows' feature counts, and the distance and key
+        features of the region's pairs."""
+        T = a.shape[0]
+        R = min(self.R, T)
+        FD = self.design.delta_features(T)[T - R:T + R - 1]       # δ = −(R − 1) … R − 1
+        FJ = self.design.key_features(cap.unit, T)[:R]
+        return {"R": R, "allowed": a[:R, :R].copy(), "n_i": a[:R].sum(1).astype(np.float64), "C": C[:R].copy(),
+                "FD": FD, "FJ": FJ}
 
     def update(self, cap: LayerCapture) -> None:
         if cap.offset:
@@ -548,11 +569,19 @@ class SplitStats(Reducer):
             b -= correction
         self.b[cap.text, si, hs] = b.numpy()
         self.ssw[cap.text, si, hs] = ssw.numpy()
+        # the pair region: row-centred scores of queries and keys below R (0 on disallowed pairs)
+        T = s0.shape[-1]
+        R = min(self.R, T)
+        m = s0[:, :R].sum(-1, dtype=torch.float64) / n_i[:R].clamp_min(1.0)            # (n, R) row means
+        A = cap.allowed[:R, :R]
+        blk = (s0[:, :R, :R].double() - m[..., None]) * A.to(torch.float64)
+        self.pair[cap.text, si, hs, :R, :R] = blk.numpy()
 
     def result(self) -> dict:
         self._scratch = None
         self._rows.clear()
         grams = list(self.grams.values())
         return {"keys": self.ph.keys, "design": self.design, "b": self.b, "ssw": self.ssw,
-                "gram_key": self.gram_key, "grams": [g for g, _ in grams], "dist_counts": [n for _, n in grams]}
+                "gram_key": self.gram_key, "grams": [g for g, _ in grams], "dist_counts": [n for _, n in grams],
+                "pair": self.pair, "regions": [self.regions[k] for k in self.grams]}
 

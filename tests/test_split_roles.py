@@ -61,7 +61,7 @@ def test_shares_sum_to_one_and_in_range():
     s = tiny.subject("llama")
     rec = record(s, TEXTS, [SplitStats()])
     fit = Split(n_boot=0).fit(rec)
-    sh = fit.shares.reshape(-1, 4)
+    sh = fit.shares.reshape(-1, fit.shares.shape[-1])
     assert np.all(sh >= -1e-12) and np.all(sh <= 1 + 1e-12)
     np.testing.assert_allclose(sh.sum(1), 1.0, atol=1e-9)
 
@@ -224,3 +224,57 @@ def test_minilm_roles_agree_with_direct_statistics(minilm):
             assert cls[l, h] >= th.ANCHOR_WEIGHT - 1e-6
     # what this model shows on our text (observed, not from memory): some heads are neighbour heads
     assert (prev >= th.NEIGHBOUR_MASS).any() or (nxt >= th.NEIGHBOUR_MASS).any()
+
+
+# ------------------------------------------------------------------------------------------ the position pair
+
+def _position_only_gpt2(scale: float = 1.0, layers: int = 1, seed: int = 0):
+    """GPT-2 (a learned absolute position table, Radford et al. 2019) with the token embeddings zeroed: every
+    score is LN(p_i)ᵀ W_q W_kᵀ LN(p_j) — a function of the two absolute positions only. ``scale`` multiplies the
+    random q/k weights."""
+    import transformers as tf
+
+    torch.manual_seed(seed)
+    cfg = tf.GPT2Config(n_layer=layers, n_head=4, n_embd=64, n_positions=128, vocab_size=tiny.VOCAB,
+                        bos_token_id=101, eos_token_id=102, pad_token_id=0)
+    m = tf.GPT2LMHeadModel(cfg).eval()
+    with torch.no_grad():
+        m.transformer.wte.weight.zero_()
+        m.transformer.wpe.weight.normal_(0, 1.0)
+        for blk in m.transformer.h:
+            blk.attn.c_attn.weight[:, :2 * 64].normal_(0, scale / 8)
+    return attnpos.from_model(m, tiny.tokenizer(), name="position-only")
+
+
+LONG = [f"{t} {u}" for t, u in zip(TEXTS, TEXTS[1:] + TEXTS[:1])]
+
+
+def test_position_pair_takes_scores_that_are_a_function_of_both_positions():
+    # scores p_iᵀ W p_j only: neither a free function of δ nor of j, the same in every text → the pair part
+    s = _position_only_gpt2()
+    fit = Split(n_boot=20).fit(record(s, LONG, [SplitStats()]))
+    k = list(attnpos.core.columns.PART_NAMES).index("pair")
+    assert (fit.shares[0, :, k] >= 0.9).all(), fit.shares[0].round(3)
+    np.testing.assert_allclose(fit.shares.sum(-1), 1.0, atol=1e-9)
+    assert (fit.shares_lo[0, :, k] <= fit.shares[0, :, k] + 1e-9).all()
+    assert (fit.shares_hi[0, :, k] >= fit.shares[0, :, k] - 1e-9).all()
+
+
+def test_position_pair_leaves_alibi_to_distance():
+    # Press et al. 2022, ALiBi: the bias −m·(i − j) is a function of the distance alone, so distance takes it and
+    # the pair part stays near 0 (q = k = 0 leaves the bias alone)
+    s = _zero_qk_bloom(4)
+    fit = Split(n_boot=0).fit(record(s, TEXTS[:4], [SplitStats()]))
+    k = list(attnpos.core.columns.PART_NAMES).index("pair")
+    assert (fit.shares[..., k] <= 0.05).all()
+    assert (fit.shares[..., 0] >= 0.95).all()
+    np.testing.assert_allclose(fit.shares.sum(-1), 1.0, atol=1e-9)
+
+
+def test_position_pair_is_zero_for_content_that_differs_between_texts():
+    # a random-weight RoPE model: scores depend on the tokens and on relative position (Su et al.), nothing shared
+    # by different texts at the same absolute pair beyond what distance explains
+    s = tiny.subject("llama")
+    fit = Split(n_boot=0).fit(record(s, LONG, [SplitStats()]))
+    k = list(attnpos.core.columns.PART_NAMES).index("pair")
+    assert (fit.shares[..., k] < 0.1).all(), fit.shares[..., k].round(3)

@@ -35,7 +35,9 @@ SPLIT_PARTS: tuple[Part, ...] = (
     Part("distance", "a free function of δ = i − j (linear trends in δ belong here)", "#3F6E9A"),
     Part("slot", "a free function of the key's absolute index j", "#B8613F"),
     Part("content", "a free function of the key's token", "#6C8C4F"),
-    Part("residual", "what is left: query–key interaction", "#9A948A"),
+    Part("pair", "a function of both absolute positions (i, j): what the residual shares across texts at the same "
+                 "pair", "#7B5C99"),
+    Part("residual", "what is left: query–key content interaction", "#9A948A"),
 )
 """The parts of the score split, in the order shares are stored and drawn."""
 

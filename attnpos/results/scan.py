@@ -124,7 +124,7 @@ class Scan(Result):
                  f"fingerprint {m['fingerprint'][:16]}"]
         width = max([12] + [len(k) + 1 for k in self.head_keys()])
         hdr = (f"{'head':<{width}} {'role':<15} {'prev':>5} {'next':>5} {'first':>5} {'self':>5}  {'dist':>5} "
-               f"{'slot':>5} {'cont':>5} {'resid':>5}  {'slope':>7}  {'ind':>5}  shift")
+               f"{'slot':>5} {'cont':>5} {'pair':>5} {'resid':>5}  {'slope':>7}  {'ind':>5}  shift")
         lines += [hdr, "-" * len(hdr)]
 
         def f(x, w=5, nd=2):
@@ -139,7 +139,7 @@ class Scan(Result):
                      else f"{r['shift_verdict']} ({float(r['shift_change']):.3f}, {r.get('shift_kind')})")
             lines.append(f"{key:<{width}} {r['role']:<15} {f(r['mass_previous'])} {f(r['mass_next'])} "
                          f"{f(r['mass_first'])} {f(r['mass_self'])}  {f(r['share_distance'])} {f(r['share_slot'])} "
-                         f"{f(r['share_content'])} {f(r['share_residual'])}  {f(r['slope'], 7, 3)}  "
+                         f"{f(r['share_content'])} {f(r.get('share_pair'))} {f(r['share_residual'])}  {f(r['slope'], 7, 3)}  "
                          f"{f(r['induction'])}  {shift}")
         counts = self.role_counts()
         lines.append("roles: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items(), key=lambda kv: -kv[1])))

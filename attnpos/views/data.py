@@ -21,6 +21,7 @@ ATLAS_FIELDS = [
     "share_distance", "share_distance_lo", "share_distance_hi",
     "share_slot", "share_slot_lo", "share_slot_hi",
     "share_content", "share_content_lo", "share_content_hi",
+    "share_pair", "share_pair_lo", "share_pair_hi",
     "share_residual", "share_residual_lo", "share_residual_hi",
     "slope", "slope_lo", "slope_hi", "entropy_ratio",
     "mass_previous", "mass_next", "mass_first", "mass_self",

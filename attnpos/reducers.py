@@ -250,14 +250,16 @@ class WeightStats(Reducer):
     def begin(self, subject, units: Sequence[TextUnit]) -> None:
         self.ph = _PerHead(subject)
         S, H = len(self.ph.keys), self.ph.n_heads
+        n = len(units)
         self.max_t = max(len(u) for u in units)
         z = lambda *shape: np.zeros(shape, dtype=np.float64)  # noqa: E731
-        self.mass = {k: z(S, H) for k in ("previous", "next", "first", "self")}
-        self.mass_n = {k: z(S) for k in ("previous", "next", "first", "self")}
-        self.ent = z(S, H)
-        self.ent_n = z(S)
-        self.slot_w = z(S, H, self.max_t)
-        self.slot_n = z(S, self.max_t)
+        # masses, entropy and slot weights are kept per text (first axis), so the roles can be resampled over texts
+        self.mass = {k: z(n, S, H) for k in ("previous", "next", "first", "self")}
+        self.mass_n = {k: z(n, S) for k in ("previous", "next", "first", "self")}
+        self.ent = z(n, S, H)
+        self.ent_n = z(n, S)
+        self.slot_w = np.zeros((n, S, H, self.max_t), dtype=np.float32)
+        self.slot_n = np.zeros((n, S, self.max_t), dtype=np.float32)
         self.near_w = z(S, H, 2 * NEAR + 1)
         self.near_n = z(S, 2 * NEAR + 1)
         self._counted: set = set()
@@ -278,21 +280,22 @@ class WeightStats(Reducer):
         ordf, n_allowed, qe, okf = self._queries(cap, A)
         if (si, cap.text) not in self._counted:    # head-independent counts, once per layer and text
             self._counted.add((si, cap.text))
-            self._count(si, A, ordf, qe, okf)
+            self._count(si, cap.text, A, ordf, qe, okf)
         # mean weight by distance, |δ| ≤ NEAR, over ordinary queries (weights are 0 on disallowed pairs); the
         # previous / next / self masses are its δ = 1, −1, 0 entries
         nb = band(w, NEAR)                          # (n, T, 2·NEAR+1)
         near = torch.matmul(ordf, nb).double().numpy()
         self.near_w[si, hs] += near
+        t = cap.text
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
-            self.mass[name][si, hs] += near[:, NEAR + d]
-        self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
+            self.mass[name][t, si, hs] += near[:, NEAR + d]
+        self.mass["first"][t, si, hs] += w[:, okf, 0].sum(-1).double().numpy()
         # entropy relative to log(number of allowed keys)
         if qe.any():
             ent = row_entropy(w, s0, nb, blocks)[:, qe] / torch.log(n_allowed[qe].double()).float()
-            self.ent[si, hs] += ent.sum(-1).double().numpy()
+            self.ent[t, si, hs] += ent.sum(-1).double().numpy()
         # weight per slot over queries at least ANCHOR_MIN_DISTANCE tokens away (local heads are not anchors)
-        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb, blocks).double().numpy()
+        self.slot_w[t, si, hs, :T] += _far_column_sums(w, ordf, nb, blocks).numpy()
 
     def _queries(self, cap: LayerCapture, A: torch.Tensor) -> tuple:
         """Which queries enter each statistic: ordinary ones (as 0/1 floats), the allowed keys per query, entropy
@@ -311,7 +314,8 @@ class WeightStats(Reducer):
             hit = self._mask = (cap.allowed, key, (ordinary.to(torch.float32), n_allowed, qe, okf))
         return hit[2]
 
-    def _count(self, si: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor, okf: torch.Tensor) -> None:
+    def _count(self, si: int, t: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor,
+               okf: torch.Tensor) -> None:
         """How many (ordinary query, allowed key) pairs enter each mean: the same sums as above, over the mask."""
         T = A.shape[-1]
         Af = A.to(ordf.dtype)[None]
@@ -319,29 +323,40 @@ class WeightStats(Reducer):
         near_n = torch.matmul(ordf, nb)[0].double().numpy()
         self.near_n[si] += near_n
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
-            self.mass_n[name][si] += near_n[NEAR + d]
-        self.mass_n["first"][si] += int(okf.sum())
-        self.ent_n[si] += int(qe.sum())
-        self.slot_n[si, :T] += _far_column_sums(Af, ordf, nb)[0].double().numpy()
+            self.mass_n[name][t, si] += near_n[NEAR + d]
+        self.mass_n["first"][t, si] += int(okf.sum())
+        self.ent_n[t, si] += int(qe.sum())
+        self.slot_n[t, si, :T] += _far_column_sums(Af, ordf, nb)[0].numpy()
 
     def result(self) -> dict:
         self._mask = None
-        div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
-        mass = {k: div(self.mass[k], self.mass_n[k][:, None]) for k in self.mass}
-        slot_mean = div(self.slot_w, self.slot_n[:, None, :])
-        # anchor: the slot with the highest mean weight among slots seen by at least 8 queries
-        enough = self.slot_n >= 8
-        masked = np.where(enough[:, None, :], slot_mean, -np.inf)
-        anchor_slot = masked.argmax(-1).astype(float)
-        anchor_weight = np.take_along_axis(masked, anchor_slot.astype(int)[..., None], -1)[..., 0]
-        anchor_slot[~np.isfinite(anchor_weight)] = np.nan
-        anchor_weight[~np.isfinite(anchor_weight)] = np.nan
-        return {
-            "keys": self.ph.keys, "mass": mass, "entropy_ratio": div(self.ent, self.ent_n[:, None]),
-            "slot_mean": slot_mean, "slot_n": self.slot_n, "anchor_slot": anchor_slot,
-            "anchor_weight": anchor_weight, "near_distance": np.arange(-NEAR, NEAR + 1),
-            "near_mean": div(self.near_w, self.near_n[:, None, :]),
-        }
+        per_text = {"mass": self.mass, "mass_n": self.mass_n, "entropy": self.ent, "entropy_n": self.ent_n,
+                    "slot_w": self.slot_w, "slot_n": self.slot_n}
+        out = weight_summary(per_text, np.ones(len(self.ent)))
+        out.update({"keys": self.ph.keys, "near_distance": np.arange(-NEAR, NEAR + 1),
+                    "near_mean": self.near_w / np.where(self.near_n > 0, self.near_n, np.nan)[:, None, :],
+                    "per_text": per_text})
+        return out
+
+
+def weight_summary(per_text: dict, w: np.ndarray) -> dict:
+    """The weight statistics of :class:`WeightStats` from its per-text sums, with text weights ``w`` (ones: the
+    plain means; a bootstrap resample's counts: that resample's). Returns ``mass`` (by name, (S, H)),
+    ``entropy_ratio``, ``slot_mean``, ``slot_n``, ``anchor_slot`` and ``anchor_weight``."""
+    div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
+    tw = lambda a: np.tensordot(w, a, axes=(0, 0))      # noqa: E731
+    mass = {k: div(tw(per_text["mass"][k]), tw(per_text["mass_n"][k])[:, None]) for k in per_text["mass"]}
+    slot_n = tw(per_text["slot_n"].astype(np.float64))
+    slot_mean = div(tw(per_text["slot_w"].astype(np.float64)), slot_n[:, None, :])
+    # anchor: the slot with the highest mean weight among slots seen by at least 8 queries
+    enough = slot_n >= 8
+    masked = np.where(enough[:, None, :], slot_mean, -np.inf)
+    anchor_slot = masked.argmax(-1).astype(float)
+    anchor_weight = np.take_along_axis(masked, anchor_slot.astype(int)[..., None], -1)[..., 0]
+    anchor_slot[~np.isfinite(anchor_weight)] = np.nan
+    anchor_weight[~np.isfinite(anchor_weight)] = np.nan
+    return {"mass": mass, "entropy_ratio": div(tw(per_text["entropy"]), tw(per_text["entropy_n"])[:, None]),
+            "slot_mean": slot_mean, "slot_n": slot_n, "anchor_slot": anchor_slot, "anchor_weight": anchor_weight}
 
 
 # ------------------------------------------------------------------------------------------------ split stats

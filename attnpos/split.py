@@ -275,9 +275,11 @@ class Split:
         if self.n_boot > 0 and n >= 2:
             rng = np.random.default_rng(self.seed)
             bs = {"shares": [], "profile": [], "slope": []}
+            weights = []
             seen: dict[bytes, tuple] = {}        # a resample drawn again (likely with few texts) is not refitted
             for _ in range(self.n_boot):
                 w = np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
+                weights.append(w)
                 key = w.tobytes()
                 if key not in seen:
                     s4, p_, l_, _ = self._fit_weights(res, w)
@@ -289,6 +291,9 @@ class Split:
             for k, stack in bs.items():
                 arr = np.stack(stack)
                 out[f"{k}_lo"], out[f"{k}_hi"] = _nan_percentiles(arr, (5, 95))
+            out["boot_weights"] = np.stack(weights)
+            out["boot_shares"] = np.stack(bs["shares"])
+            out["boot_slope"] = np.stack(bs["slope"])
         design: Design = res["design"]
         return SplitResult(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
                         n_texts=n, n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

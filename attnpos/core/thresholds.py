@@ -31,9 +31,21 @@ COUNTING_ENTROPY = 0.9
 LOCAL_SLOPE = 0.01
 LOCAL_SHARE = 0.4
 
-# content: distance and slot together explain under 25% and key content plus residual at least 60%.
+# content: distance, slot and the position pair together explain under 25% and key content plus residual at least
+# 60% — and the shift test does not say `absolute` (a head whose weights stay on absolute places when the text
+# moves is not following content, whatever the split says).
 CONTENT_MAX_POSITIONAL = 0.25
 CONTENT_MIN_SHARE = 0.6
+
+# positional: the shift test says `absolute` (an intervention: the head kept looking at the same absolute places),
+# or the position-pair part explains at least 40% of the within-row variance (the same bar as `local`'s distance
+# share: the largest single part for most heads that have it). A head with scores p_iᵀ W p_j only puts ≥ 0.9 there.
+POSITIONAL_PAIR_SHARE = 0.4
+
+# role support: a role is a head's primary role when its criterion holds in at least 90% of the bootstrap resamples
+# over texts (the same 90% as the intervals the split reports); when none does, the head is said to sit between
+# the two roles it gets most often across resamples.
+ROLE_SUPPORT = 0.9
 
 # shift test verdicts (change = mean total-variation distance between a query's weights over the text's own keys,
 # before and after the shift; 0 = identical, 1 = disjoint). Under 0.05: the head moved with the text, `relative`;

@@ -26,9 +26,21 @@ ATLAS_FIELDS = [
     "slope", "slope_lo", "slope_hi", "entropy_ratio",
     "mass_previous", "mass_next", "mass_first", "mass_self",
     "anchor_slot", "anchor_weight", "induction", "shift_offset", "shift_change",
+    "role_support", "faded",
 ]
 SPARK_POINTS = 24
 STATUS_ORDER = ("open", "supported", "ruled-out")
+
+
+def uncertain_roles(t: pd.DataFrame) -> np.ndarray:
+    """1.0 for heads whose primary role holds in fewer than ROLE_SUPPORT of the resamples (or that sit between two
+    roles), else 0.0: the atlas draws them faded."""
+    from ..core.thresholds import ROLE_SUPPORT
+
+    sup = pd.to_numeric(t["role_support"], errors="coerce").to_numpy(dtype=float) if "role_support" in t else \
+        np.full(len(t), np.nan)
+    between = [isinstance(v, list) and len(v) > 0 for v in (t["role_between"] if "role_between" in t else [None] * len(t))]
+    return ((np.isfinite(sup) & (sup < ROLE_SUPPORT)) | np.array(between, dtype=bool)).astype(np.float32)
 
 
 def atlas_layout(n_cols: int) -> dict:
@@ -95,6 +107,7 @@ def atlas_data(scan, spark_points: int | None = None) -> dict:
     for k, c in enumerate(ATLAS_FIELDS):
         if c in t.columns:
             numbers[:, k] = pd.to_numeric(t[c], errors="coerce").to_numpy(dtype=np.float64)
+    numbers[:, ATLAS_FIELDS.index("faded")] = uncertain_roles(t)
     prof = scan.profile or {}
     if "value" in prof and np.asarray(prof["value"]).shape[0] == n:
         order = profile_order(prof)

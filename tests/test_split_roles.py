@@ -293,7 +293,9 @@ def _planted_rope(seed: int = 0):
     head 0 (a sink): keys read e2 in the slowest rotary pair (θ = 10⁻³, so the rotation barely matters), queries the
     constant e0: weight on the first slot. Layer 1, head 1 (previous token): constant q and k in the three fastest
     pairs with k rotated by +θ_m, so q·k = Σ_m a² cos(θ_m (δ − 1)) — a peak at δ = 1, by RoPE's relative property
-    (Su et al.). Every other head has q = k = 0 (uniform)."""
+    (Su et al.). Layer 1, head 3: a large, nearly constant product in the slowest pair (most of its q·k energy, no
+    effect on the weights — softmax ignores a row constant) beside a cosine in the fastest pair that shapes them.
+    Every other head has q = k = 0 (uniform)."""
     import transformers as tf
 
     torch.manual_seed(seed)
@@ -322,6 +324,10 @@ def _planted_rope(seed: int = 0):
             a1.q_proj.weight[hd + p, 0] = a / 5.6
             a1.k_proj.weight[hd + p, 0] = a * math.cos(th) / 5.6
             a1.k_proj.weight[hd + p + 4, 0] = a * math.sin(th) / 5.6
+        a1.q_proj.weight[3 * hd + 3, 0] = a1.k_proj.weight[3 * hd + 3, 0] = 1.2        # head 3, pair 3: constant
+        a1.q_proj.weight[3 * hd + 0, 0] = 4.0 / 5.6                                    # head 3, pair 0: cos(δ − 1)
+        a1.k_proj.weight[3 * hd + 0, 0] = 4.0 * math.cos(1.0) / 5.6
+        a1.k_proj.weight[3 * hd + 4, 0] = 4.0 * math.sin(1.0) / 5.6
     return attnpos.from_model(m, tiny.tokenizer(), name="planted-rope")
 
 
@@ -466,3 +472,29 @@ def test_induction_score_has_a_standard_error_within_bound_on_a_reference_model(
     pool = set(ordinary_pool(tok, 48))
     assert not pool & set(tok.all_special_ids)
     assert tok.convert_tokens_to_ids("[unused5]") not in pool and tok.convert_tokens_to_ids("harbour") in pool
+
+
+def test_bands_by_intervention_name_the_band_a_head_uses():
+    # RoPE (Su et al.) splits q·k into one term per rotary pair. The sink head's scores come from one known pair (the
+    # slowest): removing its band changes the weights, removing the others changes nothing. The head whose energy
+    # sits in a constant slow pair but whose weights come from the fastest pair uses the high band, though its energy
+    # says low (Barbero et al. 2025 draw this distinction).
+    from attnpos.bands import rope_bands
+
+    s = _planted_rope()
+    res = rope_bands(s, LONG[:3])
+    by = {(h["layer"], h["head"]): h for h in res.heads}
+    sink, prev, slow = by[(1, 0)], by[(1, 1)], by[(1, 3)]
+    assert sink["band"] == "low" and sink["used_band"] == "low"
+    assert sink["removal"]["low"]["tv"] > 0.5 and sink["removal"]["low"]["first"] < -0.5
+    assert sink["removal"]["high"]["tv"] < 1e-3 and sink["removal"]["middle"]["tv"] < 1e-3
+    assert prev["used_band"] == "high" and prev["removal"]["high"]["previous"] < -0.3
+    assert slow["band"] == "low" and slow["used_band"] == "high"
+    assert slow["removal"]["low"]["tv"] < 0.05 < slow["removal"]["high"]["tv"]
+    assert by[(1, 2)]["used_band"] is None                          # uniform: nothing to remove
+    text = res.text()
+    assert "used, by intervention" in text and "L1.H0" in text and "L0.H0–3" in text   # compact lists per layer
+    t = res.table()
+    assert {"used_band", "removal_low_tv", "removal_high_previous"} <= set(t.columns)
+    again = type(res).from_json(res.to_json())
+    assert again.heads[4]["used_band"] == "low"

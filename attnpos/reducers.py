@@ -503,7 +503,8 @@ def _gram_for(design: Design, unit: TextUnit, allowed: np.ndarray) -> tuple[np.n
 
 
 class SplitStats(Reducer):
-    """Per text, site and head: b = X_wᵀ s (row-centred score sums mapped to features) and the within-row SS."""
+    """Per text, site and head: b = X_wᵀ s (row-centred score sums mapped to features), the within-row SS, and the
+    row-centred scores on the pair region (queries and keys below PAIR_MAX) for the position-pair part."""
 
     name = "split"
 

@@ -498,3 +498,17 @@ def test_bands_by_intervention_name_the_band_a_head_uses():
     assert {"used_band", "removal_low_tv", "removal_high_previous"} <= set(t.columns)
     again = type(res).from_json(res.to_json())
     assert again.heads[4]["used_band"] == "low"
+
+
+def test_each_scheme_runs_the_shifts_its_facts_make_informative():
+    # RoPE (Su et al.), ALiBi (Press et al. 2022) and T5's bias (Raffel et al. 2020) are relative by construction:
+    # moving ids cannot change them, a prefix can; a learned or sinusoidal table is moved by its ids
+    from attnpos.core import schemes
+
+    got = {s.name: s.informative_shifts() for s in schemes.specs()}
+    assert got["learned-absolute"] == got["sinusoidal"] == ("position-ids",)
+    assert got["rope"] == got["alibi"] == got["relative-bias"] == got["none"] == ("prefix",)
+    assert schemes.informative_shifts(["rope", "none"]) == ("prefix",)
+    assert schemes.informative_shifts(["learned-absolute", "rope"]) == ("position-ids", "prefix")
+    with pytest.raises(ValueError):
+        attnpos.ShiftTest(kinds=("sideways",))

@@ -161,7 +161,8 @@ def head_info(scan, key: str) -> dict:
     info: dict[str, Any] = {"key": key, "stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
                             "role": r["role"] if isinstance(r["role"], str) else None,
                             "tags": tags_of(r["tags"]), "evidence": text_of(r["evidence"]),
-                            "shift_kind": text_of(r.get("shift_kind")), "shift_verdict": text_of(r.get("shift_verdict"))}
+                            "shift_kind": text_of(r.get("shift_kind")), "shift_verdict": text_of(r.get("shift_verdict")),
+                            "role_between": " / ".join(tags_of(r.get("role_between"))) or None}
     for c in ATLAS_FIELDS:
         info[c] = clean(num(r.get(c)))
     prof = scan.profile or {}

@@ -287,6 +287,8 @@ def facts_table(info: dict) -> str:
         ("slope", f"{fmt(info.get('slope'), 3)} {fmt_interval(info.get('slope_lo'), info.get('slope_hi'), 3)}"),
         ("shift test", f"{info.get('shift_verdict') or '—'} · change {fmt(info.get('shift_change'), 3)} · "
                        f"offset {fmt(info.get('shift_offset'), 0)} · {info.get('shift_kind') or '—'}"),
+        ("role support", fmt(info.get("role_support")) + (f" · between {info['role_between']}"
+                                                           if info.get("role_between") else "")),
         ("induction score", fmt(info.get("induction"))),
         ("anchor", f"slot {fmt(info.get('anchor_slot'), 0)} · weight {fmt(info.get('anchor_weight'))}"),
         ("entropy ratio", fmt(info.get("entropy_ratio"))),

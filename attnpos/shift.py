@@ -15,7 +15,9 @@ By default the shifts informative for the model's schemes run (:meth:`attnpos.co
 total-variation distance ½·Σ_j |w'_ij − w_ij| between a query's weights before and after.
 
 Verdicts: ``relative`` (change < SHIFT_RELATIVE: the head moved with the text), ``absolute`` (> SHIFT_ABSOLUTE:
-it kept looking at the same absolute places), ``mixed`` between; ``no-position`` when the head's weights are within
+it kept looking at the same absolute places; > SHIFT_PREFIX_ABSOLUTE for the prefix, which also changes the context
+the text is read in — a trained model's later heads change somewhat under it without being tied to a slot),
+``mixed`` between; ``no-position`` when the head's weights are within
 SHIFT_RELATIVE of uniform over the allowed keys (in mean total variation) — then no shift could move them, so
 "kept" says nothing: the head uses no position at all (an untrained head, for instance). The head's verdict over
 several shifts is ``absolute`` if any says so, ``relative`` if all do, ``mixed`` otherwise. Thresholds live in
@@ -50,18 +52,24 @@ from .results.shift import NO_POSITION, ShiftResult, combine  # noqa: F401  (com
 from .texts import TextUnit
 
 
-def verdict(change: float, spread: float = np.inf) -> str:
+def verdict(change: float, spread: float = np.inf, kind: str = "position-ids") -> str:
     """The word for one head and shift: ``spread`` is the mean total-variation distance of the head's unshifted
-    weights from uniform (below SHIFT_RELATIVE: ``no-position``, whatever the change)."""
+    weights from uniform (below SHIFT_RELATIVE: ``no-position``, whatever the change); the prefix's ``absolute``
+    needs SHIFT_PREFIX_ABSOLUTE (the prefix also changes the context, see :mod:`attnpos.core.thresholds`)."""
     if np.isfinite(spread) and spread < th.SHIFT_RELATIVE:
         return NO_POSITION
     if not np.isfinite(change):
         return "n/a"
     if change < th.SHIFT_RELATIVE:
         return "relative"
-    if change > th.SHIFT_ABSOLUTE:
+    if change > (th.SHIFT_PREFIX_ABSOLUTE if kind == "prefix" else th.SHIFT_ABSOLUTE):
         return "absolute"
     return "mixed"
+
+
+PREFIX_NOTE = ("The neutral prefix also changes the context the text is read in, so in a trained model heads of "
+               "later layers change somewhat without being tied to a slot; the prefix says `absolute` only above "
+               f"{th.SHIFT_PREFIX_ABSOLUTE} (heads that follow the first token or a template slot change far more).")
 
 
 class _Keep(Reducer):
@@ -187,7 +195,8 @@ class ShiftTest:
                        progress=False)
             changes[kind] = cmp_.result()
         spread = kept["spread"]
-        verdicts = {kind: {key: [verdict(c, sp) for c, sp in zip(v, spread[key])] for key, v in ch.items()}
+        verdicts = {kind: {key: [verdict(c, sp, kind) for c, sp in zip(v, spread[key])] for key, v in ch.items()}
                     for kind, ch in changes.items()}
-        return ShiftResult(kinds=kinds, offset=k, changes=changes, verdicts=verdicts, spread=spread,
+        note = PREFIX_NOTE if "prefix" in kinds else None
+        return ShiftResult(kinds=kinds, offset=k, changes=changes, verdicts=verdicts, spread=spread, note=note,
                            n_texts=len(short), max_tokens=room)

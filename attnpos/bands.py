@@ -19,6 +19,16 @@ the slowest third the *low* band. A head is ``high`` (position-like) when at lea
 band, ``low`` when at least half is in the low band, else ``spread``. ``beyond_context_share`` is the energy in
 pairs whose wavelength is longer than the longest text: they never complete a turn, whatever the position.
 
+**Use, by intervention.** Energy measures magnitude, not use: a slow pair that adds nearly the same amount to every
+key of a row carries energy and changes no weight (softmax ignores a row constant). So for every head and band the
+reducer also removes that band's pairs from the scores — s'_ij = s_ij − α Σ_{m ∈ band} c_ij^(m), α the head's
+score scale fitted on the allowed pairs (1/√d for the usual scaled dot product) — recomputes the weights and
+records the mean total-variation distance ½·Σ_j |w'_ij − w_ij| over ordinary queries, and the change of the head's
+role statistics (mass on the previous and on the first token). The band a head **uses** (``used_band``) is the one
+whose removal changes its weights most, none when no removal reaches the shift test's SHIFT_RELATIVE (the same
+total-variation scale) (Barbero et al. 2025 draw this distinction between what a frequency
+carries and what the head relies on). This assumes scores = α·q·k + mask; soft-capped scores are not separable.
+
 How: a reducer (:class:`BandEnergy`) of an ordinary recording reads q and k *after* rotation as the capture
 hands them over from inside the model's own attention call, so the model's own projections, norms and rotary
 variant are used. The rotary layout (rotate-half or interleaved pairs) and each pair's frequency are read from the
@@ -41,6 +51,7 @@ import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer, record
+from .core import thresholds as th
 from .errors import AttnposError
 from .results.bands import CAUTION, BandsResult  # noqa: F401  (CAUTION is part of this stage's vocabulary)
 
@@ -71,6 +82,20 @@ def _layout(cos: torch.Tensor, sin: torch.Tensor) -> tuple[str, np.ndarray]:
     return layout, np.full(half, np.nan)
 
 
+BANDS = ("high", "middle", "low")
+
+
+def band_of_pairs(theta: np.ndarray) -> list[str]:
+    """The band of each pair: the fastest third ``high``, the slowest third ``low``, the rest ``middle`` (pairs in
+    their own order when the frequencies are unknown)."""
+    P = len(theta)
+    order = np.argsort(-np.nan_to_num(theta, nan=0.0), kind="stable") if np.isfinite(theta).all() else np.arange(P)
+    third = max(1, P // 3)
+    high = set(order[:third].tolist())
+    low = set(order[P - third:].tolist())
+    return ["high" if m in high else "low" if m in low else "middle" for m in range(P)]
+
+
 def pairs_of(layout: str, rd: int) -> list[tuple[int, int]]:
     """The dimension pairs a rotary layout rotates together (rotate-half: m and m + rd/2; interleaved: 2m, 2m+1)."""
     half = rd // 2
@@ -94,6 +119,10 @@ class BandEnergy(Reducer):
         self.head_dim: int | None = None
         self.notes: list[str] = []
         self.max_t = 0
+        # band removal: per site, (heads, bands) sums of the total-variation change and of the change of the mass on
+        # the previous and on the first token, with their query counts
+        self.removal: dict[tuple, np.ndarray] = {}
+        self.removal_n: dict[tuple, np.ndarray] = {}
 
     def update(self, cap: LayerCapture) -> None:
         key_ = (cap.site.stack, cap.site.layer)
@@ -117,15 +146,47 @@ class BandEnergy(Reducer):
         A = cap.allowed.float()
         acc = self.energy.setdefault(key_, np.zeros((self.H, P + 1)))
         hs = slice(cap.head0, cap.head0 + n)
+        member = band_of_pairs(theta if theta is not None else np.full(P, np.nan))
+        parts = {b: torch.zeros(n, T, T) for b in BANDS}
         for m, (a, b) in enumerate(pairs):
             c = q[:, :, a, None] * k[:, None, :, a] + q[:, :, b, None] * k[:, None, :, b]      # (n, T, T)
             acc[hs, m] += ((c * c) * A).sum((-1, -2)).double().numpy()
+            parts[member[m]] += c
+        self._remove(cap, key_, hs, q, k, parts, A)
         if rd < d:
             c = q[:, :, rd:] @ k[:, :, rd:].transpose(-1, -2)
             acc[hs, P] += ((c * c) * A).sum((-1, -2)).double().numpy()
         if cap.head0 == 0:
             self.count[key_] = self.count.get(key_, 0.0) + float(A.sum())
         self.max_t = max(self.max_t, T)
+
+    def _remove(self, cap: LayerCapture, key_, hs, q, k, parts: dict, A: torch.Tensor) -> None:
+        """Remove each band's pairs from the scores and record how the weights change (see the module doc)."""
+        n, T, _ = q.shape
+        s0 = cap.zeroed_scores().float()
+        w = cap.weights.float()
+        g = (q @ k.transpose(-1, -2)) * A                                   # raw q·k on allowed pairs
+        alpha = (s0 * g).sum((-1, -2)) / (g * g).sum((-1, -2)).clamp_min(1e-30)      # (n,)
+        T_ = min(T, len(cap.unit.special))
+        ordinary = torch.from_numpy(~np.asarray(cap.unit.special[:T_], dtype=bool))
+        if T_ < T:
+            ordinary = torch.cat([ordinary, torch.zeros(T - T_, dtype=torch.bool)])
+        later = ordinary.clone()
+        later[0] = False                                                    # queries with a previous token
+        out = self.removal.setdefault(key_, np.zeros((self.H, len(BANDS), 3)))
+        cnt = self.removal_n.setdefault(key_, np.zeros(2))
+        idx = torch.arange(1, T)
+        for bi, band in enumerate(BANDS):
+            s2 = (s0 - alpha[:, None, None] * parts[band]).masked_fill(~cap.allowed, float("-inf"))
+            w2 = torch.softmax(s2, -1)
+            tv = 0.5 * (w2 - w).abs().sum(-1)                               # (n, T)
+            out[hs, bi, 0] += tv[:, ordinary].sum(-1).double().numpy()
+            dprev = (w2[:, idx, idx - 1] - w[:, idx, idx - 1])[:, later[1:]]
+            dfirst = (w2[:, idx, 0] - w[:, idx, 0])[:, later[1:]]
+            out[hs, bi, 1] += dprev.sum(-1).double().numpy()
+            out[hs, bi, 2] += dfirst.sum(-1).double().numpy()
+        if cap.head0 == 0:
+            cnt += [float(ordinary.sum()), float(later.sum())]
 
     def result(self) -> "BandEnergy":
         return self
@@ -166,14 +227,13 @@ def _bands(subject, run: BandEnergy, rope_sites, n_texts: int) -> BandsResult:
     P = len(pairs_of(run.layout, run.rotary_dims))
     theta = run.theta if run.theta is not None else np.full(P, np.nan)
     wavelength = np.where(theta > 0, 2 * math.pi / np.where(theta > 0, theta, 1.0), np.inf)
-    order = np.argsort(-np.nan_to_num(theta, nan=0.0), kind="stable") if np.isfinite(theta).all() else np.arange(P)
-    third = max(1, P // 3)
-    high = set(order[:third].tolist())
-    low = set(order[P - third:].tolist())
+    member = band_of_pairs(theta)
+    high = {m for m, b in enumerate(member) if b == "high"}
+    low = {m for m, b in enumerate(member) if b == "low"}
     pairs = []
     for m, (a, b) in enumerate(pairs_of(run.layout, run.rotary_dims)):
         pairs.append({"pair": m, "dims": [a, b], "theta": float(theta[m]), "wavelength": float(wavelength[m]),
-                      "band": "high" if m in high else "low" if m in low else "middle"})
+                      "band": member[m]})
     beyond = np.array([w > run.max_t for w in wavelength])
     heads = []
     for s in rope_sites:
@@ -187,16 +247,30 @@ def _bands(subject, run: BandEnergy, rope_sites, n_texts: int) -> BandsResult:
             lo = float(sh[sorted(low)].sum())
             band = "high" if hi >= BAND_MAJORITY else "low" if lo >= BAND_MAJORITY else "spread"
             dom = int(np.nanargmax(sh[:P])) if np.isfinite(sh[:P]).any() else None
+            removal, used = {}, None
+            if key in run.removal:
+                nq, nl = run.removal_n[key]
+                r = run.removal[key][h]
+                removal = {b: {"tv": float(r[bi, 0] / max(nq, 1)), "previous": float(r[bi, 1] / max(nl, 1)),
+                               "first": float(r[bi, 2] / max(nl, 1))}
+                           for bi, b in enumerate(BANDS) if any(m == b for m in member)}
+                if removal:
+                    used = max(removal, key=lambda b: removal[b]["tv"])
+                    if removal[used]["tv"] < th.SHIFT_RELATIVE:     # no band's removal moves the weights
+                        used = None
             heads.append({"stack": s.stack, "layer": s.layer, "head": h, "shares": sh[:P].tolist(),
                           "unrotated_share": float(sh[P]) if run.rotary_dims < run.head_dim else None,
                           "high_share": hi, "low_share": lo, "beyond_context_share": float(sh[:P][beyond].sum()),
                           "dominant_pair": dom, "dominant_wavelength": float(wavelength[dom]) if dom is not None else None,
-                          "band": band})
+                          "band": band, "removal": removal, "used_band": used})
     definitions = {
         "energy": ("share of pair m = mean over allowed (i, j) of (q_i^(m)·k_j^(m))², rotated pieces, "
                    "over the sum across pairs (and unrotated dimensions)"),
         "bands": {"high": "fastest third of the pairs", "low": "slowest third of the pairs",
-                  "rule": f"a head is high/low when at least {BAND_MAJORITY} of its energy is in that band"}}
+                  "rule": f"a head is high/low when at least {BAND_MAJORITY} of its energy is in that band"},
+        "removal": ("per band: the band's pairs removed from the scores (s − α·Σ c^(m)), weights recomputed; tv = mean "
+                    "total-variation change over ordinary queries, previous / first = change of the mean weight on "
+                    "the previous / first token; used_band = the band whose removal changes the weights most")}
     return BandsResult(heads=heads, pairs=pairs, layout=run.layout, rotary_dims=int(run.rotary_dims),
                        head_dim=int(run.head_dim), context=int(run.max_t), n_texts=n_texts, model=subject.describe(),
                        definitions=definitions, notes=list(run.notes))

@@ -2,23 +2,29 @@
 
 On a sequence ``x_1 … x_n x_1 … x_n`` an induction head, at the second copy of token ``x_t``, attends to the
 token that followed its first copy, ``x_{t+1}``. The score of a head is the mean weight on that key over the
-second copy's queries, averaged over a few random sequences (fixed seed). Random tokens carry no meaning, so
-only copying explains a high score.
+second copy's queries, averaged over :data:`attnpos.core.settings.INDUCTION_SEQUENCES` random sequences (fixed
+seed) of ordinary tokens (:func:`ordinary_pool`: printable, not special), with the standard error of that mean
+over the sequences. Random tokens carry no meaning, so only copying explains a high score.
 
 Example::
 
     >>> import attnpos
     >>> res = induction_scores(attnpos.load("ref:rope"))
     >>> res.scores[("main", 0)].shape, list(res.table().columns)
-    ((4,), ['key', 'stack', 'layer', 'head', 'induction'])
+    ((4,), ['key', 'stack', 'layer', 'head', 'induction', 'induction_se'])
+    >>> bool((res.stderr[("main", 0)] <= 0.02).all())
+    True
 """
 
 from __future__ import annotations
+
+import re
 
 import numpy as np
 import torch
 
 from .capture import LayerCapture, Reducer, record
+from .core import settings
 from .results.induction import InductionResult
 from .texts import TextUnit, display_tokens, template
 
@@ -31,8 +37,9 @@ class _Induction(Reducer):
 
     def begin(self, subject, units):
         self.keys = [(s.stack, s.layer) for s in subject.sites]
-        self.sum = {k: np.zeros(subject.n_heads) for k in self.keys}
-        self.count = {k: 0 for k in self.keys}
+        R = len(units)
+        self.sum = {k: np.zeros((R, subject.n_heads)) for k in self.keys}
+        self.count = {k: np.zeros(R) for k in self.keys}
 
     def update(self, cap: LayerCapture):
         n, a = self.n, self.start
@@ -42,31 +49,44 @@ class _Induction(Reducer):
         ok = cap.allowed[q, target]
         vals = cap.weights[:, q[ok], target[ok]]
         k = (cap.site.stack, cap.site.layer)
-        self.sum[k][cap.head0:cap.head0 + cap.n_heads] += vals.sum(-1).double().numpy()
+        self.sum[k][cap.text, cap.head0:cap.head0 + cap.n_heads] += vals.sum(-1).double().numpy()
         if cap.head0 == 0:
-            self.count[k] += int(ok.sum())
+            self.count[k][cap.text] += int(ok.sum())
 
     def result(self):
-        return {k: self.sum[k] / max(self.count[k], 1) for k in self.keys}
+        """Per site: the score of each sequence (R, heads)."""
+        return {k: self.sum[k] / np.maximum(self.count[k], 1)[:, None] for k in self.keys}
 
 
-def _ordinary_ids(tokenizer, rng: np.random.Generator, n: int) -> list[int]:
+def ordinary_pool(tokenizer, need: int = 1) -> list[int]:
+    """Ids the test draws from: not special, and decoding on their own to printable, non-blank text (unused slots
+    such as ``[unused7]``, control bytes and partial UTF-8 sequences are left out). Falls back to every non-special
+    id if fewer than ``need`` remain."""
     special = set(getattr(tokenizer, "all_special_ids", []) or [])
+    special |= set(getattr(tokenizer, "added_tokens_decoder", {}) or {})
     vocab = len(tokenizer)
-    pool = [i for i in range(min(vocab, 50000)) if i not in special]
-    # prefer ids that decode to printable text (avoids unused slots in some vocabularies)
-    return [int(x) for x in rng.choice(pool, size=n, replace=False)]
+    ids = [i for i in range(min(vocab, 50000)) if i not in special]
+    texts = tokenizer.batch_decode([[i] for i in ids])
+    keep = [i for i, t in zip(ids, texts)
+            if t.strip() and t.isprintable() and "\ufffd" not in t and not _UNUSED.match(t.strip())]
+    return keep if len(keep) >= need else ids
 
 
-def induction_scores(subject, *, length: int = 48, repeats: int = 4, seed: int = 0) -> InductionResult:
-    """Mean weight on the induction target per head (an :class:`~attnpos.results.induction.InductionResult`)."""
+_UNUSED = re.compile(r"^[\[<]\s*(unused|extra_id|reserved)[^\]>]*[\]>]$", re.I)
+
+
+def induction_scores(subject, *, length: int = 48, repeats: int | None = None, seed: int = 0) -> InductionResult:
+    """Mean weight on the induction target per head (an :class:`~attnpos.results.induction.InductionResult`), with
+    its standard error over the random sequences."""
+    repeats = repeats or settings.INDUCTION_SEQUENCES
     rng = np.random.default_rng(seed)
     prefix, suffix = template(subject.tokenizer)
     if subject.context_limit:
         length = min(length, (subject.context_limit - len(prefix) - len(suffix)) // 2)
+    pool = ordinary_pool(subject.tokenizer, length)
     units = []
     for r in range(repeats):
-        body = _ordinary_ids(subject.tokenizer, rng, length)
+        body = [int(x) for x in rng.choice(pool, size=length, replace=len(pool) < length)]
         ids = prefix + body + body + suffix
         special = np.zeros(len(ids), dtype=bool)
         special[: len(prefix)] = True
@@ -75,6 +95,9 @@ def induction_scores(subject, *, length: int = 48, repeats: int = 4, seed: int =
         units.append(TextUnit(name=f"random-repeat-{r}", source="<induction test>", ids=ids,
                               tokens=display_tokens(subject.tokenizer, ids), special=special))
     red = _Induction(length, len(prefix))
-    rec = record(subject, units=units, reducers=[red], progress=False)
-    return InductionResult(scores=rec.results["induction"], settings={"length": length, "repeats": repeats,
-                                                                     "seed": seed})
+    per = record(subject, units=units, reducers=[red], progress=False).results["induction"]
+    scores = {k: v.mean(0) for k, v in per.items()}
+    stderr = {k: (v.std(0, ddof=1) / np.sqrt(len(v)) if len(v) > 1 else np.full(v.shape[1], np.nan))
+              for k, v in per.items()}
+    return InductionResult(scores=scores, stderr=stderr, per_sequence=per,
+                           settings={"length": length, "repeats": repeats, "seed": seed, "pool": len(pool)})

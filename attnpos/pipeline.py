@@ -88,7 +88,7 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
                  "mean": w["near_mean"].reshape(-1, w["near_mean"].shape[-1]).tolist()},
     }
     if sh is not None:
-        extra["shift"] = {"kind": sh.shift_kind, "offset": sh.offset, "note": sh.note}
+        extra["shift"] = {"kind": sh.shift_kind, "kinds": list(sh.kinds), "offset": sh.offset, "note": sh.note}
     return Scan(model=info, texts=[u.describe() for u in units], tokens=[u.tokens for u in units],
                 special=[np.flatnonzero(u.special).tolist() for u in units], heads=table, profile=profile,
                 maps=rec.maps, texts_hash=texts_hash(units), versions=versions(), extra=extra)

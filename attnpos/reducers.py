@@ -4,7 +4,9 @@
   the uniform spread over the allowed keys, mean weight per slot (for anchors), mean weight per distance.
 * :class:`SplitStats` — per text and head, the sufficient statistics of the score split (see :mod:`attnpos.split`):
   row-centred score sums per distance and per key (slot and token), and the within-row sum of squares. With
-  these, the least-squares split is solved exactly without ever holding the pairs.
+  these, the least-squares split is solved exactly without ever holding the pairs. For the position-pair part it
+  also keeps each text's row-centred scores on the first :data:`PAIR_MAX` × :data:`PAIR_MAX` (query, key)
+  positions, from which the split forms the per-(i, j) products across texts.
 
 Both are vectorised over heads and pairs; neither keeps a map.
 """
@@ -26,6 +28,10 @@ EXACT = 16          # distances / slots below this are their own bucket
 PER_OCTAVE = 4      # log-spaced buckets per doubling beyond EXACT
 TOP_TOKENS = 48     # key tokens with their own content term; the rest share one
 NEAR = 32           # weight-by-distance kept for |δ| ≤ NEAR
+# the position-pair part is estimated on queries and keys at positions below PAIR_MAX: each text keeps its
+# row-centred scores there (PAIR_MAX² floats per head and text — 4 kB; 32 keeps a scan of 270 heads on 64 texts
+# under 300 MB), and the first positions are where texts overlap most (every text has them)
+PAIR_MAX = 32
 
 
 def blas_one_thread():
@@ -244,14 +250,16 @@ class WeightStats(Reducer):
     def begin(self, subject, units: Sequence[TextUnit]) -> None:
         self.ph = _PerHead(subject)
         S, H = len(self.ph.keys), self.ph.n_heads
+        n = len(units)
         self.max_t = max(len(u) for u in units)
         z = lambda *shape: np.zeros(shape, dtype=np.float64)  # noqa: E731
-        self.mass = {k: z(S, H) for k in ("previous", "next", "first", "self")}
-        self.mass_n = {k: z(S) for k in ("previous", "next", "first", "self")}
-        self.ent = z(S, H)
-        self.ent_n = z(S)
-        self.slot_w = z(S, H, self.max_t)
-        self.slot_n = z(S, self.max_t)
+        # masses, entropy and slot weights are kept per text (first axis), so the roles can be resampled over texts
+        self.mass = {k: z(n, S, H) for k in ("previous", "next", "first", "self")}
+        self.mass_n = {k: z(n, S) for k in ("previous", "next", "first", "self")}
+        self.ent = z(n, S, H)
+        self.ent_n = z(n, S)
+        self.slot_w = np.zeros((n, S, H, self.max_t), dtype=np.float32)
+        self.slot_n = np.zeros((n, S, self.max_t), dtype=np.float32)
         self.near_w = z(S, H, 2 * NEAR + 1)
         self.near_n = z(S, 2 * NEAR + 1)
         self._counted: set = set()
@@ -272,21 +280,22 @@ class WeightStats(Reducer):
         ordf, n_allowed, qe, okf = self._queries(cap, A)
         if (si, cap.text) not in self._counted:    # head-independent counts, once per layer and text
             self._counted.add((si, cap.text))
-            self._count(si, A, ordf, qe, okf)
+            self._count(si, cap.text, A, ordf, qe, okf)
         # mean weight by distance, |δ| ≤ NEAR, over ordinary queries (weights are 0 on disallowed pairs); the
         # previous / next / self masses are its δ = 1, −1, 0 entries
         nb = band(w, NEAR)                          # (n, T, 2·NEAR+1)
         near = torch.matmul(ordf, nb).double().numpy()
         self.near_w[si, hs] += near
+        t = cap.text
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
-            self.mass[name][si, hs] += near[:, NEAR + d]
-        self.mass["first"][si, hs] += w[:, okf, 0].sum(-1).double().numpy()
+            self.mass[name][t, si, hs] += near[:, NEAR + d]
+        self.mass["first"][t, si, hs] += w[:, okf, 0].sum(-1).double().numpy()
         # entropy relative to log(number of allowed keys)
         if qe.any():
             ent = row_entropy(w, s0, nb, blocks)[:, qe] / torch.log(n_allowed[qe].double()).float()
-            self.ent[si, hs] += ent.sum(-1).double().numpy()
+            self.ent[t, si, hs] += ent.sum(-1).double().numpy()
         # weight per slot over queries at least ANCHOR_MIN_DISTANCE tokens away (local heads are not anchors)
-        self.slot_w[si, hs, :T] += _far_column_sums(w, ordf, nb, blocks).double().numpy()
+        self.slot_w[t, si, hs, :T] += _far_column_sums(w, ordf, nb, blocks).numpy()
 
     def _queries(self, cap: LayerCapture, A: torch.Tensor) -> tuple:
         """Which queries enter each statistic: ordinary ones (as 0/1 floats), the allowed keys per query, entropy
@@ -305,7 +314,8 @@ class WeightStats(Reducer):
             hit = self._mask = (cap.allowed, key, (ordinary.to(torch.float32), n_allowed, qe, okf))
         return hit[2]
 
-    def _count(self, si: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor, okf: torch.Tensor) -> None:
+    def _count(self, si: int, t: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor,
+               okf: torch.Tensor) -> None:
         """How many (ordinary query, allowed key) pairs enter each mean: the same sums as above, over the mask."""
         T = A.shape[-1]
         Af = A.to(ordf.dtype)[None]
@@ -313,29 +323,40 @@ class WeightStats(Reducer):
         near_n = torch.matmul(ordf, nb)[0].double().numpy()
         self.near_n[si] += near_n
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
-            self.mass_n[name][si] += near_n[NEAR + d]
-        self.mass_n["first"][si] += int(okf.sum())
-        self.ent_n[si] += int(qe.sum())
-        self.slot_n[si, :T] += _far_column_sums(Af, ordf, nb)[0].double().numpy()
+            self.mass_n[name][t, si] += near_n[NEAR + d]
+        self.mass_n["first"][t, si] += int(okf.sum())
+        self.ent_n[t, si] += int(qe.sum())
+        self.slot_n[t, si, :T] += _far_column_sums(Af, ordf, nb)[0].numpy()
 
     def result(self) -> dict:
         self._mask = None
-        div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
-        mass = {k: div(self.mass[k], self.mass_n[k][:, None]) for k in self.mass}
-        slot_mean = div(self.slot_w, self.slot_n[:, None, :])
-        # anchor: the slot with the highest mean weight among slots seen by at least 8 queries
-        enough = self.slot_n >= 8
-        masked = np.where(enough[:, None, :], slot_mean, -np.inf)
-        anchor_slot = masked.argmax(-1).astype(float)
-        anchor_weight = np.take_along_axis(masked, anchor_slot.astype(int)[..., None], -1)[..., 0]
-        anchor_slot[~np.isfinite(anchor_weight)] = np.nan
-        anchor_weight[~np.isfinite(anchor_weight)] = np.nan
-        return {
-            "keys": self.ph.keys, "mass": mass, "entropy_ratio": div(self.ent, self.ent_n[:, None]),
-            "slot_mean": slot_mean, "slot_n": self.slot_n, "anchor_slot": anchor_slot,
-            "anchor_weight": anchor_weight, "near_distance": np.arange(-NEAR, NEAR + 1),
-            "near_mean": div(self.near_w, self.near_n[:, None, :]),
-        }
+        per_text = {"mass": self.mass, "mass_n": self.mass_n, "entropy": self.ent, "entropy_n": self.ent_n,
+                    "slot_w": self.slot_w, "slot_n": self.slot_n}
+        out = weight_summary(per_text, np.ones(len(self.ent)))
+        out.update({"keys": self.ph.keys, "near_distance": np.arange(-NEAR, NEAR + 1),
+                    "near_mean": self.near_w / np.where(self.near_n > 0, self.near_n, np.nan)[:, None, :],
+                    "per_text": per_text})
+        return out
+
+
+def weight_summary(per_text: dict, w: np.ndarray) -> dict:
+    """The weight statistics of :class:`WeightStats` from its per-text sums, with text weights ``w`` (ones: the
+    plain means; a bootstrap resample's counts: that resample's). Returns ``mass`` (by name, (S, H)),
+    ``entropy_ratio``, ``slot_mean``, ``slot_n``, ``anchor_slot`` and ``anchor_weight``."""
+    div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
+    tw = lambda a: np.tensordot(w, a, axes=(0, 0))      # noqa: E731
+    mass = {k: div(tw(per_text["mass"][k]), tw(per_text["mass_n"][k])[:, None]) for k in per_text["mass"]}
+    slot_n = tw(per_text["slot_n"].astype(np.float64))
+    slot_mean = div(tw(per_text["slot_w"].astype(np.float64)), slot_n[:, None, :])
+    # anchor: the slot with the highest mean weight among slots seen by at least 8 queries
+    enough = slot_n >= 8
+    masked = np.where(enough[:, None, :], slot_mean, -np.inf)
+    anchor_slot = masked.argmax(-1).astype(float)
+    anchor_weight = np.take_along_axis(masked, anchor_slot.astype(int)[..., None], -1)[..., 0]
+    anchor_slot[~np.isfinite(anchor_weight)] = np.nan
+    anchor_weight[~np.isfinite(anchor_weight)] = np.nan
+    return {"mass": mass, "entropy_ratio": div(tw(per_text["entropy"]), tw(per_text["entropy_n"])[:, None]),
+            "slot_mean": slot_mean, "slot_n": slot_n, "anchor_slot": anchor_slot, "anchor_weight": anchor_weight}
 
 
 # ------------------------------------------------------------------------------------------------ split stats
@@ -482,7 +503,8 @@ def _gram_for(design: Design, unit: TextUnit, allowed: np.ndarray) -> tuple[np.n
 
 
 class SplitStats(Reducer):
-    """Per text, site and head: b = X_wᵀ s (row-centred score sums mapped to features) and the within-row SS."""
+    """Per text, site and head: b = X_wᵀ s (row-centred score sums mapped to features), the within-row SS, and the
+    row-centred scores on the pair region (queries and keys below PAIR_MAX) for the position-pair part."""
 
     name = "split"
 
@@ -499,6 +521,9 @@ class SplitStats(Reducer):
         self.ssw = np.zeros((n, S, H))
         self.gram_key = np.zeros((n, S), dtype=np.int64)   # which Gram (mask pattern) each text/site used
         self.grams: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
+        self.R = min(PAIR_MAX, self.design.max_t)
+        self.pair = np.zeros((n, S, H, self.R, self.R), dtype=np.float32)   # row-centred scores, pair region
+        self.regions: dict[tuple, dict] = {}                                 # per pattern: see _region
         self._rows: dict[tuple, tuple] = {}               # per pattern: layout, keys per row, row feature counts
         self._scratch: torch.Tensor | None = None         # centred scores, when row constants are large
         self._layer_gram: dict[tuple, tuple] = {}         # (text, site) → its pattern key
@@ -527,9 +552,21 @@ class SplitStats(Reducer):
                 kind = ("none" if a.all() else "causal" if np.array_equal(a, np.tri(*a.shape, dtype=bool))
                         else "general")
                 self._rows[key] = (kind, torch.from_numpy(a.sum(1).astype(np.float64)), torch.from_numpy(C))
+                self.regions[key] = self._region(cap, a, C)
             self.gram_key[cap.text, si] = list(self.grams).index(key)
             self._layer_gram[at] = key
         return self._rows[self._layer_gram[at]]
+
+    def _region(self, cap: LayerCapture, a: np.ndarray, C: np.ndarray) -> dict:
+        """What the split needs to evaluate a fit on the pair region (queries and keys below R = PAIR_MAX) of one
+        mask pattern: the mask there, the allowed keys per row, the rows' feature counts, and the distance and key
+        features of the region's pairs."""
+        T = a.shape[0]
+        R = min(self.R, T)
+        FD = self.design.delta_features(T)[T - R:T + R - 1]       # δ = −(R − 1) … R − 1
+        FJ = self.design.key_features(cap.unit, T)[:R]
+        return {"R": R, "allowed": a[:R, :R].copy(), "n_i": a[:R].sum(1).astype(np.float64), "C": C[:R].copy(),
+                "FD": FD, "FJ": FJ}
 
     def update(self, cap: LayerCapture) -> None:
         if cap.offset:
@@ -548,11 +585,19 @@ class SplitStats(Reducer):
             b -= correction
         self.b[cap.text, si, hs] = b.numpy()
         self.ssw[cap.text, si, hs] = ssw.numpy()
+        # the pair region: row-centred scores of queries and keys below R (0 on disallowed pairs)
+        T = s0.shape[-1]
+        R = min(self.R, T)
+        m = s0[:, :R].sum(-1, dtype=torch.float64) / n_i[:R].clamp_min(1.0)            # (n, R) row means
+        A = cap.allowed[:R, :R]
+        blk = (s0[:, :R, :R].double() - m[..., None]) * A.to(torch.float64)
+        self.pair[cap.text, si, hs, :R, :R] = blk.numpy()
 
     def result(self) -> dict:
         self._scratch = None
         self._rows.clear()
         grams = list(self.grams.values())
         return {"keys": self.ph.keys, "design": self.design, "b": self.b, "ssw": self.ssw,
-                "gram_key": self.gram_key, "grams": [g for g, _ in grams], "dist_counts": [n for _, n in grams]}
+                "gram_key": self.gram_key, "grams": [g for g, _ in grams], "dist_counts": [n for _, n in grams],
+                "pair": self.pair, "regions": [self.regions[k] for k in self.grams]}
 

@@ -46,7 +46,7 @@ footer{margin-top:24px;color:#77706A;font-size:12px}
 # No script may run and nothing may be fetched: the report only needs inline styles and data: images.
 CSP = "default-src 'none'; img-src data:; style-src 'unsafe-inline'; base-uri 'none'; form-action 'none'"
 
-TABLE_COLUMNS = ["role", "share_distance", "share_slot", "share_content", "share_residual", "slope",
+TABLE_COLUMNS = ["role", "share_distance", "share_slot", "share_content", "share_pair", "share_residual", "slope",
                  "entropy_ratio", "mass_previous", "mass_first", "induction", "shift_verdict"]
 
 

@@ -1,16 +1,27 @@
 """The shift test: run the same text with every position moved, and see which heads move with it.
 
-* Schemes with position ids (learned absolute, sinusoidal, RoPE): every position id is offset by ``k``.
-* Schemes without (no encoding, ALiBi, relative bias): ``k`` neutral tokens are placed before the text, and only
-  the text's own rows and keys are compared (weights renormalised over the text's keys).
+Two shifts, each an intervention:
 
-A head that attends by relative offset or by content keeps the same weights (``relative``); a head tied to
-absolute slots changes (``absolute``). Per head, ``change`` is the mean over the text's ordinary queries of the
-total-variation distance ½·Σ_j |w'_ij − w_ij| between a query's weights before and after. Thresholds live in
+* ``position-ids`` — every position id is offset by ``k`` (schemes that read position ids: learned absolute,
+  sinusoidal, RoPE).
+* ``prefix`` — ``k`` neutral tokens are placed before the text, and only the text's own rows and keys are compared
+  (weights renormalised over the text's keys). This moves the absolute slots that any scheme can still find — the
+  first token, a template slot — so it is informative for RoPE, ALiBi and relative-bias models too, where shifting
+  ids cannot change anything (RoPE's q·k depends on the offset only, Su et al.; ALiBi and relative bias read no
+  ids): a head that sinks onto the first token (Xiao et al. 2024) is ``absolute`` under the prefix shift.
+
+By default the shifts informative for the model's schemes run (:meth:`attnpos.core.schemes.SchemeSpec.informative_shifts`);
+``kinds`` chooses by hand. Per head and shift, ``change`` is the mean over the text's ordinary queries of the
+total-variation distance ½·Σ_j |w'_ij − w_ij| between a query's weights before and after.
+
+Verdicts: ``relative`` (change < SHIFT_RELATIVE: the head moved with the text), ``absolute`` (> SHIFT_ABSOLUTE:
+it kept looking at the same absolute places; > SHIFT_PREFIX_ABSOLUTE for the prefix, which also changes the context
+the text is read in — a trained model's later heads change somewhat under it without being tied to a slot),
+``mixed`` between; ``no-position`` when the head's weights are within
+SHIFT_RELATIVE of uniform over the allowed keys (in mean total variation) — then no shift could move them, so
+"kept" says nothing: the head uses no position at all (an untrained head, for instance). The head's verdict over
+several shifts is ``absolute`` if any says so, ``relative`` if all do, ``mixed`` otherwise. Thresholds live in
 :mod:`attnpos.core.thresholds`.
-
-RoPE makes q·k depend only on the offset between positions (Su et al., RoFormer), so a RoPE model's scores do not
-change at all under the position-id shift — a check in the tests.
 
 Example::
 
@@ -18,11 +29,13 @@ Example::
     >>> from attnpos.texts import as_raw, prepare
     >>> subject = attnpos.load("ref:rope")
     >>> units = prepare(subject, as_raw(["The ferry left at nine and came back at noon, as it does every day."]))
-    >>> res = ShiftTest().run(subject, units)
-    >>> res.shift_kind, res.offset, res.change[("main", 0)].shape
-    ('position-ids', 32, (4,))
-    >>> float(res.change[("main", 0)].max()) < 1e-3       # RoPE: q·k depends on the offset only (Su et al.)
+    >>> res = ShiftTest(kinds=("position-ids", "prefix")).run(subject, units)
+    >>> res.kinds, res.offset, res.changes["position-ids"][("main", 0)].shape
+    (['position-ids', 'prefix'], 32, (4,))
+    >>> float(res.changes["position-ids"][("main", 0)].max()) < 1e-3    # RoPE: q·k depends on the offset only (Su et al.)
     True
+    >>> ShiftTest().run(subject, units).kinds                          # the informative one by default
+    ['prefix']
 """
 
 from __future__ import annotations
@@ -32,36 +45,63 @@ from typing import Sequence
 import numpy as np
 import torch
 
+from .core import schemes as core_schemes
 from .core import thresholds as th
 from .capture import LayerCapture, Reducer, record
-from .results.shift import ShiftResult
+from .results.shift import NO_POSITION, ShiftResult, combine  # noqa: F401  (combine: the verdict rule)
 from .texts import TextUnit
 
 
-def verdict(change: float) -> str:
+def verdict(change: float, spread: float = np.inf, kind: str = "position-ids") -> str:
+    """The word for one head and shift: ``spread`` is the mean total-variation distance of the head's unshifted
+    weights from uniform (below SHIFT_RELATIVE: ``no-position``, whatever the change); the prefix's ``absolute``
+    needs SHIFT_PREFIX_ABSOLUTE (the prefix also changes the context, see :mod:`attnpos.core.thresholds`)."""
+    if np.isfinite(spread) and spread < th.SHIFT_RELATIVE:
+        return NO_POSITION
     if not np.isfinite(change):
         return "n/a"
     if change < th.SHIFT_RELATIVE:
         return "relative"
-    if change > th.SHIFT_ABSOLUTE:
+    if change > (th.SHIFT_PREFIX_ABSOLUTE if kind == "prefix" else th.SHIFT_ABSOLUTE):
         return "absolute"
     return "mixed"
 
 
+PREFIX_NOTE = ("The neutral prefix also changes the context the text is read in, so in a trained model heads of "
+               "later layers change somewhat without being tied to a slot; the prefix says `absolute` only above "
+               f"{th.SHIFT_PREFIX_ABSOLUTE} (heads that follow the first token or a template slot change far more).")
+
+
 class _Keep(Reducer):
+    """The unshifted weights (float16), and per head the mean total-variation distance from uniform over the allowed
+    keys (ordinary queries)."""
+
     name = "shift-base"
 
     def begin(self, subject, units):
         self.maps = {}
+        self.keys = [(s.stack, s.layer) for s in subject.sites]
+        self.spread = {k: np.zeros(subject.n_heads) for k in self.keys}
+        self.n = {k: 0 for k in self.keys}
 
     def update(self, cap: LayerCapture):
         key = (cap.text, cap.site.stack, cap.site.layer)
-        w = cap.weights.to(torch.float16)
+        w = cap.weights
         prev = self.maps.get(key)
-        self.maps[key] = w if prev is None else torch.cat([prev, w], 0)
+        self.maps[key] = w.to(torch.float16) if prev is None else torch.cat([prev, w.to(torch.float16)], 0)
+        T = w.shape[-1]
+        A = cap.allowed.to(w.dtype)
+        uni = A / A.sum(-1, keepdim=True).clamp_min(1.0)
+        ordinary = torch.from_numpy(~np.asarray(cap.unit.special[:T], dtype=bool))
+        tv = 0.5 * ((w - uni).abs() * A).sum(-1)            # (n, T)
+        k = (cap.site.stack, cap.site.layer)
+        self.spread[k][cap.head0:cap.head0 + cap.n_heads] += tv[:, ordinary].sum(-1).double().numpy()
+        if cap.head0 == 0:
+            self.n[k] += int(ordinary.sum())
 
     def result(self):
-        return self.maps
+        spread = {k: self.spread[k] / max(self.n[k], 1) for k in self.keys}
+        return {"maps": self.maps, "spread": spread}
 
 
 class _Compare(Reducer):
@@ -82,6 +122,7 @@ class _Compare(Reducer):
         if o:
             w = w / w.sum(-1, keepdim=True).clamp_min(1e-30)
         base = self.base[(cap.text, cap.site.stack, cap.site.layer)][cap.head0:cap.head0 + cap.n_heads].float()
+        base = base[..., :w.shape[-2], :w.shape[-1]]
         T = w.shape[-1]
         ordinary = torch.from_numpy(~cap.unit.special[:T])
         tv = 0.5 * (w - base).abs().sum(-1)          # (n, T)
@@ -107,35 +148,55 @@ class ShiftTest:
     Args:
         offset: how far to shift (default :data:`attnpos.core.thresholds.SHIFT_OFFSET`).
         max_texts / max_tokens: how much text to use (the test keeps one set of maps in memory).
-        kind: ``"position-ids"`` or ``"prefix"``; by default position ids where the scheme has them.
+        kinds: which shifts to run, from ``("position-ids", "prefix")``; by default those informative for the
+            model's schemes. ``kind`` (one shift) is the older spelling.
     """
 
     def __init__(self, offset: int | None = None, max_texts: int | None = None, max_tokens: int | None = None,
-                 kind: str | None = None):
+                 kind: str | None = None, kinds: Sequence[str] | None = None):
         self.offset = offset or th.SHIFT_OFFSET
         self.max_texts = max_texts or th.SHIFT_MAX_TEXTS
         self.max_tokens = max_tokens or th.SHIFT_MAX_TOKENS
-        self.kind = kind
+        if kinds is None and kind is not None:
+            kinds = (kind,)
+        if kinds is not None:
+            bad = [k for k in kinds if k not in core_schemes.SHIFT_KINDS]
+            if bad or not kinds:
+                raise ValueError(f"shift kinds are {core_schemes.SHIFT_KINDS}, not {list(kinds)}")
+        self.kinds = tuple(kinds) if kinds is not None else None
+
+    def kinds_for(self, subject) -> list[str]:
+        """The shifts that run on ``subject``: as asked, or the informative ones for its schemes; the position-id
+        shift only where the model takes position ids."""
+        kinds = list(self.kinds or core_schemes.informative_shifts(subject.schemes))
+        if "position-ids" in kinds and not subject.uses_position_ids:
+            kinds.remove("position-ids")
+        return kinds or ["prefix"]
 
     def run(self, subject, units: Sequence[TextUnit]) -> ShiftResult:
-        kind = self.kind or ("position-ids" if subject.uses_position_ids else "prefix")
+        kinds = self.kinds_for(subject)
         k = self.offset
         room = self.max_tokens
         if subject.context_limit:
             room = min(room, subject.context_limit - k)
         if room < 4:
-            return ShiftResult(shift_kind=kind, offset=k, change=None,
+            return ShiftResult(kinds=kinds, offset=k, changes=None,
                                note=f"the context limit leaves no room to shift by {k}")
         short = [TextUnit(name=u.name, source=u.source, ids=u.ids[:room], tokens=u.tokens[:room],
                           special=u.special[:room], window=u.window) for u in list(units)[: self.max_texts]]
-        base = record(subject, units=short, reducers=[_Keep()], progress=False).results["shift-base"]
-        cmp_ = _Compare(base, subject)
-        if kind == "position-ids":
-            record(subject, units=short, reducers=[cmp_], position_offset=k, progress=False)
-        else:
-            record(subject, units=short, reducers=[cmp_], prefix=_neutral_prefix(subject.tokenizer, k),
-                   progress=False)
-        change = cmp_.result()
-        return ShiftResult(shift_kind=kind, offset=k, change=change,
-                           verdict={key: [verdict(c) for c in v] for key, v in change.items()},
+        kept = record(subject, units=short, reducers=[_Keep()], progress=False).results["shift-base"]
+        changes = {}
+        for kind in kinds:
+            cmp_ = _Compare(kept["maps"], subject)
+            if kind == "position-ids":
+                record(subject, units=short, reducers=[cmp_], position_offset=k, progress=False)
+            else:
+                record(subject, units=short, reducers=[cmp_], prefix=_neutral_prefix(subject.tokenizer, k),
+                       progress=False)
+            changes[kind] = cmp_.result()
+        spread = kept["spread"]
+        verdicts = {kind: {key: [verdict(c, sp, kind) for c, sp in zip(v, spread[key])] for key, v in ch.items()}
+                    for kind, ch in changes.items()}
+        note = PREFIX_NOTE if "prefix" in kinds else None
+        return ShiftResult(kinds=kinds, offset=k, changes=changes, verdicts=verdicts, spread=spread, note=note,
                            n_texts=len(short), max_tokens=room)

@@ -1,30 +1,47 @@
-r"""The score split: how much of each head's scores follows distance, slot, key content, or none of these.
+r"""The score split: how much of each head's scores follows distance, slot, key content, both positions, or none.
 
 For one head, over the allowed pairs (i, j) of all texts,
 
-    s_ij = a_i + d(δ) + g(j) + c(tok_j) + r_ij,      δ = i − j,
+    s_ij = a_i + d(δ) + g(j) + c(tok_j) + P(i, j) + r_ij,      δ = i − j,
 
 where a_i is a free per-row constant (it absorbs softmax's row constant, so log-weights work as well as true
 scores), d is a free function of distance (exact for |δ| < 16, four log-spaced buckets per doubling beyond, plus a
 linear term so a straight ALiBi-like line is fitted exactly), g a free function of the slot j (same buckets), c a
-free function of the key token (the 48 most frequent keys; the rest share one term), and r what is left — the
-query–key content interaction.
+free function of the key token (the 48 most frequent keys; the rest share one term), P the position pair — an
+interaction of the two absolute positions, such as p_iᵀ W p_j from a learned absolute table — and r what is left:
+the query–key content interaction.
 
 **Identifiability.** Within a row, j = i − δ, so a linear trend in j is the same as a linear trend in δ. Our
 convention: *linear trends belong to distance*. The slot and key-token features are projected (in the within-row
 metric) to be orthogonal to the linear term, so g and c keep only what is not a straight line in j. (Without this,
 with few texts a token that occurs at one place can stand in for its position and claim a distance trend.)
 
-**Shares.** Each part's share of the within-row variance is its Shapley value over the three named parts (the
-average gain in R² from adding that part, over the orders in which parts can be added); ``residual`` is
-1 − R² of the full fit. Shares lie in [0, 1] and sum to 1. A part that two explanations share (e.g. slot 0 is
-always the BOS token) is split evenly between them — the shift test tells them apart.
+**The position pair (convention).** d and g are functions of (i, j) too, so P is defined as what they leave:
+*the part of the three-part fit's residual that is the same across texts at the same (i, j)*. Content differs
+from text to text; what two different texts share at one (query position, key position) can only come from the
+positions. Its share is the cross-text covariance of the residual over the within-row variance,
+
+    share_pair = Σ_{t≠u} Σ_ij r^t_ij r^u_ij  /  Σ_{t≠u} ½ Σ_ij ((c^t_ij)² + (c^u_ij)²)
+
+(c: row-centred scores; sums over the pairs (i, j) both texts have, with query and key positions below
+:data:`attnpos.reducers.PAIR_MAX`; t ≠ u over *different* texts, so a text's own noise never counts as shared),
+clipped to [0, residual]; the residual keeps the rest. With fewer than two texts nothing can be shared and the pair
+share is 0. A planted head with scores p_iᵀ W p_j only puts ≥ 0.9 there, an ALiBi head ≈ 0 (distance takes it).
+
+**Shares.** Each of distance, slot and content has its Shapley value over the three (the average gain in R² from
+adding that part, over the orders in which parts can be added); ``pair`` is defined above, ``residual`` is
+1 − R² of the three-part fit minus ``pair``. Shares lie in [0, 1] and sum to 1. A part that two explanations share
+(e.g. slot 0 is always the BOS token) is split evenly between them — the shift test tells them apart.
 
 **Fit.** Exact least squares from sufficient statistics collected during capture (:class:`~attnpos.reducers.SplitStats`):
 per text the head-independent Gram matrix of the within-row-centred features, and per head the feature sums of
-the row-centred scores. Nothing the size of the pairs is ever held.
+the row-centred scores; for the pair part, each text's row-centred scores on the first PAIR_MAX × PAIR_MAX
+positions, whose products across texts (per head, one n_texts × n_texts matrix) give it exactly for any weighting
+of the texts. Nothing the size of a text's pairs is ever held.
 
 **Intervals.** 90% percentile intervals from a bootstrap over texts (texts resampled with replacement; needs ≥ 2).
+Each resample refits the three named parts; the pair part of a resample reuses the full-data fit's residuals (its
+cross-text products are weighted by the resample, copies of one text never paired with each other).
 
 Example::
 
@@ -34,8 +51,8 @@ Example::
     >>> rec = attnpos.record(subject, ["The ferry left at nine and came back at noon.",
     ...                                "Rye loaves come out of the oven first, then the buns."], [SplitStats()])
     >>> fit = Split(n_boot=20).fit(rec)
-    >>> fit.shares.shape              # (layers, heads, parts): distance, slot, content, residual
-    (4, 4, 4)
+    >>> fit.shares.shape              # (layers, heads, parts): distance, slot, content, pair, residual
+    (4, 4, 5)
     >>> bool(np.allclose(fit.shares.sum(-1), 1.0))
     True
     >>> fit.table().loc[1, ["key", "share_distance", "slope"]].shape
@@ -111,8 +128,9 @@ class Split:
 
     @staticmethod
     def _solve(design: Design, G: np.ndarray, B: np.ndarray, ssw: np.ndarray, dist_counts: np.ndarray):
-        """One fit: G (p, p), B (p, m) feature sums for m heads, ssw (m,). Returns shares (m, 4), profile
-        (m, n_dist), slope (m,)."""
+        """One fit: G (p, p), B (p, m) feature sums for m heads, ssw (m,). Returns shares (m, 4: the three named
+        parts and what they leave), profile (m, n_dist), slope (m,) and the full fit's coefficients (p, m) on the
+        original features."""
         Tm = Split._transform(design, G)
         Gp = Tm.T @ G @ Tm
         Bp = Tm.T @ B
@@ -166,10 +184,12 @@ class Split:
         else:
             slope = np.full(B.shape[1], np.nan)
         slope[~np.isfinite(ssw) | (ssw <= 0)] = np.nan
-        return shares, prof, slope
+        return shares, prof, slope, Tm @ coef
 
     def _fit_weights(self, res: dict, w: np.ndarray):
-        """Fit every site with text weights w (n_texts,). Sites that share a mask pattern share one solve."""
+        """Fit every site with text weights w (n_texts,). Sites that share a mask pattern share one solve.
+        Returns shares of the three named parts and what they leave (S, H, 4), profile, slope, and the full fit's
+        coefficients (S, p, H)."""
         design: Design = res["design"]
         b, ssw, gk = res["b"], res["ssw"], res["gram_key"]
         grams, counts = res["grams"], res["dist_counts"]
@@ -177,6 +197,7 @@ class Split:
         shares = np.zeros((S, H, 4))
         prof = np.zeros((S, H, design.n_dist))
         slope = np.zeros((S, H))
+        coef = np.zeros((S, design.p, H))
         groups: dict = {}
         for si in range(S):
             groups.setdefault(tuple(gk[:, si]), []).append(si)
@@ -185,11 +206,58 @@ class Split:
             dc = sum(w[t] * counts[sig[t]] for t in range(len(w)) if w[t])
             B = np.concatenate([np.tensordot(w, b[:, si], axes=(0, 0)) for si in sites])   # (len*H, p)
             ss = np.concatenate([w @ ssw[:, si] for si in sites])
-            sh, pr, sl = self._solve(design, G, B.T, ss, dc)
+            sh, pr, sl, co = self._solve(design, G, B.T, ss, dc)
             for k, si in enumerate(sites):
                 part = slice(k * H, (k + 1) * H)
-                shares[si], prof[si], slope[si] = sh[part], pr[part], sl[part]
-        return shares, prof, slope
+                shares[si], prof[si], slope[si], coef[si] = sh[part], pr[part], sl[part], co[:, part]
+        return shares, prof, slope, coef
+
+    @staticmethod
+    def _pair_products(res: dict, coef: np.ndarray):
+        """Per site, head and pair of texts (t, u) on the pair region: ``P[s, h, t, u]`` = Σ r^t_ij r^u_ij, the
+        products of the full fit's residuals at the same (i, j), and ``V[s, h, t, u]`` = ½ Σ ((c^t_ij)² + (c^u_ij)²)
+        over the pairs (i, j) both texts have (c: row-centred scores)."""
+        design: Design = res["design"]
+        pair, regions, gk = res["pair"], res["regions"], res["gram_key"]
+        n, S, H, R, _ = pair.shape
+        pD = design.n_dist + 1
+        P = np.zeros((S, H, n, n))
+        V = np.zeros((S, H, n, n))
+        for si in range(S):
+            r = np.zeros((n, H, R, R))
+            A = np.zeros((n, R, R))
+            co = coef[si]                                                   # (p, H)
+            for t in range(n):
+                reg = regions[gk[t, si]]
+                Rt = reg["R"]
+                i, j = np.arange(Rt)[:, None], np.arange(Rt)[None, :]
+                dist = reg["FD"] @ co[:pD]                                  # (2Rt − 1, H)
+                key = reg["FJ"] @ co[pD:]                                   # (Rt, H)
+                row = (reg["C"] @ co) / np.maximum(reg["n_i"], 1.0)[:, None]
+                fitted = dist[i - j + Rt - 1] + key[None, :, :] - row[:, None, :]     # (Rt, Rt, H)
+                At = reg["allowed"]
+                A[t, :Rt, :Rt] = At
+                r[t, :, :Rt, :Rt] = (pair[t, si, :, :Rt, :Rt] - np.moveaxis(fitted, -1, 0)) * At
+            c2 = pair[:, si].astype(np.float64) ** 2                          # (n, H, R, R)
+            rf = np.ascontiguousarray(np.moveaxis(r.reshape(n, H, -1), 1, 0))    # (H, n, K)
+            P[si] = rf @ rf.transpose(0, 2, 1)
+            v1 = np.moveaxis(c2.reshape(n, H, -1), 1, 0) @ A.reshape(n, -1).T    # (H, n, n): Σ (c^t)² on u's pairs
+            V[si] = 0.5 * (v1 + v1.transpose(0, 2, 1))
+        return P, V
+
+    @staticmethod
+    def _with_pair(shares4: np.ndarray, P: np.ndarray, V: np.ndarray, w: np.ndarray) -> np.ndarray:
+        """Shares of the five parts: the position-pair part is the fraction of the within-row variance that the
+        full fit's residual shares between different texts at the same (i, j) (pairs of copies of one text left
+        out), at most the residual; the residual keeps the rest."""
+        W = np.outer(w, w) - np.diag(w * w)
+        num = np.einsum("shtu,tu->sh", P, W)
+        den = np.einsum("shtu,tu->sh", V, W)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            frac = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+        rest = shares4[..., 3]
+        pair = np.clip(frac, 0.0, rest)
+        return np.stack([shares4[..., 0], shares4[..., 1], shares4[..., 2], pair, rest - pair], axis=-1)
 
     def fit(self, recording) -> SplitResult:
         res = recording.results["split"] if hasattr(recording, "results") else recording
@@ -198,19 +266,24 @@ class Split:
 
     def _fit(self, res: dict) -> SplitResult:
         n = res["b"].shape[0]
-        shares, prof, slope = self._fit_weights(res, np.ones(n))
+        shares4, prof, slope, coef = self._fit_weights(res, np.ones(n))
+        P, V = self._pair_products(res, coef)
+        shares = self._with_pair(shares4, P, V, np.ones(n))
         lo = lambda a: np.full_like(a, np.nan)  # noqa: E731
         out = dict(shares_lo=lo(shares), shares_hi=lo(shares), profile_lo=lo(prof), profile_hi=lo(prof),
                    slope_lo=lo(slope), slope_hi=lo(slope))
         if self.n_boot > 0 and n >= 2:
             rng = np.random.default_rng(self.seed)
             bs = {"shares": [], "profile": [], "slope": []}
+            weights = []
             seen: dict[bytes, tuple] = {}        # a resample drawn again (likely with few texts) is not refitted
             for _ in range(self.n_boot):
                 w = np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
+                weights.append(w)
                 key = w.tobytes()
                 if key not in seen:
-                    seen[key] = self._fit_weights(res, w)
+                    s4, p_, l_, _ = self._fit_weights(res, w)
+                    seen[key] = (self._with_pair(s4, P, V, w), p_, l_)
                 s_, p_, l_ = seen[key]
                 bs["shares"].append(s_)
                 bs["profile"].append(p_)
@@ -218,6 +291,9 @@ class Split:
             for k, stack in bs.items():
                 arr = np.stack(stack)
                 out[f"{k}_lo"], out[f"{k}_hi"] = _nan_percentiles(arr, (5, 95))
+            out["boot_weights"] = np.stack(weights)
+            out["boot_shares"] = np.stack(bs["shares"])
+            out["boot_slope"] = np.stack(bs["slope"])
         design: Design = res["design"]
         return SplitResult(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
                         n_texts=n, n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

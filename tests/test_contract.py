@@ -143,7 +143,34 @@ def test_previous_scan_file_loads_with_its_heads():
     assert list(scan.heads["role"]) == [h["role"] for h in data["heads"]]
     np.testing.assert_allclose(scan.heads["mass_previous"], [h["mass"]["previous"] for h in data["heads"]])
     assert scan.profile["value"].shape[0] == 16
-    assert scan.to_json()["schema"] == "attnpos.scan/2"
+    assert scan.to_json()["schema"] == "attnpos.scan/3"
+
+
+def test_previous_scan_v2_file_loads_and_lacks_only_the_new_fields():
+    data = json.loads((PREVIOUS / "scan-v2.json").read_text())
+    assert data["schema"] == "attnpos.scan/2"
+    scan = attnpos.Scan.load(PREVIOUS / "scan-v2.json")
+    assert list(scan.heads["role"]) == [h["role"] for h in data["heads"]]
+    np.testing.assert_allclose(scan.heads["share_residual"], [h["shares"]["residual"] for h in data["heads"]])
+    assert scan.heads["share_pair"].isna().all() and scan.heads["shift_kind"].eq("position-ids").all()
+    again = attnpos.Scan.from_json(scan.to_json())
+    assert again.to_json()["schema"] == "attnpos.scan/3" and list(again.heads["role"]) == list(scan.heads["role"])
+
+
+def test_previous_induction_v1_file_loads_without_an_interval():
+    data = json.loads((PREVIOUS / "induction-v1.json").read_text())
+    res = protocol.load(PREVIOUS / "induction-v1.json")
+    assert res.stderr == {} and res.per_sequence == {}
+    np.testing.assert_allclose(list(res.scores.values())[0], data["scores"]["values"][0])
+
+
+def test_previous_shift_v1_file_loads_as_one_shift():
+    data = json.loads((PREVIOUS / "shift-v1.json").read_text())
+    res = protocol.load(PREVIOUS / "shift-v1.json")
+    assert res.kinds == [data["shift_kind"]] and res.spread is None
+    first = res.changes[data["shift_kind"]]
+    np.testing.assert_allclose(list(first.values())[0], data["change"]["values"][0])
+    assert [res.verdict[k] for k in res.change] == data["verdict"]
 
 
 @pytest.mark.parametrize("kind", ["probe", "length", "bands", "compare", "ablation"])

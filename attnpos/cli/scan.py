@@ -12,7 +12,7 @@ from . import _common as c
 def add_arguments(p) -> None:
     c.add_model_arguments(p)
     c.add_text_arguments(p)
-    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the scan as JSON (attnpos.scan/2)")
+    p.add_argument("--json", type=Path, default=None, metavar="OUT", help="write the scan as JSON (attnpos.scan/3)")
     p.add_argument("--html", type=Path, default=None, metavar="OUT", help="write a self-contained HTML report")
     p.add_argument("--boot", type=c.count(0), default=settings.SCAN_BOOT, metavar="N",
                    help=f"bootstrap resamples for intervals (default {settings.SCAN_BOOT})")

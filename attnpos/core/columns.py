@@ -1,6 +1,7 @@
 """The head table's columns: one schema that drives the pandas table, the scan JSON (both ways) and the views.
 
-Each :class:`Column` has a name (the pandas column), a kind (``text``, ``int``, ``number``, ``tags``), the path of
+Each :class:`Column` has a name (the pandas column), a kind (``text``, ``int``, ``number``, ``tags``, or
+``support`` — a mapping of role name to a share), the path of
 its value inside one head's entry of the scan JSON, and a line saying what it holds. The score split's parts are
 listed once in :data:`SPLIT_PARTS`; their share columns (and intervals) are generated from it.
 
@@ -19,7 +20,7 @@ import math
 from dataclasses import dataclass
 from typing import Any, Mapping
 
-KINDS = ("text", "int", "number", "tags")
+KINDS = ("text", "int", "number", "tags", "support")
 
 
 @dataclass(frozen=True)
@@ -35,7 +36,9 @@ SPLIT_PARTS: tuple[Part, ...] = (
     Part("distance", "a free function of δ = i − j (linear trends in δ belong here)", "#3F6E9A"),
     Part("slot", "a free function of the key's absolute index j", "#B8613F"),
     Part("content", "a free function of the key's token", "#6C8C4F"),
-    Part("residual", "what is left: query–key interaction", "#9A948A"),
+    Part("pair", "a function of both absolute positions (i, j): what the residual shares across texts at the same "
+                 "pair", "#7B5C99"),
+    Part("residual", "what is left: query–key content interaction", "#9A948A"),
 )
 """The parts of the score split, in the order shares are stored and drawn."""
 
@@ -65,6 +68,12 @@ HEAD: tuple[Column, ...] = (
     Column("role", "text", ("role",), "the primary role"),
     Column("tags", "tags", ("tags",), "every role whose criterion holds, primary first"),
     Column("evidence", "text", ("evidence",), "the sentence that decided the primary role"),
+    Column("role_support", "number", ("role_support",), "share of bootstrap resamples over texts in which the "
+                                                        "primary role's criterion holds"),
+    Column("role_between", "tags", ("role_between",), "when no role holds in at least ROLE_SUPPORT of the "
+                                                      "resamples: the two roles the head sits between"),
+    Column("tag_support", "support", ("tag_support",), "per role: the share of resamples in which its criterion "
+                                                       "holds"),
     Column("mass_previous", "number", ("mass", "previous"), "mean weight on the token just before"),
     Column("mass_next", "number", ("mass", "next"), "mean weight on the token just after"),
     Column("mass_first", "number", ("mass", "first"), "mean weight on the first token (slot 0)"),
@@ -78,10 +87,20 @@ HEAD: tuple[Column, ...] = (
     Column("anchor_slot", "number", ("anchor", "slot"), "the slot with the highest mean weight from far queries"),
     Column("anchor_weight", "number", ("anchor", "weight"), "that slot's mean weight"),
     Column("induction", "number", ("induction",), "mean weight on the induction target (repeated random tokens)"),
-    Column("shift_kind", "text", ("shift", "kind"), "which shift ran: position-ids or prefix"),
+    Column("induction_se", "number", ("induction_se",), "standard error of the induction score over the random "
+                                                        "sequences"),
+    Column("shift_kind", "text", ("shift", "kind"), "which shifts ran: position-ids, prefix, or both (joined by +)"),
     Column("shift_offset", "number", ("shift", "offset"), "how far positions were moved"),
-    Column("shift_change", "number", ("shift", "change"), "mean total-variation change of the weights"),
-    Column("shift_verdict", "text", ("shift", "verdict"), "relative, absolute, mixed or n/a"),
+    Column("shift_change", "number", ("shift", "change"), "mean total-variation change of the weights (the largest "
+                                                          "over the shifts that ran)"),
+    Column("shift_verdict", "text", ("shift", "verdict"), "relative, absolute, mixed, no-position or n/a, over the "
+                                                          "shifts that ran"),
+    Column("shift_change_ids", "number", ("shift", "position-ids", "change"), "change under the position-id shift"),
+    Column("shift_verdict_ids", "text", ("shift", "position-ids", "verdict"), "verdict of the position-id shift"),
+    Column("shift_change_prefix", "number", ("shift", "prefix", "change"), "change under the neutral prefix"),
+    Column("shift_verdict_prefix", "text", ("shift", "prefix", "verdict"), "verdict of the neutral prefix"),
+    Column("shift_spread", "number", ("shift", "spread"), "mean total-variation distance of the unshifted weights "
+                                                          "from uniform (below the relative threshold: no-position)"),
 )
 """Columns of the head table, in order."""
 
@@ -165,6 +184,8 @@ def to_entry(row: Mapping[str, Any]) -> dict:
             v = int(v)
         elif c.kind == "tags":
             v = [str(t) for t in (v if isinstance(v, (list, tuple)) else [])]
+        elif c.kind == "support":
+            v = {str(k): _finite_or_none(x) for k, x in v.items()} if isinstance(v, Mapping) else {}
         elif c.kind == "text":
             v = v if isinstance(v, str) else None
         _put(entry, c.path, v)
@@ -187,6 +208,10 @@ def from_entry(entry: Mapping[str, Any]) -> dict:
             if v is not None and not (isinstance(v, list) and all(isinstance(t, str) for t in v)):
                 raise ValueError(f"{c.name} must be a list of role names, not {v!r}")
             row[c.name] = list(v or [])
+        elif c.kind == "support":
+            if v is not None and not (isinstance(v, Mapping) and all(isinstance(k, str) for k in v)):
+                raise ValueError(f"{c.name} must map role names to shares, not {v!r}")
+            row[c.name] = {k: _number(x) for k, x in (v or {}).items()}
         else:
             if v is not None and not isinstance(v, str):
                 raise ValueError(f"{c.name} must be text, not {v!r}")

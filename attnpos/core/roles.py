@@ -129,17 +129,37 @@ def _counting(row, ctx):
     return None
 
 
+def _pair(row) -> float:
+    """The position-pair share (0 in files written before the split had it)."""
+    x = _num(row, "share_pair")
+    return x if math.isfinite(x) else 0.0
+
+
+def _positional(row, ctx):
+    moved = row.get("shift_verdict") == "absolute"
+    pair = _pair(row)
+    if moved:
+        return (f"shift test absolute (change {_f(_num(row, 'shift_change'), 3)} under {row.get('shift_kind')}); "
+                f"position-pair share {_f(pair)}")
+    if pair >= th.POSITIONAL_PAIR_SHARE:
+        return f"position-pair share {_f(pair)} ≥ {th.POSITIONAL_PAIR_SHARE}"
+    return None
+
+
 def _content(row, ctx):
-    pos = _num(row, "share_distance") + _num(row, "share_slot")
+    if row.get("shift_verdict") == "absolute":
+        return None                      # the intervention says the head is tied to absolute places
+    pos = _num(row, "share_distance") + _num(row, "share_slot") + _pair(row)
     cont = _num(row, "share_content") + _num(row, "share_residual")
     if _ok(pos, cont) and pos < th.CONTENT_MAX_POSITIONAL and cont >= th.CONTENT_MIN_SHARE:
-        return (f"distance+slot {_f(pos)} < {th.CONTENT_MAX_POSITIONAL}, content+residual "
+        return (f"distance+slot+pair {_f(pos)} < {th.CONTENT_MAX_POSITIONAL}, content+residual "
                 f"{_f(cont)} ≥ {th.CONTENT_MIN_SHARE}")
     return None
 
 
 # Colours: derived from the Okabe & Ito (2008) colour-blind-safe set (common practice; hex values from memory),
-# assigned to our roles in our own order.
+# assigned to our roles in our own order; `positional` takes the wine of Paul Tol's muted scheme (hex from memory),
+# dark enough to stay apart from the others in greyscale, with its code beside it as for every role.
 _BUILTIN = (
     RoleSpec("induction", f"induction score ≥ {th.INDUCTION_SCORE} on repeated random tokens",
              "copies: attends to the token after the earlier copy of the current token",
@@ -154,11 +174,15 @@ _BUILTIN = (
     RoleSpec("local", f"slope ≥ {th.LOCAL_SLOPE} per token and shares.distance ≥ {th.LOCAL_SHARE}",
              "scores fall with distance, and distance explains much of their variance",
              _local, "#009E73", "local", "Lo", "share_distance", 50),
+    RoleSpec("positional", f"shift test absolute, or shares.pair ≥ {th.POSITIONAL_PAIR_SHARE}",
+             "scores follow the absolute positions of query and key (a learned absolute table's p_iᵀ W p_j): the "
+             "head keeps its places when the text moves",
+             _positional, "#882255", "posn", "Ps", "share_pair", 55),
     RoleSpec("counting", f"entropy ≥ {th.COUNTING_ENTROPY} × log(visible keys) (causal models)",
              "near-uniform over the causal prefix — the architecture's default; compare with an untrained copy",
              _counting, "#E69F00", "count", "Ct", "entropy_ratio", 60),
-    RoleSpec("content", (f"shares.distance + shares.slot < {th.CONTENT_MAX_POSITIONAL} and shares.content + "
-                         f"shares.residual ≥ {th.CONTENT_MIN_SHARE}"),
+    RoleSpec("content", (f"shares.distance + shares.slot + shares.pair < {th.CONTENT_MAX_POSITIONAL} and "
+                         f"shares.content + shares.residual ≥ {th.CONTENT_MIN_SHARE}, and the shift test not absolute"),
              "position explains little; key content and query–key interaction explain most",
              _content, "#CC79A7", "content", "Co", "share_content", 70),
     RoleSpec(FALLBACK, "none of the above", "no criterion holds", None, "#8C8C8C", "mixed", "Mx",

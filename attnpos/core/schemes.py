@@ -46,6 +46,8 @@ class SchemeSpec:
         rank: detection order (smaller first).
         detect: ``detect(model) -> None | bool | list[bool]``; None for schemes that are only ever stated
             (``--scheme``) or declared in the config (``attnpos_scheme``).
+        shifts: the shift tests that are informative for the scheme and run by default (see
+            :meth:`informative_shifts`); None derives them from the facts above.
     """
 
     name: str
@@ -55,6 +57,26 @@ class SchemeSpec:
     relative: bool
     rank: int
     detect: Callable[[Any], DetectResult] | None = None
+    shifts: tuple[str, ...] | None = None
+
+    def informative_shifts(self) -> tuple[str, ...]:
+        """Which shifts can show a head tied to absolute places: ``position-ids`` where the scheme reads position
+        ids and is not relative by construction (moving them moves what it encodes); ``prefix`` — neutral tokens
+        placed before the text — where it is relative by construction or reads no ids (a relative scheme still
+        lets a head find the first token or a template slot, and a prefix moves those; Xiao et al. 2024 on
+        attention sinks)."""
+        if self.shifts is not None:
+            return tuple(self.shifts)
+        out = []
+        if self.uses_position_ids and not self.relative:
+            out.append("position-ids")
+        if self.relative or not self.uses_position_ids:
+            out.append("prefix")
+        return tuple(out)
+
+
+SHIFT_KINDS = ("position-ids", "prefix")
+"""The shift tests, in the order they run and are reported."""
 
 
 @dataclass(frozen=True)
@@ -312,6 +334,13 @@ def detect(model, n_layers: int) -> list[str | None]:
     return out
 
 
+def informative_shifts(scheme_names: Sequence[str]) -> tuple[str, ...]:
+    """The shifts informative for any of the layers' schemes (in :data:`SHIFT_KINDS` order); the prefix for a
+    model none of whose schemes is known."""
+    wanted = {k for n in scheme_names if n in _SCHEMES for k in _SCHEMES[n].informative_shifts()}
+    return tuple(k for k in SHIFT_KINDS if k in wanted) or ("prefix",)
+
+
 def uses_position_ids(scheme_names: Sequence[str]) -> bool:
     """Whether any of the layers' schemes reads position ids."""
     return any(getattr(_SCHEMES.get(n), "uses_position_ids", False) for n in scheme_names)
@@ -325,8 +354,9 @@ def table_schemes(scheme_names: Sequence[str]) -> list[str]:
 def readme_table() -> str:
     """The README's scheme table (Markdown), from the specs."""
     yes = lambda b: "yes" if b else "no"  # noqa: E731
-    rows = ["| scheme | where position enters | position ids move it | table of positions | relative by construction |",
-            "|---|---|---|---|---|"]
-    rows += [f"| `{s.name}` | {s.about} | {yes(s.uses_position_ids)} | {yes(s.has_table)} | {yes(s.relative)} |"
-             for s in specs()]
+    rows = ["| scheme | where position enters | position ids move it | table of positions | relative by construction "
+            "| shift test run by default |",
+            "|---|---|---|---|---|---|"]
+    rows += [f"| `{s.name}` | {s.about} | {yes(s.uses_position_ids)} | {yes(s.has_table)} | {yes(s.relative)} "
+             f"| {', '.join(s.informative_shifts())} |" for s in specs()]
     return "\n".join(rows)

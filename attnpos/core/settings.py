@@ -5,6 +5,10 @@ their commands read the same numbers). Judgement calls that turn numbers into wo
 #: bootstrap resamples over texts for the score split's intervals (attnpos scan --boot)
 SCAN_BOOT = 100
 
+#: random sequences of the induction test (each repeated twice); enough that the standard error of every head's
+#: score is at most 0.02 on the reference models (measured: see the README's induction section)
+INDUCTION_SEQUENCES = 16
+
 #: outer folds over texts of the position probes (attnpos probe --folds)
 PROBE_FOLDS = 5
 

@@ -17,7 +17,9 @@ CAUTION = ("Energy shares say which rotary frequencies carry a head's scores on 
 @dataclass(repr=False, eq=False)
 class BandsResult(Result):
     """``heads``: one dict per RoPE head (``stack``, ``layer``, ``head``, ``shares`` per pair, ``unrotated_share``,
-    ``high_share``, ``low_share``, ``beyond_context_share``, ``dominant_pair``, ``dominant_wavelength``, ``band``);
+    ``high_share``, ``low_share``, ``beyond_context_share``, ``dominant_pair``, ``dominant_wavelength``, ``band`` —
+    by energy —, ``removal`` ``{band: {"tv", "previous", "first"}}`` and ``used_band`` — by intervention; files of
+    version 1 lack the last two);
     ``pairs``: one dict per rotary pair (``pair``, ``dims``, ``theta``, ``wavelength``, ``band``); ``layout``
     (``"half"`` or ``"interleaved"``), ``rotary_dims``, ``head_dim``, ``context`` (the longest text), and how
     energy and bands are defined."""
@@ -45,16 +47,30 @@ class BandsResult(Result):
             out.setdefault(h["band"], []).append(keys.head_key(h["stack"], h["layer"], h["head"]))
         return out
 
+    def by_use(self) -> dict[str, list[str]]:
+        """Head keys per band the head uses (whose removal changes its weights most; ``high``, ``middle``, ``low``)."""
+        out: dict[str, list[str]] = {"high": [], "middle": [], "low": []}
+        for h in self.heads:
+            if h.get("used_band"):
+                out.setdefault(h["used_band"], []).append(keys.head_key(h["stack"], h["layer"], h["head"]))
+        return out
+
     def headline(self) -> str:
         counts = ", ".join(f"{b} {len(v)}" for b, v in self.by_band().items())
         return f"RoPE frequency bands of {len(self.heads)} heads ({len(self.pairs)} pairs each): {counts}"
 
     def table(self) -> pd.DataFrame:
         cols = ["key", "stack", "layer", "head", "band", "high_share", "low_share", "beyond_context_share",
-                "dominant_pair", "dominant_wavelength", "unrotated_share"]
-        rows = [{"key": keys.head_key(h["stack"], h["layer"], h["head"]), **{c: h.get(c) for c in cols[1:]}}
-                for h in self.heads]
-        return pd.DataFrame(rows, columns=cols)
+                "dominant_pair", "dominant_wavelength", "unrotated_share", "used_band"]
+        removal = [f"removal_{b}_{m}" for b in ("high", "middle", "low") for m in ("tv", "previous", "first")]
+        rows = []
+        for h in self.heads:
+            r = {"key": keys.head_key(h["stack"], h["layer"], h["head"]), **{c: h.get(c) for c in cols[1:]}}
+            for b, d in (h.get("removal") or {}).items():
+                for m, v in d.items():
+                    r[f"removal_{b}_{m}"] = v
+            rows.append(r)
+        return pd.DataFrame(rows, columns=cols + removal)
 
     def summary_lines(self) -> list[str]:
         """Terminal lines: the bands and the heads in each (listed compactly, per layer)."""
@@ -68,7 +84,14 @@ class BandsResult(Result):
                 "contribution to q·k):",
                 f"  high band ({fmt(hi)}): {keys.compact(s['high']) or 'no head'}",
                 f"  low band ({fmt(lo)}): {keys.compact(s['low']) or 'no head'}",
-                f"  spread: {keys.compact(s['spread']) or 'no head'}"]
+                f"  spread: {keys.compact(s['spread']) or 'no head'}"] + self._use_lines()
+
+    def _use_lines(self) -> list[str]:
+        u = self.by_use()
+        if not any(u.values()):
+            return []
+        return ["used, by intervention (the band whose removal changes a head's weights most):"] + \
+               [f"  {b}: {keys.compact(v) or 'no head'}" for b, v in u.items()]
 
     def text(self) -> str:
         return "\n".join(self.summary_lines() + [f"notice: {n}" for n in self.notes] + [f"note: {self.caution}"])

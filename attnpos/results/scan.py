@@ -1,7 +1,7 @@
 """`Scan`: what a full scan produced, in one object that views, the report and the JSON share.
 
 The pipeline that fills it lives in :mod:`attnpos.pipeline`; this module holds the container and its JSON form
-(schema ``attnpos.scan/2``; files of ``attnpos.scan/1`` still load), so views and the report can load a saved scan
+(schema ``attnpos.scan/3``; files of ``attnpos.scan/1`` and ``/2`` still load), so views and the report can load a saved scan
 without running a model or starting torch. Other results about the same model (a probe, a length run) are attached
 with :meth:`Scan.attach`, travel in the same file and are what the curves view draws.
 
@@ -52,7 +52,7 @@ class Scan(Result):
     """
 
     result_kind = "scan"
-    version = 2
+    version = 3
 
     model: dict
     texts: list[dict]
@@ -123,8 +123,8 @@ class Scan(Result):
                  f"texts: {len(self.texts)} ({sum(t['n_tokens'] for t in self.texts)} tokens)  "
                  f"fingerprint {m['fingerprint'][:16]}"]
         width = max([12] + [len(k) + 1 for k in self.head_keys()])
-        hdr = (f"{'head':<{width}} {'role':<15} {'prev':>5} {'next':>5} {'first':>5} {'self':>5}  {'dist':>5} "
-               f"{'slot':>5} {'cont':>5} {'resid':>5}  {'slope':>7}  {'ind':>5}  shift")
+        hdr = (f"{'head':<{width}} {'role':<15} {'sure':>4} {'prev':>5} {'next':>5} {'first':>5} {'self':>5}  {'dist':>5} "
+               f"{'slot':>5} {'cont':>5} {'pair':>5} {'resid':>5}  {'slope':>7}  {'ind':>5}  shift")
         lines += [hdr, "-" * len(hdr)]
 
         def f(x, w=5, nd=2):
@@ -137,9 +137,12 @@ class Scan(Result):
         for key, (_, r) in zip(self.head_keys(), self.heads.iterrows()):
             shift = ("—" if r.get("shift_verdict") is None
                      else f"{r['shift_verdict']} ({float(r['shift_change']):.3f}, {r.get('shift_kind')})")
-            lines.append(f"{key:<{width}} {r['role']:<15} {f(r['mass_previous'])} {f(r['mass_next'])} "
+            between = r.get("role_between")
+            if isinstance(between, list) and len(between) == 2:
+                shift += f"  between {between[0]} / {between[1]}"
+            lines.append(f"{key:<{width}} {r['role']:<15} {f(r.get('role_support'), 4)} {f(r['mass_previous'])} {f(r['mass_next'])} "
                          f"{f(r['mass_first'])} {f(r['mass_self'])}  {f(r['share_distance'])} {f(r['share_slot'])} "
-                         f"{f(r['share_content'])} {f(r['share_residual'])}  {f(r['slope'], 7, 3)}  "
+                         f"{f(r['share_content'])} {f(r.get('share_pair'))} {f(r['share_residual'])}  {f(r['slope'], 7, 3)}  "
                          f"{f(r['induction'])}  {shift}")
         counts = self.role_counts()
         lines.append("roles: " + ", ".join(f"{k} {v}" for k, v in sorted(counts.items(), key=lambda kv: -kv[1])))
@@ -180,15 +183,19 @@ class Scan(Result):
 
     @classmethod
     def upgrade(cls, data: dict, version: int) -> dict:
-        if version != 1:
+        if version not in (1, 2):
             return super().upgrade(data, version)
-        # scan/1: probe and length results were pasted into extra by hand; they are attached results now
-        extra = dict(data.get("extra") or {})
-        attached = {}
-        for kind in ("probe", "length"):
-            if isinstance(extra.get(kind), dict):
-                attached[kind] = extra.pop(kind)
-        data["extra"], data["attached"] = extra, attached
+        if version == 1:
+            # scan/1: probe and length results were pasted into extra by hand; they are attached results now
+            extra = dict(data.get("extra") or {})
+            attached = {}
+            for kind in ("probe", "length"):
+                if isinstance(extra.get(kind), dict):
+                    attached[kind] = extra.pop(kind)
+            data["extra"], data["attached"] = extra, attached
+        # scan/2 → 3: head entries gained the position-pair share, one change and verdict per shift that ran, the
+        # weights' spread and the roles' support; an older entry simply lacks them (read as missing), and its
+        # role, tags and evidence stay as they were decided then
         return data
 
     @classmethod

@@ -38,6 +38,11 @@ class SplitResult(Result):
     n_boot: int
     parts: tuple = columns.PART_NAMES
     caution: str = CAUTION
+    #: the bootstrap's resamples, kept in memory for the roles' support (not saved): text weights (B, n_texts),
+    #: shares (B, S, H, parts) and slopes (B, S, H); None without a bootstrap or in a loaded file
+    boot_weights: np.ndarray | None = None
+    boot_shares: np.ndarray | None = None
+    boot_slope: np.ndarray | None = None
 
     _ARRAYS = ("shares", "shares_lo", "shares_hi", "profile", "profile_lo", "profile_hi", "slope", "slope_lo",
                "slope_hi")

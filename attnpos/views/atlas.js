@@ -44,6 +44,7 @@ function atlasRender({ model, el }) {
                f("mass_first") + " \u00b7 self " + f("mass_self"));
     lines.push("entropy ratio " + f("entropy_ratio") + " \u00b7 induction " + f("induction"));
     lines.push("shift: " + (data.verdicts[i] || "\u2014") + " (change " + f("shift_change", 3) + ")");
+    lines.push("role holds in " + f("role_support", 2) + " of resamples" + (field(i, "faded") === 1 ? " (uncertain)" : ""));
     const m = (model.get("marks") || {})[data.keys[i]];
     if (m) lines.push("findings: " + m.n + " (" + m.statuses.join(", ") + ")" + (m.stale ? ", " + m.stale + " stale" : ""));
     return lines;
@@ -165,6 +166,7 @@ function atlasRender({ model, el }) {
       const cg = apSvg("g", { class: "ap-cell", transform: `translate(${x},${y})`, "data-key": data.keys[i],
                               "data-role": p.role || "unknown", role: "gridcell",
                               "aria-label": data.keys[i] + " " + (p.role || "no role") });
+      if (field(i, "faded") === 1) cg.setAttribute("opacity", "0.45");   // role not sure across resamples
       cg.appendChild(apSvg("rect", { width: lay.cw, height: lay.ch, rx: 3, fill: p.fill, stroke: p.colour,
                                      "stroke-width": 1, class: "ap-cellbox" }));
       cg.appendChild(apSvg("rect", { width: lay.cw, height: 3, fill: p.colour }));

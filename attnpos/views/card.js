@@ -95,6 +95,7 @@ function cardRender({ model, el }) {
       ["slope", apFmt(info.slope, 3) + " " + apInterval(info.slope_lo, info.slope_hi, 3)],
       ["shift test", (info.shift_verdict || "\u2014") + " \u00b7 change " + apFmt(info.shift_change, 3) +
                      " \u00b7 offset " + apFmt(info.shift_offset, 0) + " \u00b7 " + (info.shift_kind || "\u2014")],
+      ["role support", apFmt(info.role_support) + (info.role_between ? " \u00b7 between " + info.role_between : "")],
       ["induction score", apFmt(info.induction)],
       ["anchor", "slot " + apFmt(info.anchor_slot, 0) + " \u00b7 weight " + apFmt(info.anchor_weight)],
       ["entropy ratio", apFmt(info.entropy_ratio)],

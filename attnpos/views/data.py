@@ -21,13 +21,26 @@ ATLAS_FIELDS = [
     "share_distance", "share_distance_lo", "share_distance_hi",
     "share_slot", "share_slot_lo", "share_slot_hi",
     "share_content", "share_content_lo", "share_content_hi",
+    "share_pair", "share_pair_lo", "share_pair_hi",
     "share_residual", "share_residual_lo", "share_residual_hi",
     "slope", "slope_lo", "slope_hi", "entropy_ratio",
     "mass_previous", "mass_next", "mass_first", "mass_self",
     "anchor_slot", "anchor_weight", "induction", "shift_offset", "shift_change",
+    "role_support", "faded",
 ]
 SPARK_POINTS = 24
 STATUS_ORDER = ("open", "supported", "ruled-out")
+
+
+def uncertain_roles(t: pd.DataFrame) -> np.ndarray:
+    """1.0 for heads whose primary role holds in fewer than ROLE_SUPPORT of the resamples (or that sit between two
+    roles), else 0.0: the atlas draws them faded."""
+    from ..core.thresholds import ROLE_SUPPORT
+
+    sup = pd.to_numeric(t["role_support"], errors="coerce").to_numpy(dtype=float) if "role_support" in t else \
+        np.full(len(t), np.nan)
+    between = [isinstance(v, list) and len(v) > 0 for v in (t["role_between"] if "role_between" in t else [None] * len(t))]
+    return ((np.isfinite(sup) & (sup < ROLE_SUPPORT)) | np.array(between, dtype=bool)).astype(np.float32)
 
 
 def atlas_layout(n_cols: int) -> dict:
@@ -94,6 +107,7 @@ def atlas_data(scan, spark_points: int | None = None) -> dict:
     for k, c in enumerate(ATLAS_FIELDS):
         if c in t.columns:
             numbers[:, k] = pd.to_numeric(t[c], errors="coerce").to_numpy(dtype=np.float64)
+    numbers[:, ATLAS_FIELDS.index("faded")] = uncertain_roles(t)
     prof = scan.profile or {}
     if "value" in prof and np.asarray(prof["value"]).shape[0] == n:
         order = profile_order(prof)
@@ -147,7 +161,8 @@ def head_info(scan, key: str) -> dict:
     info: dict[str, Any] = {"key": key, "stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
                             "role": r["role"] if isinstance(r["role"], str) else None,
                             "tags": tags_of(r["tags"]), "evidence": text_of(r["evidence"]),
-                            "shift_kind": text_of(r.get("shift_kind")), "shift_verdict": text_of(r.get("shift_verdict"))}
+                            "shift_kind": text_of(r.get("shift_kind")), "shift_verdict": text_of(r.get("shift_verdict")),
+                            "role_between": " / ".join(tags_of(r.get("role_between"))) or None}
     for c in ATLAS_FIELDS:
         info[c] = clean(num(r.get(c)))
     prof = scan.profile or {}

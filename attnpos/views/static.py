@@ -77,6 +77,13 @@ def _tooltip(data: dict, i: int) -> str:
     return "\n".join(lines)
 
 
+def _faded(data: dict, i: int) -> bool:
+    fields = list(data.get("fields") or [])
+    if "faded" not in fields:
+        return False
+    return float(np.asarray(data["numbers"])[i, fields.index("faded")]) == 1.0
+
+
 def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None,
               link_cards: set | None = None) -> str:
     marks = marks or {}
@@ -108,7 +115,8 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
         p = pal[int(data["roles"][i])]
         label = p["short"] if lay["label"] == "short" else p["code"]
         sel = key == selected
-        parts = [f'<g class="apx-cell" data-key="{esc_plain(key)}" transform="translate({x},{y})">',
+        faded = ' opacity="0.45"' if _faded(data, i) else ""          # role not sure across resamples
+        parts = [f'<g class="apx-cell" data-key="{esc_plain(key)}" transform="translate({x},{y})"{faded}>',
                  f'<title>{esc_plain(_tooltip(data, i))}</title>',
                  f'<rect width="{cw}" height="{ch}" rx="3" fill="{p["fill"]}" '
                  f'stroke="{INK if sel else p["colour"]}" stroke-width="{2.5 if sel else 1}"/>',
@@ -279,6 +287,8 @@ def facts_table(info: dict) -> str:
         ("slope", f"{fmt(info.get('slope'), 3)} {fmt_interval(info.get('slope_lo'), info.get('slope_hi'), 3)}"),
         ("shift test", f"{info.get('shift_verdict') or '—'} · change {fmt(info.get('shift_change'), 3)} · "
                        f"offset {fmt(info.get('shift_offset'), 0)} · {info.get('shift_kind') or '—'}"),
+        ("role support", fmt(info.get("role_support")) + (f" · between {info['role_between']}"
+                                                           if info.get("role_between") else "")),
         ("induction score", fmt(info.get("induction"))),
         ("anchor", f"slot {fmt(info.get('anchor_slot'), 0)} · weight {fmt(info.get('anchor_weight'))}"),
         ("entropy ratio", fmt(info.get("entropy_ratio"))),

@@ -162,4 +162,4 @@ def test_scores_built_from_the_named_parts_leave_no_residual(rec):
     fit = split_of(scores, tokens, causal)
     ok = _ok(fit)
     assert ok.any()
-    np.testing.assert_allclose(fit.shares[0][ok][:, 3], 0.0, atol=1e-4)
+    np.testing.assert_allclose(fit.shares[0][ok][:, 3:], 0.0, atol=1e-4)   # neither pair nor residual

@@ -129,6 +129,18 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
             return np.zeros((0, 0), np.uint8)
         return np.frombuffer(self.map_codes, np.uint8).reshape(m["rows"], m["cols"])
 
+    def figure(self):
+        """The card as a matplotlib figure: weight map with colour bar, profile with band and slope line, split."""
+        if not self.head:
+            return None
+        from . import figures
+        return figures.card_figure(self.scan, self.head, self.text if self.text >= 0 else None)
+
+    def summary(self):
+        if not self.head:
+            return "Head card", ["no head selected"]
+        return _data.card_summary(self.scan, self.head)
+
     def to_html(self) -> str:
         if not self.head:
             return static.style_tag() + '<div class="apx"><p class="apx-none">No head selected.</p></div>'

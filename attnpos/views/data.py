@@ -13,8 +13,9 @@ import numpy as np
 import pandas as pd
 
 from ..core import roles as core_roles
-from ..core.keys import head_key, layer_key, parse_key
-from .common import (clean, map_view, block_labels, num, role_index, spark_codes, tags_of, text_of, top_keys)
+from ..core.keys import compact, head_key, layer_key, parse_key
+from .common import (block_labels, clean, fmt, fmt_interval, is_anchor_like, map_view, num, role_index, shift_how, spark_codes, tags_of,
+                     text_of, top_keys)
 
 # Numbers per head that the atlas sends (float32, NaN = missing) and shows on hover.
 ATLAS_FIELDS = [
@@ -30,8 +31,16 @@ SPARK_POINTS = 24
 STATUS_ORDER = ("open", "supported", "ruled-out")
 
 
-def atlas_layout(n_cols: int) -> dict:
-    """Cell geometry shared by the widget (JS) and the static SVG."""
+# The overview must fit one 1400 × 900 screen for models up to ~40 layers × 40 heads: the grid gets at most this
+# many pixels, and cells shrink (sparkline first, then the written code stays) to fit.
+GRID_MAX_WIDTH = 1240
+GRID_MAX_HEIGHT = 640
+
+
+def atlas_layout(n_cols: int, n_rows: int = 0) -> dict:
+    """Cell geometry shared by the widget (JS), the static SVG and the pictures: roomy cells with the role's short
+    word and a sparkline for small models; small marks with the role's code for big ones, so that the whole grid
+    fits about 1240 × 640 pixels (one screen with the legend and the filters around it)."""
     if n_cols <= 12:
         cw, ch, label = 66, 44, "short"
     elif n_cols <= 16:
@@ -40,7 +49,21 @@ def atlas_layout(n_cols: int) -> dict:
         cw, ch, label = 34, 32, "code"
     else:
         cw, ch, label = 26, 26, "code"
-    return {"cw": cw, "ch": ch, "gap": 2, "left": 74, "top": 20, "label": label}
+    gap, left, top = 2, 74, 20
+    if n_cols:
+        cw = max(12, min(cw, (GRID_MAX_WIDTH - left) // n_cols - gap))
+    if n_rows:
+        ch = max(12, min(ch, (GRID_MAX_HEIGHT - top) // n_rows - gap))
+    if label == "short" and cw < 48:
+        label = "code"
+    # a sparkline needs room under the written role
+    spark = ch >= 30 and cw >= 26
+    return {"cw": cw, "ch": ch, "gap": gap, "left": left, "top": top, "label": label, "spark": spark}
+
+
+def cell_label(palette_entry: dict, layout: dict) -> str:
+    """The word a cell writes for its role (the legend writes the same word)."""
+    return palette_entry["short"] if layout["label"] == "short" else palette_entry["code"]
 
 
 def _str_col(t: pd.DataFrame, c: str) -> list[str]:
@@ -84,7 +107,7 @@ def atlas_data(scan, spark_points: int | None = None) -> dict:
     row_of = {(r["stack"], r["layer"]): i for i, r in enumerate(rows)}
     heads = t["head"].astype(int).to_numpy() if n else np.zeros(0, int)
     n_cols = int(heads.max()) + 1 if n else 0
-    layout = atlas_layout(n_cols)
+    layout = atlas_layout(n_cols, len(rows))
     if spark_points is None:
         spark_points = int(min(SPARK_POINTS, max(8, (layout["cw"] - 6) // 2)))
     cell = np.array([row_of[(s if s else "main", int(L))] * n_cols + int(h)
@@ -103,11 +126,38 @@ def atlas_data(scan, spark_points: int | None = None) -> dict:
     else:
         spark, spark_d = np.zeros((n, 0), np.uint8), np.zeros(0)
     keys = [head_key(s, L, h) for s, L, h in zip(t["stack"], t["layer"], t["head"])]
-    return {"rows": rows, "n_cols": n_cols, "cells": cell, "roles": roles, "numbers": numbers,
+    strength = np.full(n, np.nan, dtype=np.float32)
+    for i, r in enumerate(t["role"].tolist()):
+        spec = core_roles.get(str(r)) if r is not None else None
+        if spec is not None and spec.strength and spec.strength in t.columns:
+            strength[i] = num(t[spec.strength].iloc[i])
+    return {"rows": rows, "strength": strength, "layers": t["layer"].astype(int).to_numpy() if n else np.zeros(0, int), "n_cols": n_cols, "cells": cell, "roles": roles, "numbers": numbers,
             "fields": list(ATLAS_FIELDS), "spark": spark, "spark_distance": spark_d.astype(np.float32),
             "evidence": _str_col(t, "evidence"), "tags": [", ".join(tags_of(v)) for v in t["tags"].tolist()],
             "verdicts": _str_col(t, "shift_verdict"), "keys": keys,
             "layout": layout}
+
+
+def atlas_keep(data: dict, filters: dict | None) -> np.ndarray:
+    """Which heads a filter keeps (boolean per head of :func:`atlas_data`). ``filters`` may hold ``roles`` (role
+    names to keep), ``layers`` (``[first, last]``, inclusive) and ``strength`` (keep heads whose role's strength
+    column — :attr:`attnpos.core.roles.RoleSpec.strength` — is at least this; heads without one are kept). The
+    widget applies the same rule in the browser to the same numbers."""
+    n = len(data["keys"])
+    keep = np.ones(n, bool)
+    f = filters or {}
+    if f.get("roles") is not None:
+        names = set(f["roles"])
+        all_roles = core_roles.names()
+        keep &= np.array([bool(r) and all_roles[r - 1] in names for r in data["roles"].tolist()], bool)
+    if f.get("layers"):
+        lo, hi = f["layers"]
+        keep &= (data["layers"] >= int(lo)) & (data["layers"] <= int(hi))
+    if f.get("strength") is not None:
+        s = data["strength"]
+        with np.errstate(invalid="ignore"):
+            keep &= ~(s < float(f["strength"]))
+    return keep
 
 
 def model_facts(scan) -> list[tuple[str, str]]:
@@ -150,6 +200,8 @@ def head_info(scan, key: str) -> dict:
                             "shift_kind": text_of(r.get("shift_kind")), "shift_verdict": text_of(r.get("shift_verdict"))}
     for c in ATLAS_FIELDS:
         info[c] = clean(num(r.get(c)))
+    info["shift_how"] = shift_how(info["shift_kind"], info.get("shift_offset"))
+    info["anchor_like"] = is_anchor_like(info["role"], info["tags"])
     prof = scan.profile or {}
     out = {"info": info, "distance": np.zeros(0), "value": np.zeros(0), "low": np.zeros(0), "high": np.zeros(0)}
     if "value" in prof and np.asarray(prof["value"]).shape[0] > i:
@@ -160,12 +212,30 @@ def head_info(scan, key: str) -> dict:
                 out[k] = np.asarray(prof[k], dtype=np.float64)[i][order]
             else:
                 out[k] = np.full(len(out["distance"]), np.nan)
-    # the slope line: best linear fit in δ with the reported slope, intercept by least squares on the profile
-    d, v = out["distance"], out["value"]
-    ok = np.isfinite(v) & np.isfinite(d) if len(v) else np.zeros(0, bool)
-    slope = info.get("slope")
-    info["intercept"] = float(np.mean(v[ok]) - slope * np.mean(d[ok])) if (ok.any() and slope is not None) else None
+    info["intercept"], line = slope_line(out["distance"], out["value"], info.get("slope"))
+    info["slope_line"] = [[float(a), float(b)] for a, b in zip(*line)]
+    out["slope_line"] = line
     return out
+
+
+def slope_line(distance: np.ndarray, value: np.ndarray, slope, n: int = 48) -> tuple:
+    """The slope as a line to draw over a profile: ``y = b − slope·δ`` over δ ≥ 0 (the slope is positive when
+    scores fall with distance, :mod:`attnpos.split`), with ``b`` the least-squares intercept on the profile's
+    points at δ ≥ 0. Returns (intercept or None, (δ values, y values)) — sampled at ``n`` points, because the views
+    draw δ on a log scale, where a straight line in δ is a curve."""
+    d = np.asarray(distance, dtype=float)
+    v = np.asarray(value, dtype=float)
+    empty = (None, (np.zeros(0), np.zeros(0)))
+    if slope is None or not np.isfinite(slope) or not len(v):
+        return empty
+    ok = np.isfinite(v) & np.isfinite(d) & (d >= 0)
+    if ok.sum() < 2:
+        return empty
+    b = float(np.mean(v[ok]) + slope * np.mean(d[ok]))
+    lo, hi = float(d[ok].min()), float(d[ok].max())
+    xs = np.unique(np.concatenate([np.linspace(lo, hi, n), np.geomspace(max(lo, 1.0), max(hi, 1.0), n)]))
+    xs = xs[(xs >= lo) & (xs <= hi)]
+    return b, (xs, b - slope * xs)
 
 
 def map_payload(scan, key: str, text: int, window=None, max_side: int = 256) -> dict | None:
@@ -271,3 +341,70 @@ def notable_heads(scan, per_role: int = 2, limit: int = 14) -> list[str]:
             r = t.loc[i]
             keys.append(head_key(r["stack"], r["layer"], r["head"]))
     return keys[:limit]
+
+
+# ------------------------------------------------------------------ summaries (the static bundle's words)
+def atlas_summary(scan, marks: dict | None = None) -> tuple[str, list[str]]:
+    m = scan.model or {}
+    rows = scan_rows(scan)
+    counts = scan.heads["role"].value_counts().to_dict() if len(scan.heads) else {}
+    order = [r for r in core_roles.names() if counts.get(r)]
+    lines = [f"{m.get('name') or m.get('path') or 'model'} · scheme {m.get('scheme') or '—'} · "
+             f"{len(rows)} layer rows × {m.get('heads', '—')} heads ({len(scan.heads)} heads)",
+             "roles: " + (", ".join(f"{counts[r]} {r}" for r in order) or "none")]
+    for r in order:
+        sub = scan.heads[scan.heads["role"] == r]
+        keys = [head_key(s, L, h) for s, L, h in zip(sub["stack"], sub["layer"], sub["head"])]
+        if r != core_roles.FALLBACK:
+            lines.append(f"{r}: {compact(keys)}")
+    n_marked = sum(1 for k in (marks or {}) if k != "model")
+    if n_marked:
+        lines.append(f"{n_marked} heads or layers carry findings")
+    return "Atlas — role of every head", lines
+
+
+def card_summary(scan, key: str) -> tuple[str, list[str]]:
+    info = head_info(scan, key)["info"]
+    lines = [f"role {info['role'] or '—'}" + (f" (tags: {', '.join(info['tags'])})" if info["tags"] else ""),
+             f"slope {fmt(info.get('slope'), 3)} {fmt_interval(info.get('slope_lo'), info.get('slope_hi'), 3)} "
+             "score/token (positive: scores fall with distance)".replace("  ", " "),
+             "shares distance / slot / content / residual: " + " / ".join(
+                 fmt(info.get(f"share_{p}"), 3) for p in ("distance", "slot", "content", "residual")),
+             f"shift test: {info.get('shift_verdict') or '—'} (change {fmt(info.get('shift_change'), 3)}; "
+             f"{info['shift_how']})",
+             f"induction {fmt(info.get('induction'))} · entropy ratio {fmt(info.get('entropy_ratio'))}"]
+    if info["anchor_like"]:
+        lines.append(f"anchor: slot {fmt(info.get('anchor_slot'), 0)}, weight {fmt(info.get('anchor_weight'))}")
+    if info["evidence"]:
+        lines.append(f"evidence: {info['evidence']}")
+    return f"Head {key}", lines
+
+
+def curves_summary(scan) -> tuple[str, list[str]]:
+    c = curves_data(scan)
+    lines = []
+    pr = c["probe"]
+    if pr is not None and np.isfinite(pr["r2"]).any():
+        k = int(np.nanargmax(pr["r2"]))
+        lines.append(f"probe for absolute position: best layer {fmt(pr['layer'][k], 0)}, held-out R² "
+                     f"{fmt(pr['r2'][k], 3)} (control {fmt(pr['control_r2'][k], 3)}, untrained copy "
+                     f"{fmt(pr['untrained_r2'][k], 3)})")
+    else:
+        lines.append("probe: not measured (attach a probe result: scan.attach(attnpos.probes.probe(...)))")
+    ln = c["length"]
+    if ln is not None and "loss" in ln and np.isfinite(ln["loss"]).any():
+        lines.append(f"loss per position over {len(ln['position'])} positions, training length "
+                     f"{ln.get('training_length') or '—'}: first {fmt(ln['loss'][0], 3)}, last {fmt(ln['loss'][-1], 3)}")
+    else:
+        lines.append("length: not measured (attach a length result: scan.attach(attnpos.length.length(...)))")
+    return "Curves — position probes and behaviour past the training length", lines
+
+
+def findings_summary(rows: list[dict], path: str | None = None) -> tuple[str, list[str]]:
+    lines = [f"store: {path}"] if path else []
+    if not rows:
+        lines.append("no findings recorded")
+    for r in rows:
+        body = r["body"] if len(r["body"]) <= 160 else r["body"][:157] + "…"
+        lines.append(f"{r['target']} · {r['status']}{' · stale' if r['stale'] else ''}: {body}")
+    return f"Findings ({len(rows)})", lines

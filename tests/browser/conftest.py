@@ -96,7 +96,9 @@ def jupyterlab(tmp_path_factory):
     # start the notebook's kernel without asking ("Always start the preferred kernel")
     tracker = base / "settings" / "@jupyterlab" / "notebook-extension"
     tracker.mkdir(parents=True)
-    (tracker / "tracker.jupyterlab-settings").write_text(json.dumps({"autoStartDefaultKernel": True}))
+    # ... and render every cell (JupyterLab 4 otherwise renders only the cells in view)
+    (tracker / "tracker.jupyterlab-settings").write_text(json.dumps({"autoStartDefaultKernel": True,
+                                                                     "windowingMode": "none"}))
     port, token = _free_port(), "attnpos-test-" + os.urandom(8).hex()
     env = dict(os.environ, HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1", JUPYTER_CONFIG_DIR=str(cfg),
                JUPYTER_RUNTIME_DIR=str(base / "runtime"), JUPYTERLAB_SETTINGS_DIR=str(base / "settings"),

@@ -152,6 +152,7 @@ function atlasRender({ model, el }) {
       e.placeholder = label; e.setAttribute("aria-label", label); return e;
     };
     layerLo = num("ap-layer-lo", "first layer"); layerHi = num("ap-layer-hi", "last layer");
+    layerLo.placeholder = String(lmin); layerHi.placeholder = String(lmax);
     const onLayers = () => {
       const f = filters();
       const a = layerLo.value === "" ? lmin : parseInt(layerLo.value, 10), b = layerHi.value === "" ? lmax : parseInt(layerHi.value, 10);

@@ -296,7 +296,7 @@ function cardRender({ model, el }) {
 
   function draw() {
     const info = model.get("info") || {};
-    const style = model.get("style") || {};
+    const style = model.get("colours") || {};
     root.replaceChildren();
     if (!info.key) {
       root.appendChild(apEl("h3", null, "Head card"));
@@ -336,7 +336,7 @@ function cardRender({ model, el }) {
   // several traits change together when a head is selected: draw once per batch
   let queued = false;
   const later = () => { if (queued) return; queued = true; queueMicrotask(() => { queued = false; draw(); }); };
-  const names = ["info", "profile", "map_codes", "map_meta", "texts", "text", "top_keys", "findings", "caution", "style"];
+  const names = ["info", "profile", "map_codes", "map_meta", "texts", "text", "top_keys", "findings", "caution", "colours"];
   for (const n of names) model.on("change:" + n, later);
   return () => { for (const n of names) model.off("change:" + n, later); };
 }

@@ -113,9 +113,8 @@ def test_alibi_against_sinusoidal_past_training_length(capsys):
         res = length(s, to=to, n_sequences=4, n_boot=100)
         _check_structure(res, to, s)
         out[name] = res.summary["loss_at"]
-    with capsys.disabled():
-        for name, la in out.items():
-            print(f"\n{name}: loss at 1x/2x/4x of {L}: " + ", ".join(f"{k} {v:.3f}" for k, v in la.items()))
+    for name, la in out.items():      # captured (shown with the test's report on failure), never into the dots
+        print(f"{name}: loss at 1x/2x/4x of {L}: " + ", ".join(f"{k} {v:.3f}" for k, v in la.items()))
     for la in out.values():
         assert all(np.isfinite(v) for v in la.values())
     rise = {k: la["4x"] - la["1x"] for k, la in out.items()}

@@ -29,14 +29,24 @@ def check(args) -> None:
         parsed = keys.parse_keys(args.heads)      # the grammar: a bad key is refused before the model loads
         if not parsed:
             raise AttnposError("--heads is empty: give keys such as L0.H1,L2.H3, or leave it out for every head.")
-    c.check_model(args)
+    found = c.check_model(args)
+    if args.heads is not None:
+        # heads the model does not have are refused now, from config.json, not after the model loaded
+        n_layers, n_heads = c.config_shape(found.config)
+        for k in parsed:
+            if k.stack == keys.MAIN and k.layer is not None and n_layers is not None and k.layer >= n_layers:
+                raise AttnposError(f"--heads names {k}, but {args.model} has {n_layers} layers (L0 … "
+                                   f"L{n_layers - 1}).")
+            if k.head is not None and n_heads is not None and k.head >= n_heads:
+                raise AttnposError(f"--heads names {k}, but {args.model} has {n_heads} heads per layer (H0 … "
+                                   f"H{n_heads - 1}).")
     args.raw_texts = c.read_texts(args)
 
 
 def run(args) -> int:
     from ..ablation import ablate
 
-    res = ablate(c.load_subject(args), args.heads, args.raw_texts, how=args.how, together=args.together,
+    res = ablate(c.load_subject(args, command="ablate"), args.heads, args.raw_texts, how=args.how, together=args.together,
                  max_tokens=args.max_tokens, n_boot=args.boot)
     print(res.text())
     if args.json:

@@ -51,6 +51,7 @@ def run(args) -> int:
         if s is None:
             from ..subject import load
 
+            c.announce(args, "compare", name)
             s = load(getattr(args, name), allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code)
         sides.append(s)
     res = compare(*sides, args.raw_texts, all_heads=args.all, n_boot=args.boot, shift=not args.no_shift,

@@ -39,7 +39,7 @@ def check(args) -> None:
 def run(args) -> int:
     from ..length import length
 
-    res = length(c.load_subject(args), args.raw_texts, to=args.to, training_length=args.training_length,
+    res = length(c.load_subject(args, command="length"), args.raw_texts, to=args.to, training_length=args.training_length,
                  n_sequences=args.sequences, bins=args.bins, n_boot=args.boot)
     print(res.text())
     if args.json:

@@ -38,7 +38,7 @@ def check(args) -> None:
 def run(args) -> int:
     from ..pipeline import scan as do_scan
 
-    subject = c.load_subject(args)
+    subject = c.load_subject(args, command="scan")
     result = do_scan(subject, args.raw_texts, max_tokens=args.max_tokens, n_boot=args.boot, shift=not args.no_shift,
                      induction=not args.no_induction)
     print(result.text())

@@ -64,11 +64,22 @@ class BandsResult(Result):
         fmt = lambda ps: (f"pairs {ps[0]['pair']}–{ps[-1]['pair']}, wavelengths "   # noqa: E731
                           f"{min(p['wavelength'] for p in ps):.3g}–{max(p['wavelength'] for p in ps):.3g} tokens"
                           if ps else "—")
-        return [f"RoPE bands ({len(self.pairs)} pairs per head, {self.layout} layout; energy = mean squared pair "
-                "contribution to q·k):",
-                f"  high band ({fmt(hi)}): {keys.compact(s['high']) or 'no head'}",
-                f"  low band ({fmt(lo)}): {keys.compact(s['low']) or 'no head'}",
-                f"  spread: {keys.compact(s['spread']) or 'no head'}"]
+        out = [f"RoPE bands ({len(self.pairs)} pairs per head, {self.layout} layout; energy = mean squared pair "
+               "contribution to q·k):"]
+        for name, what in (("high", f"high band ({fmt(hi)})"), ("low", f"low band ({fmt(lo)})"),
+                           ("spread", "spread")):
+            ks = list(s[name])
+            if not ks:
+                out.append(f"  {what}: no head")
+                continue
+            # a short list on the line itself; a long one (hundreds of heads) wrapped, a layer never split
+            lines = keys.compact_lines(ks)
+            if len(lines) == 1 and len(lines[0]) + len(what) < 90:
+                out.append(f"  {what}: {lines[0].strip()}")
+            else:
+                out.append(f"  {what}: {len(ks)} heads")
+                out.extend(lines)
+        return out
 
     def text(self) -> str:
         return "\n".join(self.summary_lines() + [f"notice: {n}" for n in self.notes] + [f"note: {self.caution}"])

@@ -12,6 +12,16 @@ def esm(name: str) -> str:
     return (HERE / "_shared.js").read_text(encoding="utf-8") + "\n" + (HERE / name).read_text(encoding="utf-8")
 
 
+def script(*names: str) -> str:
+    """The shared helpers and the named modules as one classic script (their ``export`` lines dropped), for a
+    page that runs them directly (the standalone report)."""
+    parts = [(HERE / "_shared.js").read_text(encoding="utf-8")]
+    for name in names:
+        text = (HERE / name).read_text(encoding="utf-8")
+        parts.append("\n".join(line for line in text.splitlines() if not line.startswith("export default")))
+    return "\n".join(parts)
+
+
 def css(name: str) -> str:
     return (HERE / "_shared.css").read_text(encoding="utf-8") + "\n" + (HERE / name).read_text(encoding="utf-8")
 

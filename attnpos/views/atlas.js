@@ -137,12 +137,16 @@ function atlasRender({ model, el }) {
     cellNodes.forEach((g, i) => { const k = keeps(i); g.classList.toggle("ap-out", !k); if (k) n++; });
     shown.textContent = n === data.n ? "showing all " + data.n + " heads" : "showing " + n + " of " + data.n + " heads";
     root.querySelectorAll(".ap-legend-item").forEach((b) => b.classList.toggle("ap-off", !!f.roles && !f.roles.includes(b.dataset.role)));
-    if (layerLo && document.activeElement !== layerLo) layerLo.value = f.layers ? f.layers[0] : "";
-    if (layerHi && document.activeElement !== layerHi) layerHi.value = f.layers ? f.layers[1] : "";
-    if (strengthIn && document.activeElement !== strengthIn) strengthIn.value = apFinite(f.strength) ? f.strength : 0;
+    // the inputs show a filter set elsewhere (Python's atlas.filter(), "show all"), never overwrite what is typed
+    if (!typing && layerLo) {
+      layerLo.value = f.layers ? f.layers[0] : "";
+      layerHi.value = f.layers ? f.layers[1] : "";
+      strengthIn.value = apFinite(f.strength) ? f.strength : 0;
+    }
+    typing = false;
     if (strengthOut) strengthOut.textContent = apFinite(f.strength) ? "\u2265 " + f.strength.toFixed(2) : "any";
   }
-  let layerLo = null, layerHi = null, strengthIn = null, strengthOut = null;
+  let layerLo = null, layerHi = null, strengthIn = null, strengthOut = null, typing = false;
   function filterBar() {
     const bar = apEl("div", "ap-filters");
     const layers = Array.from(data.layerOf);
@@ -157,7 +161,9 @@ function atlasRender({ model, el }) {
       const f = filters();
       const a = layerLo.value === "" ? lmin : parseInt(layerLo.value, 10), b = layerHi.value === "" ? lmax : parseInt(layerHi.value, 10);
       if (a <= lmin && b >= lmax) delete f.layers; else f.layers = [Math.min(a, b), Math.max(a, b)];
-      setFilters(f);
+      typing = true;
+      setFilters(f);          // the change event runs now (synchronously), while typing is set
+      typing = false;
     };
     layerLo.addEventListener("change", onLayers); layerHi.addEventListener("change", onLayers);
     strengthIn = apEl("input", "ap-strength"); strengthIn.type = "range"; strengthIn.min = 0; strengthIn.max = 1; strengthIn.step = 0.05;
@@ -166,7 +172,9 @@ function atlasRender({ model, el }) {
     strengthIn.addEventListener("input", () => {
       const f = filters(); const v = parseFloat(strengthIn.value);
       if (v > 0) f.strength = v; else delete f.strength;
-      setFilters(f);
+      typing = true;
+      setFilters(f);          // the change event runs now (synchronously), while typing is set
+      typing = false;
     });
     const clear = apEl("button", "ap-clear", "show all");
     clear.type = "button";

@@ -329,7 +329,8 @@ function cardRender({ model, el }) {
     root.appendChild(cols);
     root.appendChild(apEl("h4", null, "Findings"));
     root.appendChild(findingsList());
-    root.appendChild(apCaution(model.get("caution")));
+    // an empty caution: the page around the card shows it once already (the report)
+    if (model.get("caution")) root.appendChild(apCaution(model.get("caution")));
   }
 
   draw();

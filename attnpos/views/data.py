@@ -31,16 +31,17 @@ SPARK_POINTS = 24
 STATUS_ORDER = ("open", "supported", "ruled-out")
 
 
-# The overview must fit one 1400 × 900 screen for models up to ~40 layers × 40 heads: the grid gets at most this
-# many pixels, and cells shrink (sparkline first, then the written code stays) to fit.
-GRID_MAX_WIDTH = 1240
+# The overview must fit one 1400 × 900 screen (inside JupyterLab, beside its file browser) for models up to about
+# 40 layers × 40 heads: the grid gets at most this many pixels, and cells shrink to fit (the sparkline goes first,
+# the written role code stays).
+GRID_MAX_WIDTH = 980
 GRID_MAX_HEIGHT = 640
 
 
 def atlas_layout(n_cols: int, n_rows: int = 0) -> dict:
     """Cell geometry shared by the widget (JS), the static SVG and the pictures: roomy cells with the role's short
     word and a sparkline for small models; small marks with the role's code for big ones, so that the whole grid
-    fits about 1240 × 640 pixels (one screen with the legend and the filters around it)."""
+    fits about GRID_MAX_WIDTH × GRID_MAX_HEIGHT pixels (one screen with the legend and the filters around it)."""
     if n_cols <= 12:
         cw, ch, label = 66, 44, "short"
     elif n_cols <= 16:
@@ -190,10 +191,13 @@ def texts_with_map(scan, key: str) -> list[int]:
     return [i for i in range(len(scan.texts)) if scan.weight_map(i, layer, head, stack) is not None]
 
 
-def head_info(scan, key: str) -> dict:
-    """The head table row of one head as JSON-safe numbers (None = missing) plus its profile arrays."""
-    i = head_index(scan, key)
-    r = scan.heads.reset_index(drop=True).iloc[i]
+def head_info(scan, key: str, row: int | None = None, table: pd.DataFrame | None = None) -> dict:
+    """The head table row of one head as JSON-safe numbers (None = missing) plus its profile arrays.
+
+    ``row`` (the head's index in the table) and ``table`` (``scan.heads.reset_index(drop=True)``) spare the look-up
+    when every head is wanted."""
+    i = head_index(scan, key) if row is None else row
+    r = (scan.heads.reset_index(drop=True) if table is None else table).iloc[i]
     info: dict[str, Any] = {"key": key, "stack": r["stack"], "layer": int(r["layer"]), "head": int(r["head"]),
                             "role": r["role"] if isinstance(r["role"], str) else None,
                             "tags": tags_of(r["tags"]), "evidence": text_of(r["evidence"]),
@@ -408,3 +412,63 @@ def findings_summary(rows: list[dict], path: str | None = None) -> tuple[str, li
         body = r["body"] if len(r["body"]) <= 160 else r["body"][:157] + "…"
         lines.append(f"{r['target']} · {r['status']}{' · stale' if r['stale'] else ''}: {body}")
     return f"Findings ({len(rows)})", lines
+
+
+# ------------------------------------------------------------------ the report's cards of every head
+def json_key(v) -> str:
+    import json as _json
+    return _json.dumps(v, ensure_ascii=False)
+
+
+def all_cards_payload(scan, shared: bool = False) -> dict:
+    """What the standalone report needs to draw the card of *any* head when it is clicked (drawn in the page by
+    the card widget's own ES module, so the report's card and the notebook's are one renderer): per head the
+    numbers of :func:`head_info` (float32, base64), its words, and its profile quantised to uint8 per head (0..254
+    between the head's own low and high, 255 missing; a few hundred bytes a head, so a 32 × 32 model's report stays
+    under 1 MB). Weight maps are not included: the notable heads' static cards carry them."""
+    import base64
+    import json
+
+    t = scan.heads.reset_index(drop=True)
+    n = len(t)
+    fields = list(ATLAS_FIELDS) + ["intercept"]
+    numbers = np.full((n, len(fields)), np.nan, dtype=np.float32)
+    words = {k: [] for k in ("keys", "roles", "tags", "evidence", "shift_kind", "shift_verdict", "shift_how",
+                             "anchor_like")}
+    dist = np.zeros(0)
+    codes, lows, spans = [], np.zeros(n, np.float32), np.zeros(n, np.float32)
+    for i in range(n):
+        key = head_key(t["stack"].iloc[i], t["layer"].iloc[i], t["head"].iloc[i])
+        h = head_info(scan, key, row=i, table=t)
+        info = h["info"]
+        for k, f in enumerate(fields):
+            v = info.get(f)
+            numbers[i, k] = np.nan if v is None else v
+        words["keys"].append(key)
+        words["roles"].append(info["role"] or "")
+        words["tags"].append(list(info["tags"]))
+        words["evidence"].append(info["evidence"])
+        for w in ("shift_kind", "shift_verdict", "shift_how"):
+            words[w].append(info.get(w) or "")
+        words["anchor_like"].append(bool(info["anchor_like"]))
+        dist = h["distance"]
+        arr = np.stack([h["value"], h["low"], h["high"]]) if len(dist) else np.zeros((3, 0))
+        fin = arr[np.isfinite(arr)]
+        lo, hi = (float(fin.min()), float(fin.max())) if len(fin) else (0.0, 0.0)
+        span = hi - lo if hi > lo else 1.0
+        q = np.where(np.isfinite(arr), np.round((arr - lo) / span * 254), 255).astype(np.uint8)
+        codes.append(q)
+        lows[i], spans[i] = lo, span
+    nb = len(dist)
+    prof = np.stack(codes) if n and nb else np.zeros((n, 3, 0), np.uint8)
+    b64 = lambda a: base64.b64encode(np.ascontiguousarray(a).tobytes()).decode("ascii")   # noqa: E731
+    if shared:
+        # words that repeat from head to head (roles, tags, the shift test's wording) as an index into one list
+        # of distinct values: ``words["values"][words[name][i]]``
+        values: dict[str, int] = {}
+        for name in ("roles", "tags", "shift_kind", "shift_verdict", "shift_how"):
+            words[name] = [values.setdefault(json_key(v), len(values)) for v in words[name]]
+        words["values"] = [json.loads(v) for v in values]
+    return {"fields": fields, "n": n, "nb": nb, "distance": [float(x) for x in dist],
+            "numbers": b64(numbers.astype("<f4")), "profile": b64(prof.astype(np.uint8)),
+            "profile_low": b64(lows.astype("<f4")), "profile_span": b64(spans.astype("<f4")), **words}

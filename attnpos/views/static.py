@@ -81,8 +81,15 @@ def _tooltip(data: dict, i: int) -> str:
     return "\n".join(lines)
 
 
+def head_anchor(key: str) -> str:
+    """The fragment id of a head in the report (``L3.H2`` → ``head-L3-H2``)."""
+    return "head-" + key.replace(":", "-").replace(".", "-")
+
+
 def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None,
-              link_cards: set | None = None) -> str:
+              link_cards: set | None = None, link_all: bool = False) -> str:
+    """The atlas as SVG. ``link_cards``: heads whose cell links to their static card (``#card-…``);
+    ``link_all``: every cell links to the head's own anchor (``#head-…``: the report draws that head's card)."""
     marks = marks or {}
     lay = data["layout"]
     cw, ch, gap, left, top = lay["cw"], lay["ch"], lay["gap"], lay["left"], lay["top"]
@@ -92,6 +99,10 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
     pal = role_palette()
     out = [f'<svg xmlns="http://www.w3.org/2000/svg" class="apx-atlas" width="{W}" height="{H}" '
            f'viewBox="0 0 {W} {H}" role="img" aria-label="atlas of {len(data["keys"])} heads">']
+    fs = 11 if lay["label"] == "short" else 9.5
+    out.append("<style>.apx-cell text{font-size:%spx;font-weight:600}" % fs + "".join(
+        f".apx-r{k}>rect{{fill:{q['fill']};stroke:{q['colour']};stroke-width:1}}.apx-r{k}>.apx-strip{{fill:{q['colour']};"
+        f"stroke:none}}.apx-r{k}>text{{fill:{q['ink']}}}" for k, q in enumerate(pal)) + "</style>")
     step = 1 if n_cols <= 16 else 4
     for c in range(0, n_cols, step):
         x = left + c * (cw + gap) + cw / 2
@@ -114,15 +125,15 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
         sel = key == selected
         # a big model's report stays small: one line of hover text per head (its card has the rest)
         tip = _tooltip(data, i) if len(data["keys"]) <= 256 else _tooltip(data, i).split("\n")[0]
-        parts = [f'<g class="apx-cell" data-key="{esc_plain(key)}" transform="translate({x},{y})">',
-                 f'<title>{esc_plain(tip)}</title>',
-                 f'<rect width="{cw}" height="{ch}" rx="3" fill="{p["fill"]}" '
-                 f'stroke="{INK if sel else p["colour"]}" stroke-width="{2.5 if sel else 1}"/>',
-                 f'<rect width="{cw}" height="3" fill="{p["colour"]}"/>']
+        # colours come from the role's class (one <style> rule per role above), so a big atlas stays small
+        rid = int(data["roles"][i])
+        box = (f'<rect width="{cw}" height="{ch}" rx="3" style="stroke:{INK};stroke-width:2.5"/>' if sel
+               else f'<rect width="{cw}" height="{ch}" rx="3"/>')
+        parts = [f'<g class="apx-cell apx-r{rid}" data-key="{esc_plain(key)}" transform="translate({x},{y})">',
+                 f'<title>{esc_plain(tip)}</title>', box, f'<rect class="apx-strip" width="{cw}" height="3"/>']
         fs = 11 if lay["label"] == "short" else 9.5
         ty = 3 + fs if lay.get("spark", True) else (ch + 3) / 2 + fs * 0.36     # centred in a small mark
-        parts.append(f'<text x="3" y="{ty:.1f}" font-size="{fs}" fill="{p["ink"]}" '
-                     f'font-weight="600">{esc_plain(label)}</text>')
+        parts.append(f'<text x="3" y="{ty:.1f}">{esc_plain(label)}</text>')
         if n_sp and lay.get("spark", True):
             y0, y1 = 5 + fs + 2, ch - 3
             d, pen, last = [], False, (0.0, 0.0)
@@ -151,7 +162,9 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
                              f'fill="#FBFAF7" stroke="{INK}" stroke-dasharray="2,1.5"/>')
         parts.append("</g>")
         g = "".join(parts)
-        if link_cards and key in link_cards:
+        if link_all:
+            g = f'<a href="#{esc_plain(head_anchor(key))}" data-head="{esc_plain(key)}">{g}</a>'
+        elif link_cards and key in link_cards:
             g = f'<a href="#card-{esc_plain(key.replace(":", "-").replace(".", "-"))}">{g}</a>'
         out.append(g)
     out.append("</svg>")
@@ -159,7 +172,7 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
 
 
 def atlas_html(scan, marks: dict | None = None, selected: str | None = None, link_cards: set | None = None,
-               with_style: bool = True, caution: bool = True, heading: bool = True) -> str:
+               with_style: bool = True, caution: bool = True, heading: bool = True, link_all: bool = False) -> str:
     data = _data.atlas_data(scan)
     m = scan.model or {}
     counts = scan.heads["role"].value_counts().to_dict() if len(scan.heads) else {}
@@ -171,8 +184,8 @@ def atlas_html(scan, marks: dict | None = None, selected: str | None = None, lin
            if data["layout"]["spark"] else "Each mark: one head, role colour and written role code; rows are layers")
     body = (f'<div class="apx apx-atlas-view">{"<h3>Atlas — role of every head</h3>" if heading else ""}'
             f'<p class="apx-sub">{sub}. {how}; hover for its evidence'
-            f'{", click for its card" if link_cards else ""}.</p>'
-            f'{legend_html(counts, data["layout"])}{atlas_svg(data, marks, selected, link_cards)}'
+            f'{", click for its card" if link_cards or link_all else ""}.</p>'
+            f'{legend_html(counts, data["layout"])}{atlas_svg(data, marks, selected, link_cards, link_all)}'
             f'{caution_html(scan.caution) if caution else ""}</div>')
     return (style_tag() if with_style else "") + body
 
@@ -364,13 +377,13 @@ def role_badge(role: Any) -> str:
 
 
 def card_html(scan, key: str, text: int | None = None, findings: list[dict] | None = None,
-              with_style: bool = True, anchor: bool = False, caution: bool = True) -> str:
+              with_style: bool = True, anchor: bool = False, caution: bool = True, map_side: int = 256) -> str:
     h = _data.head_info(scan, key)
     info = h["info"]
     avail = _data.texts_with_map(scan, key)
     if text is None or text not in avail:
         text = avail[0] if avail else None
-    mp = _data.map_payload(scan, key, text) if text is not None else None
+    mp = _data.map_payload(scan, key, text, max_side=map_side) if text is not None else None
     tname = scan.texts[text].get("name", f"text {text}") if text is not None else ""
     tags = ", ".join(info["tags"])
     aid = f' id="card-{esc_plain(key.replace(":", "-").replace(".", "-"))}"' if anchor else ""

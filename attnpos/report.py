@@ -25,7 +25,6 @@ from .core.keys import head_key
 from .errors import AttnposError
 from .files import write_atomic
 from .core.protocol import json_safe
-from .views._base import script, css
 from .views.common import esc, esc_plain, fmt, part_colours, role_palette, shift_how
 
 REPORT_CSS = """
@@ -131,7 +130,7 @@ def _cards_script(scan, rows: list[dict]) -> tuple[str, str]:
     payload["findings"] = rows
     # "<" written as its JSON escape: no user string can close the block or open a tag
     block = json.dumps(json_safe(payload), ensure_ascii=False, separators=(",", ":")).replace("<", "\\u003c")
-    code = script("card.js", "report_cards.js")
+    code = static.widget_script("card.js", "report_cards.js")
     digest = base64.b64encode(hashlib.sha256(code.encode("utf-8")).digest()).decode("ascii")
     return (f"<script type='application/json' id='rp-heads'>{block}</script><script>{code}</script>",
             f"'sha256-{digest}'")
@@ -172,7 +171,7 @@ def report_html(scan, findings=None, title: str | None = None, per_role: int = 2
         f"<meta http-equiv='Content-Security-Policy' content=\"{CSP.format(hash=digest)}\">",
         "<meta name='viewport' content='width=device-width, initial-scale=1'>",
         f"<meta name='generator' content='attnpos {esc_plain((scan.versions or {}).get('attnpos', ''))}'>",
-        f"<title>{esc_plain(title)}</title><style>{static.STYLE}{css('card.css')}{REPORT_CSS}</style></head><body><main>",
+        f"<title>{esc_plain(title)}</title><style>{static.STYLE}{static.widget_css('card.css')}{REPORT_CSS}</style></head><body><main>",
         f"<header class='rp-head'><h1>{esc_plain(title)}</h1><p>{len(scan.heads)} heads · {esc_plain(summary)} · "
         f"generated {esc_plain(generated)}</p></header>",
         f"<div class='rp-caution'><b>Caution.</b> {esc_plain(scan.caution)}</div>",

@@ -42,6 +42,18 @@ STYLE = """
 """
 
 
+def widget_script(*names: str) -> str:
+    """The widgets' ES modules as one classic script, for a page that runs them itself (the standalone report)."""
+    from ._base import script
+    return script(*names)
+
+
+def widget_css(name: str) -> str:
+    """A widget's CSS (with the shared rules), for a page that shows its markup outside a notebook."""
+    from ._base import css
+    return css(name)
+
+
 def style_tag() -> str:
     return f"<style>{STYLE}</style>"
 

@@ -508,3 +508,24 @@ def test_notable_heads_pick_the_strongest_per_role():
         best = prev.loc[pd.to_numeric(prev["mass_previous"]).fillna(-1).idxmax()]
         assert head_key(best["stack"], best["layer"], best["head"]) in keys
     assert len(keys) == len(set(keys)) == len(set(t["role"]))
+
+
+def test_a_folder_of_figures_for_a_paper(tmp_path):
+    from attnpos.views import figures
+
+    scan = synthetic_scan(3, 3, seed=20)
+    paths = figures.write_figures(scan, tmp_path / "figs")
+    names = {p.name for p in paths}
+    assert {"atlas.png", "atlas.svg", "atlas.pdf", "curves.pdf"} <= names
+    cards = {n for n in names if n.startswith("card-") and n.endswith(".png")}
+    assert len(cards) == len(_data.notable_heads(scan))
+    assert all(p.stat().st_size > 1000 for p in paths)
+
+
+def test_scan_refuses_a_figures_path_that_is_a_file(tmp_path, capsys):
+    from attnpos.cli import main as cli_main
+
+    f = tmp_path / "not-a-folder"
+    f.write_text("x")
+    assert cli_main(["scan", "ref:rope", "--figures", str(f)]) == 2
+    assert "--figures takes a folder" in capsys.readouterr().err

@@ -387,6 +387,27 @@ def _training_line(ax, tl) -> None:
                 color=INK, va="top", ha="left")
 
 
+# ------------------------------------------------------------------ a folder of figures
+def write_figures(scan, folder, formats: tuple[str, ...] = FORMATS, heads: list[str] | None = None,
+                  marks: dict | None = None) -> list[Path]:
+    """Write the atlas, a card per head (default: the notable heads, the strongest few per role) and the curves
+    (if measured) into ``folder`` as ``atlas.pdf``, ``card-L0-H1.png``, … in each of ``formats``. Returns the
+    paths written."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    keys = heads if heads is not None else _data.notable_heads(scan)
+    figs = [("atlas", atlas_figure(scan, marks=marks))]
+    figs += [(f"card-{k.replace(':', '-').replace('.', '-')}", card_figure(scan, k)) for k in keys]
+    curves = curves_figure(scan)
+    if curves is not None:
+        figs.append(("curves", curves))
+    out = []
+    for name, fig in figs:
+        for kind in formats:
+            out.append(save(fig, folder / f"{name}.{kind}"))
+    return out
+
+
 # ------------------------------------------------------------------ several at once
 def stack(figs: list, gap: int = 12):
     """Several figures one above the other as one PNG (for the survey's picture): rendered, then joined."""
@@ -422,4 +443,5 @@ def _rgb_of(fig) -> np.ndarray:
     return np.asarray(canvas.buffer_rgba())[..., :3].copy()
 
 
-__all__ = ["atlas_figure", "card_figure", "curves_figure", "render", "png_bytes", "svg_text", "save", "stack"]
+__all__ = ["atlas_figure", "card_figure", "curves_figure", "render", "png_bytes", "svg_text", "save", "stack",
+           "write_figures"]

@@ -41,6 +41,10 @@ section>h2{font-size:15px;margin:0 0 8px;font-weight:700;border-bottom:2px solid
 .rp-facts th{color:#5A5F66;font-weight:600}
 .rp-cards .apx{margin-bottom:12px}
 .rp-lazy{margin-top:10px}
+.apx-cell.apx-out{opacity:.15}
+.apx-legend span.apx-off{opacity:.4;text-decoration:line-through}
+.apx-filters{display:flex;flex-wrap:wrap;gap:6px;align-items:center;font-size:12px;margin:0 0 6px}
+.apx-filters .apx-sub{margin:0}
 tr:target td{background:#F1E3C8}
 details.rp-table{font-size:12px}
 details.rp-table table{border-collapse:collapse;background:#FBFAF7}

@@ -461,6 +461,7 @@ def all_cards_payload(scan, shared: bool = False) -> dict:
         lows[i], spans[i] = lo, span
     nb = len(dist)
     prof = np.stack(codes) if n and nb else np.zeros((n, 3, 0), np.uint8)
+    ad = atlas_data(scan)            # the filters' numbers, as the atlas widget gets them (atlas_keep's rule)
     b64 = lambda a: base64.b64encode(np.ascontiguousarray(a).tobytes()).decode("ascii")   # noqa: E731
     if shared:
         # words that repeat from head to head (roles, tags, the shift test's wording) as an index into one list
@@ -471,4 +472,5 @@ def all_cards_payload(scan, shared: bool = False) -> dict:
         words["values"] = [json.loads(v) for v in values]
     return {"fields": fields, "n": n, "nb": nb, "distance": [float(x) for x in dist],
             "numbers": b64(numbers.astype("<f4")), "profile": b64(prof.astype(np.uint8)),
-            "profile_low": b64(lows.astype("<f4")), "profile_span": b64(spans.astype("<f4")), **words}
+            "profile_low": b64(lows.astype("<f4")), "profile_span": b64(spans.astype("<f4")),
+            "strength": b64(ad["strength"].astype("<f4")), "layer": [int(x) for x in ad["layers"]], **words}

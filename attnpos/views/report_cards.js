@@ -60,6 +60,60 @@
       panel.scrollIntoView({ block: "nearest" });
     }
   });
+  // ---- filters over the static atlas: role (click the legend), layer range, strength (the role's own strength
+  // column); the rule of attnpos.views.data.atlas_keep, on the numbers the atlas widget gets
+  const strength = new Float32Array(b64(D.strength));
+  const view = document.querySelector("#atlas .apx-atlas-view");
+  if (view) {
+    const cells = new Map([...view.querySelectorAll("g.apx-cell")].map((g) => [g.getAttribute("data-key"), g]));
+    const f = { roles: null, lo: null, hi: null, strength: 0 };
+    const shown = apEl("span", "apx-sub");
+    const paint = () => {
+      let n = 0;
+      D.keys.forEach((k, i) => {
+        const role = word("roles", i);
+        let keep = !f.roles || f.roles.has(role);
+        if (f.lo !== null && D.layer[i] < f.lo) keep = false;
+        if (f.hi !== null && D.layer[i] > f.hi) keep = false;
+        if (f.strength > 0 && Number.isFinite(strength[i]) && strength[i] < f.strength) keep = false;
+        const g = cells.get(k);
+        if (g) g.classList.toggle("apx-out", !keep);
+        if (keep) n++;
+      });
+      shown.textContent = n === D.keys.length ? "showing all " + n + " heads" : "showing " + n + " of " + D.keys.length + " heads";
+      view.querySelectorAll(".apx-legend span[data-role]").forEach((s) => s.classList.toggle("apx-off", !!f.roles && !f.roles.has(s.dataset.role)));
+    };
+    const allRoles = D.palette.slice(1).map((p) => p.role);
+    view.querySelectorAll(".apx-legend span[data-role]").forEach((s) => {
+      s.style.cursor = "pointer";
+      s.title = "show or hide these heads";
+      s.addEventListener("click", () => {
+        const r = s.dataset.role;
+        const set = f.roles ? new Set(f.roles) : new Set(allRoles);
+        if (set.has(r)) set.delete(r); else set.add(r);
+        f.roles = set.size === allRoles.length ? null : set;
+        paint();
+      });
+    });
+    const bar = apEl("div", "apx-filters");
+    const num = (label) => { const e = apEl("input"); e.type = "number"; e.step = 1; e.placeholder = label; e.setAttribute("aria-label", label); e.style.width = "5em"; return e; };
+    const lo = num("first"), hi = num("last");
+    const onLayers = () => { f.lo = lo.value === "" ? null : parseInt(lo.value, 10); f.hi = hi.value === "" ? null : parseInt(hi.value, 10); paint(); };
+    lo.addEventListener("change", onLayers); hi.addEventListener("change", onLayers);
+    const st = apEl("input"); st.type = "range"; st.min = 0; st.max = 1; st.step = 0.05; st.value = 0;
+    st.setAttribute("aria-label", "least strength of the role");
+    const stOut = apEl("span", "apx-sub", "any");
+    st.addEventListener("input", () => { f.strength = parseFloat(st.value); stOut.textContent = f.strength > 0 ? "\u2265 " + f.strength.toFixed(2) : "any"; paint(); });
+    const clear = apEl("button", null, "show all");
+    clear.type = "button";
+    clear.addEventListener("click", () => { f.roles = null; f.lo = f.hi = null; f.strength = 0; lo.value = hi.value = ""; st.value = 0; stOut.textContent = "any"; paint(); });
+    for (const e of [apEl("span", "apx-sub", "filter: layers"), lo, apEl("span", "apx-sub", "to"), hi,
+                     apEl("span", "apx-sub", "\u00b7 role strength"), st, stOut, clear, shown]) bar.appendChild(e);
+    const legend = view.querySelector(".apx-legend");
+    if (legend) legend.after(bar);
+    paint();
+  }
+
   const start = decodeURIComponent(location.hash.slice(1));
   const first = D.keys.find((k) => "head-" + k.replace(/[:.]/g, "-") === start);
   if (first) show(first);

@@ -70,7 +70,7 @@ def legend_html(counts: dict | None = None, layout: dict | None = None) -> str:
     for p in role_palette()[1:]:
         r = p["role"]
         c = "" if counts is None else f" ({counts.get(r, 0)})"
-        parts.append(f'<span><i class="apx-sw" style="background:{p["fill"]};border-color:{p["colour"]}"></i>'
+        parts.append(f'<span data-role="{esc_plain(r)}"><i class="apx-sw" style="background:{p["fill"]};border-color:{p["colour"]}"></i>'
                      f'<b>{esc(_data.cell_label(p, lay))}</b> = {r}{c}</span>')
     return f'<div class="apx-legend">{"".join(parts)}</div>'
 

@@ -83,6 +83,16 @@ def test_the_report_overview_fits_one_screen_and_opens_any_head(browser, artifac
         assert box["width"] <= SCREEN["width"] and box["height"] <= SCREEN["height"], box
         shot = page.screenshot(path=str(artifacts / f"overview-report-{layers}x{heads}.png"))
         assert _spread(shot) > 0.1
+        # the report's filters: a role from the legend, a layer range
+        page.locator("#atlas .apx-legend span[data-role='previous-token']").click()
+        n_prev = int((scan.heads["role"] == "previous-token").sum())
+        assert page.locator("#atlas g.apx-cell.apx-out").count() == n_prev
+        page.locator("#atlas .apx-filters button").click()
+        page.locator("#atlas .apx-filters input[type=number]").first.fill("1")
+        page.locator("#atlas .apx-filters input[type=number]").nth(1).fill("2")
+        page.locator("#atlas .apx-filters input[type=number]").nth(1).dispatch_event("change")
+        assert page.locator("#atlas g.apx-cell:not(.apx-out)").count() == 2 * heads
+        page.locator("#atlas .apx-filters button").click()
         # a head without a static card: clicking it draws its card in the page (the report's own script)
         last = f"L{layers - 1}.H{heads - 1}"
         page.locator(f"a[data-head='{last}']").click()

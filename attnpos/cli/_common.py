@@ -159,9 +159,7 @@ def scheme_argument(args):
     return s.split(",") if s and "," in s else s
 
 
-def load_subject(args, name: str = "model", command: str | None = None):
-    if command:
-        announce(args, command, name)
+def load_subject(args, name: str = "model"):
     from ..subject import load
 
     return load(getattr(args, name), scheme=scheme_argument(args), allow_pickle=args.allow_pickle,

@@ -43,10 +43,15 @@ def check(args) -> None:
     args.raw_texts = c.read_texts(args)
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "ablate")
+
+
 def run(args) -> int:
     from ..ablation import ablate
 
-    res = ablate(c.load_subject(args, command="ablate"), args.heads, args.raw_texts, how=args.how, together=args.together,
+    res = ablate(c.load_subject(args), args.heads, args.raw_texts, how=args.how, together=args.together,
                  max_tokens=args.max_tokens, n_boot=args.boot)
     print(res.text())
     if args.json:

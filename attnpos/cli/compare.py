@@ -43,6 +43,13 @@ def check(args) -> None:
     args.raw_texts = None if all(s is not None for s in args.sides) else c.read_texts(args)
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    for name, s in zip(("a", "b"), args.sides):
+        if s is None:
+            c.announce(args, "compare", name)
+
+
 def run(args) -> int:
     from ..compare import compare
 
@@ -51,7 +58,6 @@ def run(args) -> int:
         if s is None:
             from ..subject import load
 
-            c.announce(args, "compare", name)
             s = load(getattr(args, name), allow_pickle=args.allow_pickle, trust_remote_code=args.trust_remote_code)
         sides.append(s)
     res = compare(*sides, args.raw_texts, all_heads=args.all, n_boot=args.boot, shift=not args.no_shift,

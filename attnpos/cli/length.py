@@ -36,10 +36,15 @@ def check(args) -> None:
     args.raw_texts = read(args.text) if args.text else None
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "length")
+
+
 def run(args) -> int:
     from ..length import length
 
-    res = length(c.load_subject(args, command="length"), args.raw_texts, to=args.to, training_length=args.training_length,
+    res = length(c.load_subject(args), args.raw_texts, to=args.to, training_length=args.training_length,
                  n_sequences=args.sequences, bins=args.bins, n_boot=args.boot)
     print(res.text())
     if args.json:

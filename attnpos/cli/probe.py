@@ -26,10 +26,15 @@ def check(args) -> None:
     args.raw_texts = c.read_texts(args)
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "probe")
+
+
 def run(args) -> int:
     from ..probes import probe
 
-    res = probe(c.load_subject(args, command="probe"), args.raw_texts, alpha=args.alpha, seed=args.seed, folds=args.folds,
+    res = probe(c.load_subject(args), args.raw_texts, alpha=args.alpha, seed=args.seed, folds=args.folds,
                 untrained=not args.no_untrained, bands=not args.no_bands, max_tokens=args.max_tokens)
     print(res.text())
     if args.json:

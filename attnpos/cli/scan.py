@@ -46,10 +46,15 @@ def check(args) -> None:
         args.store.all()      # a corrupt findings file is reported (and backed up) before the scan, not after
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "scan")
+
+
 def run(args) -> int:
     from ..pipeline import scan as do_scan
 
-    subject = c.load_subject(args, command="scan")
+    subject = c.load_subject(args)
     result = do_scan(subject, args.raw_texts, max_tokens=args.max_tokens, n_boot=args.boot, shift=not args.no_shift,
                      induction=not args.no_induction)
     print(result.text())

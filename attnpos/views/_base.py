@@ -49,13 +49,15 @@ class StaticFallback:
     def to_html(self) -> str:  # pragma: no cover - every view overrides it
         raise NotImplementedError
 
-    def figure(self):  # pragma: no cover - every view overrides it
-        """The view as a matplotlib figure (None when there is nothing to draw)."""
-        raise NotImplementedError
+    def figure(self):
+        """The view as a matplotlib figure (None when there is nothing to draw). A view without one still shows
+        its static HTML in the bundle."""
+        return None
 
-    def summary(self) -> tuple[str, list[str]]:  # pragma: no cover - every view overrides it
-        """A title and a few lines of plain text saying what the view shows."""
-        raise NotImplementedError
+    def summary(self) -> tuple[str, list[str]] | None:
+        """A title and a few lines of plain text saying what the view shows (None: the bundle's HTML is
+        :meth:`to_html`, as before views had pictures)."""
+        return None
 
     def _caution_text(self) -> str:
         scan = getattr(self, "scan", None)
@@ -88,7 +90,10 @@ class StaticFallback:
 
         from .common import esc_plain
 
-        title, lines = self.summary()
+        said = self.summary()
+        if said is None:
+            return {"text/html": self.to_html()}
+        title, lines = said
         caution = self._caution_text()
         png, svg = self._pictures()
         out = {"text/plain": "\n".join([title] + [f"  {x}" for x in lines] + ([f"Caution: {caution}"] if caution else []))}

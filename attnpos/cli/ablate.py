@@ -35,10 +35,10 @@ def check(args) -> None:
         n_layers, n_heads = c.config_shape(found.config)
         for k in parsed:
             if k.stack == keys.MAIN and k.layer is not None and n_layers is not None and k.layer >= n_layers:
-                raise AttnposError(f"--heads names {k}, but {args.model} has {n_layers} layers (L0 … "
+                raise AttnposError(f"{args.model} has no head {k} (--heads): it has {n_layers} layers (L0 … "
                                    f"L{n_layers - 1}).")
             if k.head is not None and n_heads is not None and k.head >= n_heads:
-                raise AttnposError(f"--heads names {k}, but {args.model} has {n_heads} heads per layer (H0 … "
+                raise AttnposError(f"{args.model} has no head {k} (--heads): it has {n_heads} heads per layer (H0 … "
                                    f"H{n_heads - 1}).")
     args.raw_texts = c.read_texts(args)
 

@@ -146,3 +146,22 @@ def test_minilm_within_its_limit(minilm, tmp_path, capsys):
     for k in ("position", "loss", "loss_lo", "loss_hi", "training_length", "heads", "bins", "drift", "summary"):
         assert k in saved
     assert saved["training_length"] == 32
+
+
+def test_the_loss_table_prints_rows_without_intervals():
+    # a length result with losses but no bootstrap intervals (one long sequence) and no binned rows in its file:
+    # the table shows the losses, under a header that does not promise intervals
+    from attnpos.results.length import LengthResult
+
+    pos = list(range(1, 256))
+    loss = [2.0 + 0.01 * p for p in pos]
+    res = LengthResult(model={"name": "m", "architecture": "A", "scheme": "rope", "causal": True}, position=pos,
+                       loss=loss, loss_lo=[None] * len(pos), loss_hi=[None] * len(pos), training_length=128,
+                       training_length_source="given", bins=[], heads=[], drift=None, summary={},
+                       settings={"n_sequences": 1, "to": 256}, notes=[])
+    lines = res.text().splitlines()
+    k = next(i for i, line in enumerate(lines) if line.strip().startswith("positions"))
+    rows = [line for line in lines[k + 1:] if line.strip() and "–" in line.split()[0]]
+    assert "interval" not in lines[k] and "no intervals" in lines[k - 1]
+    assert len(rows) == 16 and float(rows[0].split()[1]) < float(rows[-1].split()[1])
+    assert "beyond training length" in rows[-1]

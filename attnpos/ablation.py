@@ -31,6 +31,7 @@ Command line: ``attnpos ablate ref:rope --heads L0.H1,L2.H0 --json ablation.json
 
 from __future__ import annotations
 
+import contextlib
 import sys
 from typing import Any, Iterable
 
@@ -40,7 +41,7 @@ import torch
 
 from .capture import forward, hooked, next_token_loss
 from .errors import AttnposError
-from .core import keys, settings
+from .core import keys, progress as _progress, settings
 from .results.ablation import CAUTION, COLUMNS, AblationResult  # noqa: F401
 from .subject import AttentionSite, Subject, load
 from .texts import TextUnit, as_raw, prepare
@@ -210,12 +211,8 @@ def ablate(model: Any, heads=None, texts=None, *, how: str = "mean", together: b
     means = {k: (s / max(count[0], 1)).float() for k, s in sums.items()}
 
     groups = [chosen] if together else [[h] for h in chosen]
-    show = progress if progress is not None else (len(groups) > 4 and sys.stderr.isatty())
-    iterator = groups
-    if show:
-        from tqdm.auto import tqdm
-
-        iterator = tqdm(groups, desc=f"ablating {subject.name}", unit="head")
+    show = progress if progress is not None else (len(groups) > 4 and _progress.wanted())
+    iterator = _progress.bar(groups, desc=f"ablating {subject.name}", unit="head", show=show)
     rows = []
     weights = np.asarray(n_tok, dtype=np.float64)
     for group in iterator:

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import contextlib
 import functools
-import sys
 import warnings
 from dataclasses import dataclass, field
 from typing import Any, Iterable, Sequence
@@ -32,6 +31,7 @@ import numpy as np
 import torch
 
 from . import sizes
+from .core import progress as _progress
 from .errors import AttnposError
 from .subject import AttentionSite, Subject
 from .texts import TextUnit, as_raw, prepare
@@ -703,12 +703,9 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
     run = _Run(subject, units, reducers, keep_fn, keep_scores, kind, len(prefix))
     rec = Recording(subject=subject, units=units, capture=chosen, score_kind=kind, position_offset=position_offset,
                     prefix=prefix)
-    show = progress if progress is not None else (len(units) > 3 and sys.stderr.isatty())
-    iterator = range(len(units))
-    if show:
-        from tqdm.auto import tqdm
-
-        iterator = tqdm(iterator, desc=f"recording {subject.name}", unit="text")
+    # a bar for more than a few texts (a terminal or a notebook; core.progress), or when asked for
+    show = progress if progress is not None else (len(units) > 3 and _progress.wanted())
+    iterator = _progress.bar(range(len(units)), desc=f"recording {subject.name}", unit="text", show=show)
     try:
         _ACTIVE.append(run)
         ctx = _registry_path(subject, run) if chosen == "registry" else _weights_path(subject, _ACTIVE)

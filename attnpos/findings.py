@@ -705,6 +705,10 @@ class Findings:
         ``fingerprint`` should be the subject's fingerprint and ``texts_hash`` the hash of the texts the evidence
         came from (a blank string counts as None). A finding without a fingerprint can never be recognised as
         stale, so stamp every finding made on a real subject.
+
+        Adding is idempotent: a finding with the same target, body, fingerprint and texts hash as one in the file
+        is that one (returned as it is, or with the new status), so a notebook cell that adds findings can run
+        again without doubling them.
         """
         parts = parse_target(target)
         body = _check_text(body, "body", optional=False)
@@ -713,7 +717,15 @@ class Findings:
         texts_hash = _stamp(texts_hash, "texts hash")
         author = _check_text(author, "author", optional=True)
 
-        def change(current: list[Finding]) -> tuple[list[Finding], Finding]:
+        def change(current: list[Finding]) -> tuple[list[Finding] | None, Finding]:
+            # the same note on the same target from the same evidence (fingerprint and texts hash) is already
+            # there: a notebook cell run again adds nothing (a new status updates it)
+            for k, f in enumerate(current):
+                if (f.target, f.body, f.fingerprint, f.texts_hash) == (parts["target"], body, fingerprint, texts_hash):
+                    if f.status == status:
+                        return None, f
+                    again = dataclasses.replace(f, status=status, updated=_now())
+                    return current[:k] + [again] + current[k + 1:], again
             taken = {f.id for f in current}
             fid = uuid.uuid4().hex[:12]
             while fid in taken:

@@ -44,6 +44,7 @@ import torch
 
 from .capture import LayerCapture, Reducer
 from . import sizes
+from .core import progress as _progress
 from .core import schemes, settings
 from .errors import AttnposError
 from .results.length import CAUTION, LengthResult  # noqa: F401  (CAUTION: this stage's caution)
@@ -208,7 +209,7 @@ def _default_text(tokenizer, need_tokens: int) -> list[str]:
     return corpus.generate_documents(seed=seed, target_bytes=target)
 
 
-def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES) -> tuple[list, list[str]]:
+def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES, intervals: bool = True) -> tuple[list, list[str]]:
     """Cut the joined texts into at most ``n_sequences`` token sequences of exactly ``to`` tokens."""
     from .texts import TextUnit, display_tokens, template, as_raw
 
@@ -235,7 +236,7 @@ def sequences(subject, texts, to: int, n_sequences: int = SEQUENCES) -> tuple[li
                            "documents.")
     if n < n_sequences:
         notes.append(f"The texts gave {n} sequence{'s' if n > 1 else ''} of {to} tokens (asked for {n_sequences})"
-                     + ("; intervals are wider" if n > 1 else "") + ". Pass longer texts for more.")
+                     + ("; intervals are wider" if n > 1 and intervals else "") + ". Pass longer texts for more.")
     special_ids = set(getattr(tok, "all_special_ids", []) or [])
     units = []
     for k in range(n):
@@ -426,7 +427,8 @@ def _no_loss_note(subject, want_loss: bool) -> str:
 # --------------------------------------------------------------------------------------------------- main
 
 def length(subject, texts=None, *, to: int | None = None, training_length: int | None = None,
-           n_sequences: int = SEQUENCES, bins: int = BINS, n_boot: int = BOOT, seed: int = 0) -> LengthResult:
+           n_sequences: int = SEQUENCES, bins: int = BINS, n_boot: int = BOOT, seed: int = 0,
+           progress: bool | None = None) -> LengthResult:
     """Measure behaviour from position 1 to ``to``, which may exceed the training length.
 
     Args:
@@ -438,6 +440,8 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
         n_sequences: at most this many sequences.
         bins: about this many query-position bins for the per-head curves.
         n_boot: bootstrap resamples (over sequences) for the loss intervals.
+        progress: show a progress bar over the sequences (default: in a terminal or a notebook, see
+            :mod:`attnpos.core.progress`).
 
     Returns a :class:`~attnpos.results.length.LengthResult`.
     """
@@ -449,7 +453,9 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
     L, source = training_length_of(subject, training_length)
     to, notes = resolve_to(subject, to, L)
     sizes.refuse_long_sequence(subject.model.config.to_dict(), to, f"Measuring {subject.name} past its training length")
-    units, snotes = sequences(subject, texts, to, n_sequences)
+    want_loss = subject.causal and not subject.is_encoder_decoder
+    # one notice about intervals, never two that disagree: "wider" only when there will be intervals at all
+    units, snotes = sequences(subject, texts, to, n_sequences, intervals=want_loss and n_boot > 0)
     notes += snotes
     edges = bin_edges(to, L, bins)
     reducers: list[Reducer] = [PositionCurves(edges)]
@@ -458,8 +464,9 @@ def length(subject, texts=None, *, to: int | None = None, training_length: int |
         reducers.append(RangeWeights(L))
     elif L is not None:
         notes.append(f"--to {to} does not go past the training length {L}: nothing to compare beyond it.")
-    want_loss = subject.causal and not subject.is_encoder_decoder
-    rec = record(subject, units=units, reducers=reducers, token_loss=want_loss, progress=False)
+    # every sequence is long (often past the training length): a bar even for a few of them
+    show = _progress.wanted(progress)
+    rec = record(subject, units=units, reducers=reducers, token_loss=want_loss, progress=show)
     loss_tab = loss_table(units, rec.token_loss) if want_loss else None
     summary: dict[str, Any] = {}
     if loss_tab is None:

@@ -19,7 +19,7 @@ import numpy as np
 
 from . import __version__
 from .capture import record
-from .core import settings
+from .core import progress as _progress, settings
 from .errors import AttnposError
 from .induction import induction_scores
 from .reducers import SplitStats, WeightStats
@@ -68,10 +68,16 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
         raise AttnposError("Every text is shorter than 3 tokens (not counting special tokens such as [CLS], [SEP] "
                            "or BOS); attention statistics need longer texts. Pass at least one text of a few words.")
     kept = {i for i in range(min(keep_maps, len(units))) if len(units[i]) <= max_map_tokens}
+    _progress.note(f"scan: recording {len(units)} text windows of {subject.name}", progress)
     rec = record(subject, units=units, reducers=[WeightStats(), SplitStats()], keep=lambda k: k[0] in kept,
                  progress=progress)
+    _progress.note(f"scan: fitting the score split ({n_boot} bootstrap resamples)", progress)
     fit = Split(n_boot=n_boot).fit(rec)
+    if shift:
+        _progress.note("scan: shift test", progress)
     sh = ShiftTest().run(subject, units) if shift else None
+    if induction:
+        _progress.note("scan: induction test", progress)
     ind = induction_scores(subject) if induction else None
     table = head_table(subject, rec.results["weights"], fit, sh, ind)
     info = subject.describe()

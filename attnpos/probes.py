@@ -42,7 +42,7 @@ from typing import Any, Sequence
 import numpy as np
 import torch
 
-from .core import settings
+from .core import progress as _progress, settings
 from .errors import AttnposError
 from .results.probe import CAUTION, ProbeResult  # noqa: F401  (CAUTION: this stage's caution)
 
@@ -263,19 +263,19 @@ def _counting_check(subject, table, table_untrained, layers: list[dict]) -> dict
             "sources": "Haviv et al. 2022; Kazemnejad et al. 2023"}
 
 
-def _record(subject, units, want_weights: bool):
+def _record(subject, units, want_weights: bool, progress: bool | None = None):
     from .capture import record
     from .reducers import WeightStats
 
     reducers = [WeightStats()] if want_weights else []
-    return record(subject, units=units, reducers=reducers, hidden_states=True, progress=False)
+    return record(subject, units=units, reducers=reducers, hidden_states=True, progress=progress)
 
 
 def _probe_layers(X: np.ndarray, pos: np.ndarray, shuf: np.ndarray, groups: np.ndarray, alphas, folds: int,
-                  with_targets: bool = True) -> list[dict]:
+                  with_targets: bool = True, desc: str = "ridge probes", show: bool | None = None) -> list[dict]:
     out = []
     Y = np.stack([pos, np.log1p(pos), shuf], axis=1).astype(np.float64) if with_targets else pos[:, None]
-    for layer in range(X.shape[0]):
+    for layer in _progress.bar(range(X.shape[0]), desc=desc, unit="layer", show=show):
         cv = cross_validated(X[layer], Y, groups, alphas=alphas, folds=folds)
         r = {"layer": layer, "r2": float(cv["r2"][0])}
         if with_targets:
@@ -288,7 +288,7 @@ def _probe_layers(X: np.ndarray, pos: np.ndarray, shuf: np.ndarray, groups: np.n
 
 def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, seed: int = 0, folds: int = FOLDS,
           untrained: bool = True, counting: bool = True, bands: bool = True, max_tokens: int | None = None,
-          heads=None) -> ProbeResult:
+          heads=None, progress: bool | None = None) -> ProbeResult:
     """Fit ridge probes for absolute position on every hidden-state layer of ``subject``.
 
     Args:
@@ -305,6 +305,7 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
             trained on), else its context limit.
         heads: a head table (e.g. ``attnpos.scan(...).heads``) to take the counting heads from; by default they
             are measured here with the same criterion (:mod:`attnpos.roles`) from weight statistics alone.
+        progress: show progress bars (default: in a terminal or a notebook, see :mod:`attnpos.core.progress`).
     """
     from .subject import Subject, load
     from .texts import as_raw, prepare
@@ -326,17 +327,20 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
         raise AttnposError("The probe holds texts out, so it needs at least two texts (or one text long enough to "
                            "be split into windows). Pass more texts with --text.")
     want_counting = counting and subject.causal
-    rec = _record(subject, units, want_counting and heads is None)
+    _progress.note(f"probe: {len(units)} text windows; hidden states of {subject.name}", progress)
+    rec = _record(subject, units, want_counting and heads is None, progress)
     X, pos, shuf, unit_of = _dataset(units, rec.hidden, seed)
     groups = groups_u[unit_of]
-    layers = _probe_layers(X, pos, shuf, groups, alphas, folds)
+    layers = _probe_layers(X, pos, shuf, groups, alphas, folds, desc="ridge probes", show=progress)
     del X
     table_u = None
     if untrained:
+        _progress.note("probe: the same on an untrained copy (the baseline)", progress)
         fresh = untrained_copy(subject, seed=seed)
-        rec_u = _record(fresh, units, want_counting)
+        rec_u = _record(fresh, units, want_counting, progress)
         Xu, _, _, _ = _dataset(units, rec_u.hidden, seed)
-        for r, ru in zip(layers, _probe_layers(Xu, pos, shuf, groups, alphas, folds, with_targets=False)):
+        for r, ru in zip(layers, _probe_layers(Xu, pos, shuf, groups, alphas, folds, with_targets=False,
+                                               desc="ridge probes (untrained copy)", show=progress)):
             r["untrained_r2"] = ru["r2"]
         del Xu
         if want_counting:
@@ -370,6 +374,7 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
     if bands and "rope" in subject.schemes:
         from .bands import rope_bands
 
+        _progress.note("probe: RoPE frequency bands", progress)
         band_info = rope_bands(subject, units=units[: max(2, min(len(units), 8))])
     return ProbeResult(model=subject.describe(), layers=layers, positions=positions, settings=settings,
                        counting=count_info, bands=band_info, notes=notes)

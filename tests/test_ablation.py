@@ -127,9 +127,9 @@ def test_previous_token_head_of_ref_rope_is_needed(capsys):
     s = tiny.reference("rope")
     texts = [p.read_text(encoding="utf-8")[:1500] for p in sorted(attnpos.texts.SAMPLE_DIR.glob("*.txt"))[:3]]
     table = ablate(s, "L0", texts, n_boot=200).table()
-    with capsys.disabled():
-        print("\nref:rope layer 0 mean ablation: " + ", ".join(
-            f"{r.key} {r.delta_loss:+.3f} [{r.delta_loss_lo:+.3f}, {r.delta_loss_hi:+.3f}]" for r in table.itertuples()))
+    # captured (shown with the test's report on failure), never into the progress dots
+    print("ref:rope layer 0 mean ablation: " + ", ".join(
+        f"{r.key} {r.delta_loss:+.3f} [{r.delta_loss_lo:+.3f}, {r.delta_loss_hi:+.3f}]" for r in table.itertuples()))
     top = table.iloc[0]
     assert top["key"] == "L0.H1" and top["delta_loss_lo"] > 0
     assert top["delta_loss"] > 3 * table.iloc[1]["delta_loss"]

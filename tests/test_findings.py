@@ -128,6 +128,21 @@ def test_ids_are_distinct(path: Path) -> None:
     assert len(set(ids)) == 60 == len(store.all())
 
 
+def test_adding_the_same_finding_again_adds_nothing(path: Path) -> None:
+    # a notebook cell that records findings, run three times, leaves them once (demo notebook 01 did 2 → 4 → 6)
+    store = Findings(path)
+    for _ in range(3):
+        a = store.add("L1.H2", "follows distance", status="open", fingerprint="fp", texts_hash="tx")
+        b = store.add("model", "relative everywhere", status="supported", fingerprint="fp", texts_hash="tx")
+    assert [f.id for f in store.all()] == [a.id, b.id]
+    # a new status updates that finding in place; other evidence or another body is another finding
+    c = store.add("L1.H2", "follows distance", status="supported", fingerprint="fp", texts_hash="tx")
+    assert c.id == a.id and store.get(a.id).status == "supported" and len(store.all()) == 2
+    store.add("L1.H2", "follows distance", fingerprint="fp-other", texts_hash="tx")
+    store.add("L1.H2", "follows distance, and the shift test agrees", fingerprint="fp", texts_hash="tx")
+    assert len(store.all()) == 4
+
+
 # ---------------------------------------------------------------------------------------------------------------
 # Validation
 

@@ -113,9 +113,8 @@ def test_alibi_against_sinusoidal_past_training_length(capsys):
         res = length(s, to=to, n_sequences=4, n_boot=100)
         _check_structure(res, to, s)
         out[name] = res.summary["loss_at"]
-    with capsys.disabled():
-        for name, la in out.items():
-            print(f"\n{name}: loss at 1x/2x/4x of {L}: " + ", ".join(f"{k} {v:.3f}" for k, v in la.items()))
+    for name, la in out.items():      # captured (shown with the test's report on failure), never into the dots
+        print(f"{name}: loss at 1x/2x/4x of {L}: " + ", ".join(f"{k} {v:.3f}" for k, v in la.items()))
     for la in out.values():
         assert all(np.isfinite(v) for v in la.values())
     rise = {k: la["4x"] - la["1x"] for k, la in out.items()}
@@ -147,3 +146,22 @@ def test_minilm_within_its_limit(minilm, tmp_path, capsys):
     for k in ("position", "loss", "loss_lo", "loss_hi", "training_length", "heads", "bins", "drift", "summary"):
         assert k in saved
     assert saved["training_length"] == 32
+
+
+def test_the_loss_table_prints_rows_without_intervals():
+    # a length result with losses but no bootstrap intervals (one long sequence) and no binned rows in its file:
+    # the table shows the losses, under a header that does not promise intervals
+    from attnpos.results.length import LengthResult
+
+    pos = list(range(1, 256))
+    loss = [2.0 + 0.01 * p for p in pos]
+    res = LengthResult(model={"name": "m", "architecture": "A", "scheme": "rope", "causal": True}, position=pos,
+                       loss=loss, loss_lo=[None] * len(pos), loss_hi=[None] * len(pos), training_length=128,
+                       training_length_source="given", bins=[], heads=[], drift=None, summary={},
+                       settings={"n_sequences": 1, "to": 256}, notes=[])
+    lines = res.text().splitlines()
+    k = next(i for i, line in enumerate(lines) if line.strip().startswith("positions"))
+    rows = [line for line in lines[k + 1:] if line.strip() and "–" in line.split()[0]]
+    assert "interval" not in lines[k] and "no intervals" in lines[k - 1]
+    assert len(rows) == 16 and float(rows[0].split()[1]) < float(rows[-1].split()[1])
+    assert "beyond training length" in rows[-1]

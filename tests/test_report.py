@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import base64
+import hashlib
 import re
 from html.parser import HTMLParser
 
@@ -20,12 +22,20 @@ class _Doc(HTMLParser):
         super().__init__()
         self.tags: list[tuple[str, dict]] = []
         self.text: list[str] = []
+        self._hidden = 0          # inside <script> or <style>: code, not text a reader sees
 
     def handle_starttag(self, tag, attrs):
         self.tags.append((tag, dict(attrs)))
+        if tag in ("script", "style"):
+            self._hidden += 1
+
+    def handle_endtag(self, tag):
+        if tag in ("script", "style"):
+            self._hidden -= 1
 
     def handle_data(self, data):
-        self.text.append(data)
+        if not self._hidden:
+            self.text.append(data)
 
 
 def parse(html: str) -> _Doc:
@@ -43,7 +53,13 @@ def test_report_is_one_self_contained_file(tmp_path):
     html = out.read_text(encoding="utf-8")
     doc = parse(html)
     tags = [t for t, _ in doc.tags]
-    assert "script" not in tags and "link" not in tags and "iframe" not in tags
+    assert "link" not in tags and "iframe" not in tags
+    # two script elements: the JSON the cards are drawn from (never run) and the report's own script, which the
+    # CSP allows by its SHA-256 only (W3C CSP Level 3, hash-source: base64 of the SHA-256 of the script's text)
+    scripts = [a for t, a in doc.tags if t == "script"]
+    assert [a.get("type") for a in scripts] == ["application/json", None]
+    code = html.split("<script>", 1)[1].split("</script>", 1)[0]
+    digest = base64.b64encode(hashlib.sha256(code.encode("utf-8")).digest()).decode("ascii")
     for t, a in doc.tags:
         for k in ("src", "href"):
             v = a.get(k)
@@ -56,6 +72,9 @@ def test_report_is_one_self_contained_file(tmp_path):
     # policy in a document opened from a file, where no HTTP header exists
     csp = [a for t, a in doc.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
     assert csp and "default-src 'none'" in csp[0]["content"]
+    assert f"script-src 'sha256-{digest}'" in csp[0]["content"] and "unsafe-inline" not in csp[0]["content"].split(
+        "script-src", 1)[1].split(";")[0]
+    assert "src=" not in html.split("<script>", 1)[1].split(">", 1)[0]
 
 
 def test_report_holds_atlas_cards_facts_and_caution(tmp_path):
@@ -69,11 +88,17 @@ def test_report_holds_atlas_cards_facts_and_caution(tmp_path):
     cards = [a["id"] for t, a in doc.tags if a.get("id", "").startswith("card-")]
     roles_present = set(scan.heads["role"])
     assert len(roles_present) <= len(cards) <= 2 * len(roles_present)
-    # atlas cells of carded heads link to their card
-    links = {a["href"] for t, a in doc.tags if t == "a"}
-    assert {"#" + c for c in cards} <= links
+    # every atlas cell is clickable (the report's script draws the head's card); without the script the link lands
+    # on the head's row of the head table
+    links = [a for t, a in doc.tags if t == "a" and a.get("data-head")]
+    assert len(links) == len(scan.heads)
+    ids = {a.get("id") for _, a in doc.tags}
+    assert all(a["href"][1:] in ids for a in links)
     text = " ".join(doc.text)
-    assert CAUTION[:60] in text
+    # the caution once, and each section heading once
+    assert text.count(CAUTION[:60]) == 1
+    for h in ("Atlas", "Findings", "Curves"):
+        assert len(re.findall(rf"<h[23]>{h}\b", html)) == 1, h
     assert scan.model["fingerprint"] in text and scan.texts_hash in text
     for k, v in scan.versions.items():
         assert k in text and v in text
@@ -86,7 +111,10 @@ def test_report_escapes_hostile_tokens_and_text_names(tmp_path):
     doc = parse(html)
     assert not [a for t, a in doc.tags if t == "img" and a.get("src") == "x"]
     assert not [a for _, a in doc.tags if any(k.startswith("on") for k in a)]
-    assert "<script>" not in html
+    assert "<script>alert" not in html and "<img src=x" not in html
+    # the JSON the cards are drawn from holds the hostile strings, with every "<" escaped
+    block = html.split("id='rp-heads'>", 1)[1].split("</script>", 1)[0]
+    assert "<" not in block
     text = "".join(doc.text)
     # HTML escaping (common practice; WHATWG HTML, character references): markup in user text reaches the
     # parser as text, never as tags
@@ -109,6 +137,8 @@ def test_report_lists_findings_with_stale_ones_marked(tmp_path):
     doc = parse(html)
     text = " ".join(doc.text)
     assert "fresh note <b>bold?</b>" in text           # the body is text, not markup
+    block = html.split("id='rp-heads'>", 1)[1].split("</script>", 1)[0]
+    assert "fresh note \\u003cb>bold?\\u003c/b>" in block   # in the cards' JSON, with "<" escaped
     assert "from another checkpoint" in text and "stale" in text
     assert "supported" in text
     # the head with a finding gets a card and a mark in the atlas
@@ -124,7 +154,7 @@ def test_report_survives_missing_numbers_and_a_bare_scan(tmp_path):
     html = report_html(scan)
     text = "".join(parse(html).text)
     assert "—" in text and not re.search(r"\bnan\b", text, re.I)
-    assert "Probe: not measured" in text and "Length: not measured" in text
+    assert "id='curves'" not in html                          # nothing measured: no empty Curves section
     assert "No weight map was kept" in text
     # a scan reloaded from its JSON (no kept maps) still writes
     again = Scan.from_json(synthetic_scan(2, 2, seed=6).to_json())

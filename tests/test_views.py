@@ -281,15 +281,118 @@ def test_static_atlas_writes_role_labels_beside_colours():
     assert ">Pv</text>" in dense or ">Co</text>" in dense          # dense grids write the two-letter code
 
 
-def test_widget_bundle_has_a_static_html_fallback():
+def _png_size(data: bytes) -> tuple[int, int]:
+    # PNG specification (W3C): the 8-byte signature, then the IHDR chunk with width and height as big-endian uint32
+    assert data[:8] == b"\x89PNG\r\n\x1a\n" and data[12:16] == b"IHDR"
+    return int.from_bytes(data[16:20], "big"), int.from_bytes(data[20:24], "big")
+
+
+def test_widget_bundle_carries_pictures_and_words_beside_the_widget():
+    import base64
+
     scan = synthetic_scan(2, 2, seed=15)
     for w in (Atlas(scan), HeadCard(scan), Curves(scan)):
         data, _meta = w._repr_mimebundle_()
         assert "application/vnd.jupyter.widget-view+json" in data
-        assert "<svg" in data["text/html"] or "<img" in data["text/html"]
-        assert "Caution" in data["text/html"]
+        w_, h_ = _png_size(base64.b64decode(data["image/png"]))
+        assert w_ >= 300 and h_ >= 200
+        assert data["image/svg+xml"].lstrip().startswith(("<?xml", "<svg"))
+        # the HTML an untrusted JupyterLab or nbconvert shows: the same picture inline, and the words
+        assert '<img alt="' in data["text/html"] and "data:image/png;base64," + data["image/png"][:40] in data["text/html"]
+        assert "Caution" in data["text/html"] and "Caution" in data["text/markdown"] and "Caution" in data["text/plain"]
+        assert_no_injection(data["text/html"])
+    data, _ = Atlas(scan)._repr_mimebundle_()
+    for role, n in scan.heads["role"].value_counts().items():
+        assert f"{n} {role}" in data["text/plain"]                # the summary counts the roles
     data, _ = Survey(scan, findings=False)._repr_mimebundle_()
-    assert "apx-atlas" in data["text/html"] and "apx-card" in data["text/html"]
+    w_, h_ = _png_size(base64.b64decode(data["image/png"]))    # atlas, card and curves, one above the other
+    assert h_ > 900
+    assert "Head L0.H0" in data["text/plain"]
+
+
+def test_an_empty_view_draws_no_empty_picture():
+    scan = synthetic_scan(2, 2, seed=16, extra=False)
+    data, _ = Curves(scan)._repr_mimebundle_()
+    assert "image/png" not in data and "not measured" in data["text/plain"]
+    with pytest.raises(AttnposError):
+        Curves(scan).save("curves.png")
+
+
+def test_views_save_figures_for_papers(tmp_path):
+    scan = synthetic_scan(3, 4, seed=17)
+    atlas = Atlas(scan)
+    for suffix, magic in ((".png", b"\x89PNG"), (".svg", b"<?xml"), (".pdf", b"%PDF")):
+        for name, view in (("atlas", atlas), ("card", HeadCard(scan, head="L1.H2")), ("curves", Curves(scan))):
+            out = view.save(tmp_path / f"{name}{suffix}")
+            assert out.read_bytes()[:len(magic)] == magic
+    svg = (tmp_path / "atlas.svg").read_text()
+    # every head's role is written in its mark (text stays text in the SVG), so the picture survives greyscale
+    codes = [_common.role_shorts()[r] for r in scan.heads["role"]]
+    assert sum(svg.count(f">{c}<") for c in set(codes)) >= len(codes)
+    with pytest.raises(AttnposError, match=".png, .svg or .pdf"):
+        atlas.save(tmp_path / "atlas.jpeg")
+
+
+def test_the_atlas_filter_keeps_what_it_says():
+    scan = synthetic_scan(6, 5, seed=18)
+    atlas = Atlas(scan)
+    t = scan.heads.reset_index(drop=True)
+    atlas.filter(roles=["previous-token", "local"], layers=(1, 3))
+    want = t["role"].isin(["previous-token", "local"]) & t["layer"].between(1, 3)
+    assert atlas.kept().tolist() == want.tolist()
+    atlas.filter(strength=0.8)
+    strength = [t.loc[i, _rolespec(r).strength] if _rolespec(r) and _rolespec(r).strength else np.nan
+                for i, r in enumerate(t["role"])]
+    assert atlas.kept().tolist() == [not (v < 0.8) for v in strength]      # NaN (not measured) stays
+    assert np.allclose(np.frombuffer(atlas.strength, "<f4"), np.asarray(strength, float), equal_nan=True)
+    atlas.filter()
+    assert atlas.kept().all()
+
+
+def _rolespec(name):
+    from attnpos.core import roles
+    return roles.get(str(name))
+
+
+def _line_of_scan(slope: float):
+    """A synthetic scan whose head L0.H0 has a profile falling by ``slope`` per token (and that slope)."""
+    scan = synthetic_scan(1, 2, seed=19, missing=0.0)
+    d = np.asarray(scan.profile["distance"], float)
+    scan.profile["value"][0] = -slope * np.minimum(d, 40)
+    scan.profile["low"][0] = scan.profile["value"][0] - 0.1
+    scan.profile["high"][0] = scan.profile["value"][0] + 0.1
+    scan.heads.loc[0, "slope"] = slope
+    return scan
+
+
+@pytest.mark.parametrize("slope", [0.05, -0.05])
+def test_the_slope_line_falls_where_the_profile_falls(slope):
+    # the slope convention of attnpos.split: positive when scores fall with distance; the drawn line must agree
+    scan = _line_of_scan(slope)
+    card = HeadCard(scan, head="L0.H0")
+    pts = np.array(card.info["slope_line"])                       # what the widget draws
+    assert len(pts) > 2 and np.sign(pts[-1, 1] - pts[0, 1]) == -np.sign(slope)
+    # the static SVG: x grows with δ, and SVG y grows downwards
+    svg = static.profile_svg(_data.head_info(scan, "L0.H0"))
+    line = re.search(r'class="apx-slope" points="([^"]+)"', svg).group(1).split()
+    (x0, y0), (x1, y1) = [tuple(map(float, p.split(","))) for p in (line[0], line[-1])]
+    assert x1 > x0 and np.sign(y1 - y0) == np.sign(slope)
+    # the picture: matplotlib's line data
+    from attnpos.views import figures
+    fig = figures.card_figure(scan, "L0.H0")
+    (drawn,) = [ln for ax in fig.axes for ln in ax.get_lines() if ln.get_gid() == "slope"]
+    (prof,) = [ln for ax in fig.axes for ln in ax.get_lines() if ln.get_gid() == "profile"]
+    ys, py = drawn.get_ydata(), prof.get_ydata()
+    assert np.sign(ys[-1] - ys[0]) == -np.sign(slope) == np.sign(py[-1] - py[0])
+
+
+def test_a_big_model_fits_the_overview_layout():
+    for layers, heads in ((30, 9), (32, 32)):
+        lay = _data.atlas_layout(heads, layers)
+        width = lay["left"] + heads * (lay["cw"] + lay["gap"])
+        height = lay["top"] + layers * (lay["ch"] + lay["gap"])
+        assert width <= _data.GRID_MAX_WIDTH and height <= _data.GRID_MAX_HEIGHT
+        assert min(lay["cw"], lay["ch"]) >= 12                     # the written role still fits
 
 
 def test_curves_show_what_exists_and_say_not_measured_otherwise():
@@ -320,8 +423,8 @@ def test_nbconvert_html_of_an_executed_notebook_contains_the_static_atlas(tmp_pa
     out = nb.cells[0].outputs[0]["data"]
     assert "application/vnd.jupyter.widget-view+json" in out and "text/html" in out
     html, _ = nbconvert.HTMLExporter().from_notebook_node(nb)
-    assert "apx-atlas" in html and "Atlas — role of every head" in html
-    assert html.count('class="apx-cell"') == 9
+    assert "Atlas — role of every head" in html and '<img alt="Atlas' in html
+    assert "data:image/png;base64," + out["image/png"][:40] in html
     # snapshot(): a plain HTML output that even a kernel-less JupyterLab shows after reopening
     nb.cells = [nbformat.v4.new_code_cell(
         "from attnpos.views import Atlas\nfrom attnpos.views.synthetic import synthetic_scan\n"
@@ -407,3 +510,24 @@ def test_notable_heads_pick_the_strongest_per_role():
         best = prev.loc[pd.to_numeric(prev["mass_previous"]).fillna(-1).idxmax()]
         assert head_key(best["stack"], best["layer"], best["head"]) in keys
     assert len(keys) == len(set(keys)) == len(set(t["role"]))
+
+
+def test_a_folder_of_figures_for_a_paper(tmp_path):
+    from attnpos.views import figures
+
+    scan = synthetic_scan(3, 3, seed=20)
+    paths = figures.write_figures(scan, tmp_path / "figs")
+    names = {p.name for p in paths}
+    assert {"atlas.png", "atlas.svg", "atlas.pdf", "curves.pdf"} <= names
+    cards = {n for n in names if n.startswith("card-") and n.endswith(".png")}
+    assert len(cards) == len(_data.notable_heads(scan))
+    assert all(p.stat().st_size > 1000 for p in paths)
+
+
+def test_scan_refuses_a_figures_path_that_is_a_file(tmp_path, capsys):
+    from attnpos.cli import main as cli_main
+
+    f = tmp_path / "not-a-folder"
+    f.write_text("x")
+    assert cli_main(["scan", "ref:rope", "--figures", str(f)]) == 2
+    assert "--figures takes a folder" in capsys.readouterr().err

@@ -2,7 +2,8 @@
 
 One module per sub-command in this package, each with ``add_arguments(parser)``,
 ``check(args)`` — every check that needs no model: output paths, input files, head keys, numbers, the model folder
-(:mod:`attnpos.locate`) — and ``run(args) -> int``. :func:`main` runs ``check`` before ``run``, so a bad argument is
+(:mod:`attnpos.locate`) —, optionally ``starting(args)`` (the first line, naming what is loaded, printed before torch
+is imported) and ``run(args) -> int``. :func:`main` runs ``check`` before ``run``, so a bad argument is
 refused before torch or a model is loaded, and turns :class:`~attnpos.errors.AttnposError` into a short message and
 a non-zero exit (``--debug`` shows the traceback). Only the chosen sub-command's module is imported, and nothing
 below this package imports it or argparse.
@@ -100,6 +101,8 @@ def main(argv: list[str] | None = None) -> int:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             mod.check(args)                 # everything that needs no model, before the model loads
+            if hasattr(mod, "starting"):
+                mod.starting(args)          # its first line: what it loads, before torch is imported
             if not debug:
                 from transformers.utils import logging as hf_logging
 

@@ -90,8 +90,33 @@ def check_model(args, name: str = "model"):
             if schemes.get(w.strip()) is None:
                 raise AttnposError(f"Unknown scheme {w.strip()!r} for --scheme; choose from "
                                    f"{', '.join(schemes.names())}.")
-    return locate(getattr(args, name), allow_pickle=getattr(args, "allow_pickle", False),
-                  trust_remote_code=getattr(args, "trust_remote_code", False))
+    found = locate(getattr(args, name), allow_pickle=getattr(args, "allow_pickle", False),
+                   trust_remote_code=getattr(args, "trust_remote_code", False))
+    args.located = getattr(args, "located", None) or {}
+    args.located[name] = found
+    return found
+
+
+def config_shape(cfg: dict) -> tuple[int | None, int | None]:
+    """(layers, heads) of a transformers config as config.json states them (the usual key names; None when the
+    config names them otherwise), read without transformers."""
+    inner = cfg.get("text_config") if isinstance(cfg.get("text_config"), dict) else cfg
+    layers = next((inner[k] for k in ("num_hidden_layers", "n_layer", "num_layers", "n_layers") if
+                   isinstance(inner.get(k), int)), None)
+    heads = next((inner[k] for k in ("num_attention_heads", "n_head", "num_heads", "n_heads") if
+                  isinstance(inner.get(k), int)), None)
+    return layers, heads
+
+
+def announce(args, command: str, name: str = "model") -> None:
+    """The first line of a command that loads a model: what it loads, from where (stderr, before torch is
+    imported, which alone takes seconds)."""
+    import sys
+
+    found = (getattr(args, "located", None) or {}).get(name)
+    where = f" from {found.path}" if found is not None and not found.reference else ""
+    print(f"attnpos {command}: loading {getattr(args, name)}{where} (torch, transformers and the weights: a few "
+          "seconds)", file=sys.stderr, flush=True)
 
 
 def read_texts(args):

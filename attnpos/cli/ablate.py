@@ -31,7 +31,22 @@ def check(args) -> None:
     loc = c.check_model(args)
     c.check_outputs({"--json": args.json}, {"--text": c.TextInputs(args.text or []),
                                              "the model folder": c.model_files(loc)})
+    if args.heads is not None:
+        # heads the model does not have are refused now, from config.json, not after the model loaded
+        n_layers, n_heads = c.config_shape(loc.config)
+        for k in parsed:
+            if k.stack == keys.MAIN and k.layer is not None and n_layers is not None and k.layer >= n_layers:
+                raise AttnposError(f"{args.model} has no head {k} (--heads): it has {n_layers} layers (L0 … "
+                                   f"L{n_layers - 1}).")
+            if k.head is not None and n_heads is not None and k.head >= n_heads:
+                raise AttnposError(f"{args.model} has no head {k} (--heads): it has {n_heads} heads per layer (H0 … "
+                                   f"H{n_heads - 1}).")
     args.raw_texts = c.read_texts(args)
+
+
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "ablate")
 
 
 def run(args) -> int:

@@ -45,6 +45,13 @@ def check(args) -> None:
     args.raw_texts = None if all(s is not None for s in args.sides) else c.read_texts(args)
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    for name, s in zip(("a", "b"), args.sides):
+        if s is None:
+            c.announce(args, "compare", name)
+
+
 def run(args) -> int:
     from ..compare import compare
 

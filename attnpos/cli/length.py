@@ -40,6 +40,11 @@ def check(args) -> None:
     args.raw_texts = read(args.text) if args.text else None
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "length")
+
+
 def run(args) -> int:
     from ..length import length
 

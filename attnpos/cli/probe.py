@@ -27,6 +27,11 @@ def check(args) -> None:
     args.raw_texts = c.read_texts(args)
 
 
+def starting(args) -> None:
+    """The command's first line, printed before anything heavy is imported (torch alone takes seconds)."""
+    c.announce(args, "probe")
+
+
 def run(args) -> int:
     from ..probes import probe
 

@@ -193,3 +193,19 @@ def compact(keys: Iterable[Any]) -> str:
                 a = cur
         parts.append(f"{layer_key(stack, layer)}.H" + ",".join(runs))
     return " · ".join(parts)
+
+
+def compact_lines(keys: Iterable[Any], width: int = 96, indent: str = "    ") -> list[str]:
+    """:func:`compact`, wrapped into lines of at most ``width`` characters (breaking only between layers), for a
+    terminal: hundreds of heads become a few short lines instead of one endless one."""
+    parts = compact(keys).split(" · ") if keys else []
+    lines, cur = [], ""
+    for p in (p for p in parts if p):
+        if cur and len(indent) + len(cur) + 3 + len(p) > width:
+            lines.append(indent + cur)
+            cur = p
+        else:
+            cur = f"{cur} · {p}" if cur else p
+    if cur:
+        lines.append(indent + cur)
+    return lines

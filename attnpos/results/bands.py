@@ -80,18 +80,17 @@ class BandsResult(Result):
         fmt = lambda ps: (f"pairs {ps[0]['pair']}–{ps[-1]['pair']}, wavelengths "   # noqa: E731
                           f"{min(p['wavelength'] for p in ps):.3g}–{max(p['wavelength'] for p in ps):.3g} tokens"
                           if ps else "—")
-        return [f"RoPE bands ({len(self.pairs)} pairs per head, {self.layout} layout; energy = mean squared pair "
-                "contribution to q·k):",
-                f"  high band ({fmt(hi)}): {keys.compact(s['high']) or 'no head'}",
-                f"  low band ({fmt(lo)}): {keys.compact(s['low']) or 'no head'}",
-                f"  spread: {keys.compact(s['spread']) or 'no head'}"] + self._use_lines()
-
-    def _use_lines(self) -> list[str]:
+        out = [f"RoPE bands ({len(self.pairs)} pairs per head, {self.layout} layout; energy = mean squared pair "
+               "contribution to q·k):"]
+        for name, what in (("high", f"high band ({fmt(hi)})"), ("low", f"low band ({fmt(lo)})"),
+                           ("spread", "spread")):
+            out += _listed(what, list(s[name]))
         u = self.by_use()
-        if not any(u.values()):
-            return []
-        return ["used, by intervention (the band whose removal changes a head's weights most):"] + \
-               [f"  {b}: {keys.compact(v) or 'no head'}" for b, v in u.items()]
+        if any(u.values()):
+            out.append("used, by intervention (the band whose removal changes a head's weights most):")
+            for b, v in u.items():
+                out += _listed(b, list(v))
+        return out
 
     def text(self) -> str:
         return "\n".join(self.summary_lines() + [f"notice: {n}" for n in self.notes] + [f"note: {self.caution}"])
@@ -120,3 +119,13 @@ class BandsResult(Result):
                    n_texts=int(data.get("n_texts") or 0), model=dict(data.get("model") or {}),
                    definitions=dict(data.get("definitions") or {}), notes=list(data.get("notes") or []),
                    source=str(data.get("source") or "Barbero et al. 2025"), caution=data.get("caution", CAUTION))
+
+
+def _listed(what: str, ks: list) -> list[str]:
+    """A short list of heads on the line itself; a long one (hundreds of heads) wrapped, a layer never split."""
+    if not ks:
+        return [f"  {what}: no head"]
+    lines = keys.compact_lines(ks)
+    if len(lines) == 1 and len(lines[0]) + len(what) < 90:
+        return [f"  {what}: {lines[0].strip()}"]
+    return [f"  {what}: {len(ks)} heads", *lines]

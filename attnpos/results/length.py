@@ -107,13 +107,21 @@ class LengthResult(Result):
             return ("—" if x is None or not np.isfinite(x) else f"{x:.{nd}f}").rjust(w)
 
         if self.loss is not None:
-            lines.append("next-token loss (nats) by position, mean over sequences, with the 90% bootstrap interval "
-                         "of the bin mean (sequences resampled):")
-            lines.append(f"{'positions':>13}  {'loss':>7}  {'interval':>17}")
-            for r in self.summary.get("bin_loss") or []:
+            rows = self._loss_rows()
+            intervals = any(r.get("lo") is not None and np.isfinite(r["lo"]) for r in rows)
+            if intervals:
+                lines.append("next-token loss (nats) by position, mean over sequences, with the 90% bootstrap "
+                             "interval of the bin mean (sequences resampled):")
+                lines.append(f"{'positions':>13}  {'loss':>7}  {'interval':>17}")
+            else:
+                lines.append("next-token loss (nats) by position, mean over sequences (no intervals: they need at "
+                             "least two sequences and bootstrap resamples):")
+                lines.append(f"{'positions':>13}  {'loss':>7}")
+            for r in rows:
                 a, b = r["positions"]
                 mark = "  ← beyond training length" if L and a >= L else ""
-                lines.append(f"{f'{a}–{b}':>13}  {f(r['loss'])}  [{f(r['lo'])}, {f(r['hi'])}]{mark}")
+                iv = f"  [{f(r['lo'])}, {f(r['hi'])}]" if intervals else ""
+                lines.append(f"{f'{a}–{b}':>13}  {f(r['loss'])}{iv}{mark}")
             la = self.summary.get("loss_at") or {}
             lines.append("loss at multiples of the training length (mean over the last quarter-length before it): "
                          + ", ".join(f"{k} {f(v, 0)}" for k, v in la.items()))
@@ -139,6 +147,23 @@ class LengthResult(Result):
             lines.append("notice: " + n)
         lines.append("note: " + self.caution)
         return "\n".join(lines)
+
+    def _loss_rows(self) -> list[dict]:
+        """The loss table's rows: the binned losses the stage computed, or — when a file carries none — bins of the
+        per-position losses themselves (about 16 of them), so the table never prints a header without rows."""
+        rows = [r for r in (self.summary.get("bin_loss") or []) if r.get("loss") is not None]
+        if rows or not self.loss:
+            return rows
+        pos = np.asarray(self.position, dtype=float)
+        loss = np.asarray([np.nan if v is None else v for v in self.loss], dtype=float)
+        edges = np.unique(np.linspace(0, len(pos), min(16, len(pos)) + 1).round().astype(int))
+        out = []
+        for a, b in zip(edges[:-1], edges[1:]):
+            part = loss[a:b]
+            if b > a and np.isfinite(part).any():
+                out.append({"positions": [int(pos[a]), int(pos[b - 1])], "loss": float(np.nanmean(part)),
+                            "lo": None, "hi": None})
+        return out
 
     def _curve_lines(self, f) -> list[str]:
         """Per layer, mean over its heads of entropy and first-token weight in a few query-position bins."""

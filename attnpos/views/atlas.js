@@ -20,7 +20,8 @@ function atlasRender({ model, el }) {
     const S = n ? Math.round(spark.length / n) : 0;
     const rows = grid.rows || [];
     const keys = model.get("cell_keys") || [];   // formatted in Python (attnpos.core.keys): one grammar everywhere
-    return { grid, roles, cells, nums, spark, n, K, S, rows, keys,
+    const strength = apF32(model.get("strength")), layerOf = apI32(model.get("layer_of"));
+    return { grid, roles, cells, nums, spark, n, K, S, rows, keys, strength, layerOf,
              evidence: model.get("evidence") || [], tags: model.get("tags") || [],
              verdicts: model.get("verdicts") || [] };
   }
@@ -111,6 +112,81 @@ function atlasRender({ model, el }) {
     modelMark.textContent = mm ? "model findings: " + mm.n + (mm.stale ? " (" + mm.stale + " stale)" : "") : "";
   }
 
+  // ---- filters: role (legend), layer range, strength (the role's own strength column, sent from Python);
+  // the same rule as attnpos.views.data.atlas_keep
+  function filters() { return Object.assign({}, model.get("filters") || {}); }
+  function setFilters(f) { model.set("filters", f); model.save_changes(); }
+  function toggleRole(role) {
+    const f = filters();
+    const all = data.grid.palette.slice(1).map((p) => p.role);
+    let keep = f.roles ? f.roles.slice() : all.slice();
+    keep = keep.includes(role) ? keep.filter((r) => r !== role) : keep.concat([role]);
+    if (keep.length === all.length) delete f.roles; else f.roles = keep;
+    setFilters(f);
+  }
+  function keeps(i) {
+    const f = model.get("filters") || {};
+    if (f.roles) { const r = data.grid.palette[data.roles[i]].role; if (!r || !f.roles.includes(r)) return false; }
+    if (f.layers && f.layers.length === 2) { const L = data.layerOf[i]; if (L < f.layers[0] || L > f.layers[1]) return false; }
+    if (apFinite(f.strength) && Number.isFinite(data.strength[i]) && data.strength[i] < f.strength) return false;
+    return true;
+  }
+  const shown = apEl("span", "ap-shown");
+  function paintFilter() {
+    const f = model.get("filters") || {};
+    let n = 0;
+    cellNodes.forEach((g, i) => { const k = keeps(i); g.classList.toggle("ap-out", !k); if (k) n++; });
+    shown.textContent = n === data.n ? "showing all " + data.n + " heads" : "showing " + n + " of " + data.n + " heads";
+    root.querySelectorAll(".ap-legend-item").forEach((b) => b.classList.toggle("ap-off", !!f.roles && !f.roles.includes(b.dataset.role)));
+    // the inputs show a filter set elsewhere (Python's atlas.filter(), "show all"), never overwrite what is typed
+    if (!typing && layerLo) {
+      layerLo.value = f.layers ? f.layers[0] : "";
+      layerHi.value = f.layers ? f.layers[1] : "";
+      strengthIn.value = apFinite(f.strength) ? f.strength : 0;
+    }
+    typing = false;
+    if (strengthOut) strengthOut.textContent = apFinite(f.strength) ? "\u2265 " + f.strength.toFixed(2) : "any";
+  }
+  let layerLo = null, layerHi = null, strengthIn = null, strengthOut = null, typing = false;
+  function filterBar() {
+    const bar = apEl("div", "ap-filters");
+    const layers = Array.from(data.layerOf);
+    const lmin = layers.length ? Math.min(...layers) : 0, lmax = layers.length ? Math.max(...layers) : 0;
+    const num = (cls, label) => {
+      const e = apEl("input", cls); e.type = "number"; e.min = lmin; e.max = lmax; e.step = 1;
+      e.placeholder = label; e.setAttribute("aria-label", label); return e;
+    };
+    layerLo = num("ap-layer-lo", "first layer"); layerHi = num("ap-layer-hi", "last layer");
+    layerLo.placeholder = String(lmin); layerHi.placeholder = String(lmax);
+    const onLayers = () => {
+      const f = filters();
+      const a = layerLo.value === "" ? lmin : parseInt(layerLo.value, 10), b = layerHi.value === "" ? lmax : parseInt(layerHi.value, 10);
+      if (a <= lmin && b >= lmax) delete f.layers; else f.layers = [Math.min(a, b), Math.max(a, b)];
+      typing = true;
+      setFilters(f);          // the change event runs now (synchronously), while typing is set
+      typing = false;
+    };
+    layerLo.addEventListener("change", onLayers); layerHi.addEventListener("change", onLayers);
+    strengthIn = apEl("input", "ap-strength"); strengthIn.type = "range"; strengthIn.min = 0; strengthIn.max = 1; strengthIn.step = 0.05;
+    strengthIn.setAttribute("aria-label", "least strength of the role");
+    strengthOut = apEl("span", "ap-sub");
+    strengthIn.addEventListener("input", () => {
+      const f = filters(); const v = parseFloat(strengthIn.value);
+      if (v > 0) f.strength = v; else delete f.strength;
+      typing = true;
+      setFilters(f);          // the change event runs now (synchronously), while typing is set
+      typing = false;
+    });
+    const clear = apEl("button", "ap-clear", "show all");
+    clear.type = "button";
+    clear.addEventListener("click", () => setFilters({}));
+    bar.appendChild(apEl("span", "ap-sub", "layers"));
+    bar.appendChild(layerLo); bar.appendChild(apEl("span", "ap-sub", "to")); bar.appendChild(layerHi);
+    bar.appendChild(apEl("span", "ap-sub", "\u00b7 role strength")); bar.appendChild(strengthIn); bar.appendChild(strengthOut);
+    bar.appendChild(clear); bar.appendChild(shown);
+    return bar;
+  }
+
   let rowLabels = [];
   const selInfo = apEl("span", "ap-selinfo");
   const modelMark = apEl("span", "ap-modelmark");
@@ -123,16 +199,25 @@ function atlasRender({ model, el }) {
     const counts = {};
     for (let i = 0; i < data.n; i++) counts[data.roles[i]] = (counts[data.roles[i]] || 0) + 1;
     root.appendChild(apEl("p", "ap-sub", (g.title || "") + " \u00b7 " + data.rows.length + " layer rows \u00d7 " +
-      g.n_cols + " heads. Click a cell, or focus the grid and use the arrow keys + Enter. Hover for evidence."));
+      g.n_cols + " heads. Click a cell, or focus the grid and use the arrow keys + Enter. Hover for evidence; click a role " +
+      "in the legend to show or hide it."));
+    // the legend writes each role with the word its cells write (attnpos.views.data.cell_label); clicking an
+    // entry shows or hides that role (the role filter)
     const legend = apEl("div", "ap-legend");
+    const word = (p) => (lay.label === "short" ? p.short : p.code);
     g.palette.slice(1).forEach((p, k) => {
-      const s = apEl("span");
+      const s = apEl("button", "ap-legend-item");
+      s.type = "button";
+      s.dataset.role = p.role;
+      s.title = "show or hide the " + p.role + " heads";
       const sw = apEl("i", "ap-sw"); sw.style.background = p.fill; sw.style.borderColor = p.colour;
-      s.appendChild(sw); s.appendChild(apEl("b", null, p.code));
-      s.appendChild(document.createTextNode(" " + p.role + " (" + (counts[k + 1] || 0) + ")"));
+      s.appendChild(sw); s.appendChild(apEl("b", null, word(p)));
+      s.appendChild(document.createTextNode(" = " + p.role + " (" + (counts[k + 1] || 0) + ")"));
+      s.addEventListener("click", () => toggleRole(p.role));
       legend.appendChild(s);
     });
     root.appendChild(legend);
+    root.appendChild(filterBar());
     const bar = apEl("div", "ap-bar");
     bar.appendChild(selInfo); bar.appendChild(modelMark);
     root.appendChild(bar);
@@ -170,9 +255,10 @@ function atlasRender({ model, el }) {
       cg.appendChild(apSvg("rect", { width: lay.cw, height: lay.ch, rx: 3, fill: p.fill, stroke: p.colour,
                                      "stroke-width": 1, class: "ap-cellbox" }));
       cg.appendChild(apSvg("rect", { width: lay.cw, height: 3, fill: p.colour }));
-      cg.appendChild(apSvg("text", { x: 3, y: 3 + fs, "font-size": fs, fill: p.ink, "font-weight": 600 },
-                           lay.label === "short" ? p.short : p.code));
-      if (data.S) {
+      const spark = lay.spark !== false;
+      cg.appendChild(apSvg("text", { x: 3, y: spark ? 3 + fs : (lay.ch + 3) / 2 + fs * 0.36, "font-size": fs, fill: p.ink,
+                                     "font-weight": 600 }, word(p)));
+      if (data.S && spark) {
         const y0 = 5 + fs + 2, y1 = lay.ch - 3;
         let d = "", pen = false;
         for (let k = 0; k < data.S; k++) {
@@ -226,6 +312,7 @@ function atlasRender({ model, el }) {
     root.appendChild(apCaution(model.get("caution")));
     paintSelection();
     paintMarks();
+    paintFilter();
   }
 
   draw();
@@ -236,7 +323,9 @@ function atlasRender({ model, el }) {
   model.on("change:spark", redraw);
   model.on("change:selected", paintSelection);
   model.on("change:marks", paintMarks);
+  model.on("change:filters", paintFilter);
   return () => {
+    model.off("change:filters", paintFilter);
     model.off("change:grid", redraw); model.off("change:roles", redraw);
     model.off("change:numbers", redraw); model.off("change:spark", redraw);
     model.off("change:selected", paintSelection); model.off("change:marks", paintMarks);

@@ -43,6 +43,9 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
     cell_keys = t.List(t.Unicode()).tag(sync=True)
     marks = t.Dict().tag(sync=True)
     selected = t.Unicode("").tag(sync=True)
+    strength = t.Bytes(b"").tag(sync=True)
+    layer_of = t.Bytes(b"").tag(sync=True)
+    filters = t.Dict().tag(sync=True)
     caution = t.Unicode("").tag(sync=True)
 
     def __init__(self, scan, findings=None, selected: str | None = None, **kwargs):
@@ -57,6 +60,7 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
     # ---------------------------------------------------------------- data
     def _load(self, scan) -> None:
         d = _data.atlas_data(scan)
+        self._data = d
         self._keys = d["keys"]
         m = scan.model or {}
         title = f'{m.get("name") or m.get("path") or "model"} · scheme {m.get("scheme") or "—"}'
@@ -72,6 +76,8 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
             self.tags = d["tags"]
             self.verdicts = d["verdicts"]
             self.cell_keys = list(d["keys"])
+            self.strength = d["strength"].astype("<f4").tobytes()
+            self.layer_of = d["layers"].astype("<i4").tobytes()
             self.caution = scan.caution or ""
 
     @property
@@ -92,6 +98,24 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
             rows = _data.finding_rows(self.store, self.scan)
         self.marks = _data.marks_from(rows)
 
+    def filter(self, roles=None, layers=None, strength=None) -> None:
+        """Fade the heads that do not match (in the widget and in its picture): ``roles`` a list of role names,
+        ``layers`` a ``(first, last)`` range, ``strength`` the least value of each role's own strength column
+        (e.g. ``mass_previous`` for previous-token heads). ``atlas.filter()`` clears the filter."""
+        f = {}
+        if roles is not None:
+            f["roles"] = [str(r) for r in ([roles] if isinstance(roles, str) else roles)]
+        if layers is not None:
+            lo, hi = layers
+            f["layers"] = [int(lo), int(hi)]
+        if strength is not None:
+            f["strength"] = float(strength)
+        self.filters = f
+
+    def kept(self):
+        """Which heads the current filter keeps (a boolean per head, in the order of :attr:`head_keys`)."""
+        return _data.atlas_keep(self._data, self.filters)
+
     def select(self, key: str) -> None:
         if key not in self._keys:
             raise KeyError(f"no head {key} in this scan")
@@ -99,3 +123,12 @@ class Atlas(StaticFallback, anywidget.AnyWidget):
 
     def to_html(self) -> str:
         return static.atlas_html(self.scan, self.marks, self.selected or None)
+
+    def figure(self):
+        """The atlas as a matplotlib figure (the same cells, words and legend; heads the filter leaves out are
+        faded)."""
+        from . import figures
+        return figures.atlas_figure(self.scan, self.marks, self.selected or None, keep=self.kept())
+
+    def summary(self):
+        return _data.atlas_summary(self.scan, self.marks)

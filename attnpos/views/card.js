@@ -3,7 +3,7 @@
 // split shares with intervals, shift test, induction, top keys, findings, caution.
 
 function cardProfile(dist, val, lo, hi, info) {
-  const width = 340, height = 160, ml = 40, mr = 8, mt = 10, mb = 28;
+  const width = 340, height = 170, ml = 52, mr = 8, mt = 10, mb = 28;
   const svg = apSvg("svg", { width, height, class: "ap-profile", role: "img", "aria-label": "distance profile" });
   const n = dist.length;
   const okv = [];
@@ -24,7 +24,8 @@ function cardProfile(dist, val, lo, hi, info) {
   if (band.length > 1) {
     const pts = band.map((k) => X(apSymlog(dist[k])).toFixed(1) + "," + Y(lo[k]).toFixed(1))
       .concat(band.slice().reverse().map((k) => X(apSymlog(dist[k])).toFixed(1) + "," + Y(hi[k]).toFixed(1)));
-    svg.appendChild(apSvg("polygon", { points: pts.join(" "), fill: "#3F6E9A", "fill-opacity": 0.18, class: "ap-band" }));
+    svg.appendChild(apSvg("polygon", { points: pts.join(" "), fill: "#3F6E9A", "fill-opacity": 0.32, stroke: "#3F6E9A",
+                                       "stroke-opacity": 0.5, "stroke-width": 0.6, class: "ap-band" }));
   }
   let seg = [];
   const flush = (stroke, extra) => {
@@ -36,15 +37,15 @@ function cardProfile(dist, val, lo, hi, info) {
     else flush("#3F6E9A", { class: "ap-profile-line" });
   }
   flush("#3F6E9A", { class: "ap-profile-line" });
-  if (apFinite(info.slope) && apFinite(info.intercept)) {
-    const d0 = dist[0], d1 = dist[n - 1];
-    for (let s = 0; s <= 64; s++) {
-      const g = d0 + (d1 - d0) * s / 64, y = Y(info.intercept + info.slope * g);
-      if (y >= mt - 0.5 && y <= height - mb + 0.5) seg.push(X(apSymlog(g)).toFixed(1) + "," + y.toFixed(1));
-      else { if (seg.length > 1) flush("#B8613F", { "stroke-dasharray": "4,3", "stroke-width": 1.2, class: "ap-slope" }); seg = []; }
-    }
-    flush("#B8613F", { "stroke-dasharray": "4,3", "stroke-width": 1.2, class: "ap-slope" });
+  // the slope line comes from Python (attnpos.views.data.slope_line: y = b − slope·δ, so it falls when the
+  // slope is positive), the same points the static picture draws
+  const line = info.slope_line || [];
+  for (const [g, yv] of line) {
+    const y = Y(yv);
+    if (y >= mt - 0.5 && y <= height - mb + 0.5) seg.push(X(apSymlog(g)).toFixed(1) + "," + y.toFixed(1));
+    else flush("#B8613F", { "stroke-dasharray": "4,3", "stroke-width": 1.4, class: "ap-slope" });
   }
+  flush("#B8613F", { "stroke-dasharray": "4,3", "stroke-width": 1.4, class: "ap-slope" });
   for (const tk of [-256, -64, -16, -4, -1, 0, 1, 4, 16, 64, 256, 1024]) {
     if (tk < dist[0] || tk > dist[n - 1]) continue;
     const x = X(apSymlog(tk));
@@ -54,13 +55,16 @@ function cardProfile(dist, val, lo, hi, info) {
   for (const yv of [yLo, (yLo + yHi) / 2, yHi])
     svg.appendChild(apSvg("text", { x: ml - 4, y: Y(yv) + 3, "font-size": 9, "text-anchor": "end", fill: AP_MUTED }, apFmt(yv, 1)));
   svg.appendChild(apSvg("text", { x: (ml + width - mr) / 2, y: height - 3, "font-size": 10, "text-anchor": "middle", fill: AP_MUTED },
-                        "distance \u03b4 (log scale) \u00b7 band: interval \u00b7 dashed: slope"));
+                        "distance \u03b4 (log scale) \u00b7 band: 90% interval \u00b7 dashed: slope"));
+  const cy = (mt + height - mb) / 2;
+  svg.appendChild(apSvg("text", { x: 10, y: cy, "font-size": 9.5, "text-anchor": "middle", fill: AP_MUTED,
+                                  transform: `rotate(-90 10 ${cy})` }, "score (logit), 0 at \u03b4 = 0"));
   return svg;
 }
 
 function cardShares(info, partColours) {
   const parts = ["distance", "slot", "content", "residual"];
-  const width = 340, rowh = 20, ml = 64, mr = 110, height = rowh * 4 + 16, bw = width - ml - mr;
+  const width = 360, rowh = 20, ml = 64, mr = 132, height = rowh * 4 + 16, bw = width - ml - mr;
   const svg = apSvg("svg", { width, height, class: "ap-shares", role: "img", "aria-label": "shares of the score split" });
   const clamp = (v) => Math.min(Math.max(v, 0), 1);
   parts.forEach((p, k) => {
@@ -75,12 +79,14 @@ function cardShares(info, partColours) {
       svg.appendChild(apSvg("line", { x1: a, x2: a, y1: y + 4, y2: y + 12, stroke: AP_INK }));
       svg.appendChild(apSvg("line", { x1: b, x2: b, y1: y + 4, y2: y + 12, stroke: AP_INK }));
     }
-    const t = apSvg("text", { x: ml + bw + 5, y: y + 12, "font-size": 10.5, fill: AP_INK }, apFmt(v) + " ");
-    t.appendChild(apSvg("tspan", { fill: AP_MUTED }, apInterval(lo, hi)));
+    // three decimals, never scientific notation: the text must fit beside its bar
+    const fix = (x) => (apFinite(x) ? x.toFixed(3) : "\u2014");
+    const t = apSvg("text", { x: ml + bw + 5, y: y + 12, "font-size": 10.5, fill: AP_INK }, fix(v));
+    if (apFinite(lo) && apFinite(hi)) t.appendChild(apSvg("tspan", { fill: AP_MUTED }, " [" + fix(lo) + ", " + fix(hi) + "]"));
     svg.appendChild(t);
   });
   svg.appendChild(apSvg("text", { x: 2, y: height - 1, "font-size": 9.5, fill: AP_MUTED },
-                        "share of within-row score variance; whiskers: bootstrap interval"));
+                        "share of within-row score variance; whiskers: 90% bootstrap interval"));
   return svg;
 }
 
@@ -92,16 +98,19 @@ function cardRender({ model, el }) {
   function facts(info) {
     const t = apEl("table", "ap-facts");
     const rows = [
-      ["slope", apFmt(info.slope, 3) + " " + apInterval(info.slope_lo, info.slope_hi, 3)],
+      ["slope", apFmt(info.slope, 3) + " " + apInterval(info.slope_lo, info.slope_hi, 3) +
+                " score/token (positive: falls with distance)"],
       ["shift test", (info.shift_verdict || "\u2014") + " \u00b7 change " + apFmt(info.shift_change, 3) +
-                     " \u00b7 offset " + apFmt(info.shift_offset, 0) + " \u00b7 " + (info.shift_kind || "\u2014")],
+                     " \u00b7 " + (info.shift_how || "\u2014")],
       ["role support", apFmt(info.role_support) + (info.role_between ? " \u00b7 between " + info.role_between : "")],
       ["induction score", apFmt(info.induction)],
-      ["anchor", "slot " + apFmt(info.anchor_slot, 0) + " \u00b7 weight " + apFmt(info.anchor_weight)],
+    ];
+    // the most-weighted slot means something only for a head the anchor criterion holds for
+    if (info.anchor_like) rows.push(["anchor", "slot " + apFmt(info.anchor_slot, 0) + " \u00b7 weight " + apFmt(info.anchor_weight)]);
+    rows.push(
       ["entropy ratio", apFmt(info.entropy_ratio)],
       ["mass", "prev " + apFmt(info.mass_previous) + " \u00b7 next " + apFmt(info.mass_next) + " \u00b7 first " +
-               apFmt(info.mass_first) + " \u00b7 self " + apFmt(info.mass_self)],
-    ];
+               apFmt(info.mass_first) + " \u00b7 self " + apFmt(info.mass_self)]);
     if (info.evidence) rows.push(["evidence", apPlain(info.evidence)]);
     for (const [k, v] of rows) {
       const tr = apEl("tr");
@@ -288,7 +297,7 @@ function cardRender({ model, el }) {
 
   function draw() {
     const info = model.get("info") || {};
-    const style = model.get("style") || {};
+    const style = model.get("colours") || {};
     root.replaceChildren();
     if (!info.key) {
       root.appendChild(apEl("h3", null, "Head card"));
@@ -321,14 +330,15 @@ function cardRender({ model, el }) {
     root.appendChild(cols);
     root.appendChild(apEl("h4", null, "Findings"));
     root.appendChild(findingsList());
-    root.appendChild(apCaution(model.get("caution")));
+    // an empty caution: the page around the card shows it once already (the report)
+    if (model.get("caution")) root.appendChild(apCaution(model.get("caution")));
   }
 
   draw();
   // several traits change together when a head is selected: draw once per batch
   let queued = false;
   const later = () => { if (queued) return; queued = true; queueMicrotask(() => { queued = false; draw(); }); };
-  const names = ["info", "profile", "map_codes", "map_meta", "texts", "text", "top_keys", "findings", "caution", "style"];
+  const names = ["info", "profile", "map_codes", "map_meta", "texts", "text", "top_keys", "findings", "caution", "colours"];
   for (const n of names) model.on("change:" + n, later);
   return () => { for (const n of names) model.off("change:" + n, later); };
 }

@@ -41,7 +41,9 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
     col_labels = t.List(t.Unicode()).tag(sync=True)
     top_keys = t.List(t.Dict()).tag(sync=True)
     lut = t.Bytes(b"").tag(sync=True)
-    style = t.Dict().tag(sync=True)
+    # not "style": ipywidgets' DOMWidgetView reads a trait of that name as a child style widget and tries to
+    # create a view of it (a TypeError in create_child_view on every render)
+    colours = t.Dict().tag(sync=True)
     findings = t.List(t.Dict()).tag(sync=True)
     caution = t.Unicode("").tag(sync=True)
 
@@ -51,7 +53,7 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
         self.store = _data.open_store(findings)
         self._rows: list[dict] = []
         self.lut = np.ascontiguousarray(RAMP, dtype=np.uint8).tobytes()
-        self.style = {"palette": role_palette(), "parts": part_colours()}
+        self.colours = {"palette": role_palette(), "parts": part_colours()}
         self.caution = scan.caution or ""
         self.observe(self._on_head, "head")
         self.observe(self._on_map, ["text", "window"])
@@ -128,6 +130,18 @@ class HeadCard(StaticFallback, anywidget.AnyWidget):
         if not m:
             return np.zeros((0, 0), np.uint8)
         return np.frombuffer(self.map_codes, np.uint8).reshape(m["rows"], m["cols"])
+
+    def figure(self):
+        """The card as a matplotlib figure: weight map with colour bar, profile with band and slope line, split."""
+        if not self.head:
+            return None
+        from . import figures
+        return figures.card_figure(self.scan, self.head, self.text if self.text >= 0 else None)
+
+    def summary(self):
+        if not self.head:
+            return "Head card", ["no head selected"]
+        return _data.card_summary(self.scan, self.head)
 
     def to_html(self) -> str:
         if not self.head:

@@ -226,6 +226,22 @@ def fmt_interval(lo: Any, hi: Any, digits: int = 2) -> str:
     return f"[{fmt(lo, digits)}, {fmt(hi, digits)}]"
 
 
+SHIFT_KINDS = {"position-ids": "position ids moved by {offset}", "prefix": "a neutral prefix of {offset} tokens"}
+
+
+def shift_how(kind: Any, offset: Any) -> str:
+    """Which shift ran, in words: ``position ids moved by 32`` or ``a neutral prefix of 32 tokens``."""
+    off = fmt(offset, 0)
+    k = text_of(kind)
+    return SHIFT_KINDS[k].format(offset=off) if k in SHIFT_KINDS else (f"{k} {off}" if k else "—")
+
+
+def is_anchor_like(role: Any, tags: Any) -> bool:
+    """Whether a head's anchor numbers mean anything: its role or one of its tags is ``anchor`` (the anchor
+    criterion of :mod:`attnpos.core.roles` holds). For every other head the most-weighted slot is noise."""
+    return str(role) == "anchor" or "anchor" in tags_of(tags)
+
+
 def num(x: Any) -> float:
     """A float, NaN for missing or non-numeric."""
     try:

@@ -80,3 +80,11 @@ class Curves(StaticFallback, anywidget.AnyWidget):
 
     def to_html(self) -> str:
         return static.curves_html(self.scan)
+
+    def figure(self):
+        """What was measured, as a matplotlib figure; None when nothing was (no empty picture)."""
+        from . import figures
+        return figures.curves_figure(self.scan)
+
+    def summary(self):
+        return _data.curves_summary(self.scan)

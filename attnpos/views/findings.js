@@ -30,7 +30,8 @@ function findingsRender({ model, el }) {
         r.disabled = !t;
         r.addEventListener("change", () => { draft.scope = scope; });
         lab.appendChild(r);
-        lab.appendChild(document.createTextNode(" " + label + (t ? " " + t : "")));
+        // "head L2.H1", "layer L2", and just "model" (its target is the word itself)
+        lab.appendChild(document.createTextNode(" " + label + (t && t !== label ? " " + t : "")));
         scopeRow.appendChild(lab);
       }
     }

@@ -133,6 +133,12 @@ class FindingsPanel(StaticFallback, anywidget.AnyWidget):
     def to_html(self) -> str:
         return static.findings_table_html(self.rows, self.path or None)
 
+    def figure(self):
+        return None          # a table of notes: its static form is the text
+
+    def summary(self):
+        return _data.findings_summary(self.rows, self.path or None)
+
 
 def _default_author() -> str | None:
     try:

@@ -13,7 +13,8 @@ import numpy as np
 
 from . import data as _data
 from .common import (INK, UNKNOWN_COLOUR, colourise, part_colours, role_codes, role_colours, roles_now,
-                      esc, esc_plain, finite, fmt, fmt_interval, ink_on, png_data_uri, role_palette, tint)
+                      esc, esc_plain, finite, fmt, fmt_interval, ink_on, is_anchor_like, png_data_uri, ramp_colour,
+                      role_palette, shift_how, tint)
 
 STYLE = """
 .apx{font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif;color:#1B1F24;background:#FBFAF7;
@@ -41,6 +42,18 @@ STYLE = """
 """
 
 
+def widget_script(*names: str) -> str:
+    """The widgets' ES modules as one classic script, for a page that runs them itself (the standalone report)."""
+    from ._base import script
+    return script(*names)
+
+
+def widget_css(name: str) -> str:
+    """A widget's CSS (with the shared rules), for a page that shows its markup outside a notebook."""
+    from ._base import css
+    return css(name)
+
+
 def style_tag() -> str:
     return f"<style>{STYLE}</style>"
 
@@ -49,13 +62,16 @@ def caution_html(text: str) -> str:
     return f'<div class="apx-caution"><b>Caution.</b> {esc_plain(text)}</div>'
 
 
-def legend_html(counts: dict | None = None) -> str:
+def legend_html(counts: dict | None = None, layout: dict | None = None) -> str:
+    """The role legend, writing each role with the same word its cells write (``layout["label"]``: the short word
+    in roomy cells, the code in small ones), then the role's name."""
     parts = []
-    colours, codes = role_colours(), role_codes()
-    for r in roles_now():
+    lay = layout or {"label": "code"}
+    for p in role_palette()[1:]:
+        r = p["role"]
         c = "" if counts is None else f" ({counts.get(r, 0)})"
-        parts.append(f'<span><i class="apx-sw" style="background:{tint(colours[r], 0.35)};'
-                     f'border-color:{colours[r]}"></i><b>{esc(codes[r])}</b> {r}{c}</span>')
+        parts.append(f'<span data-role="{esc_plain(r)}"><i class="apx-sw" style="background:{p["fill"]};border-color:{p["colour"]}"></i>'
+                     f'<b>{esc(_data.cell_label(p, lay))}</b> = {r}{c}</span>')
     return f'<div class="apx-legend">{"".join(parts)}</div>'
 
 
@@ -84,8 +100,15 @@ def _faded(data: dict, i: int) -> bool:
     return float(np.asarray(data["numbers"])[i, fields.index("faded")]) == 1.0
 
 
+def head_anchor(key: str) -> str:
+    """The fragment id of a head in the report (``L3.H2`` → ``head-L3-H2``)."""
+    return "head-" + key.replace(":", "-").replace(".", "-")
+
+
 def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None,
-              link_cards: set | None = None) -> str:
+              link_cards: set | None = None, link_all: bool = False) -> str:
+    """The atlas as SVG. ``link_cards``: heads whose cell links to their static card (``#card-…``);
+    ``link_all``: every cell links to the head's own anchor (``#head-…``: the report draws that head's card)."""
     marks = marks or {}
     lay = data["layout"]
     cw, ch, gap, left, top = lay["cw"], lay["ch"], lay["gap"], lay["left"], lay["top"]
@@ -95,6 +118,10 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
     pal = role_palette()
     out = [f'<svg xmlns="http://www.w3.org/2000/svg" class="apx-atlas" width="{W}" height="{H}" '
            f'viewBox="0 0 {W} {H}" role="img" aria-label="atlas of {len(data["keys"])} heads">']
+    fs = 11 if lay["label"] == "short" else 9.5
+    out.append("<style>.apx-cell text{font-size:%spx;font-weight:600}" % fs + "".join(
+        f".apx-r{k}>rect{{fill:{q['fill']};stroke:{q['colour']};stroke-width:1}}.apx-r{k}>.apx-strip{{fill:{q['colour']};"
+        f"stroke:none}}.apx-r{k}>text{{fill:{q['ink']}}}" for k, q in enumerate(pal)) + "</style>")
     step = 1 if n_cols <= 16 else 4
     for c in range(0, n_cols, step):
         x = left + c * (cw + gap) + cw / 2
@@ -116,15 +143,18 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
         label = p["short"] if lay["label"] == "short" else p["code"]
         sel = key == selected
         faded = ' opacity="0.45"' if _faded(data, i) else ""          # role not sure across resamples
-        parts = [f'<g class="apx-cell" data-key="{esc_plain(key)}" transform="translate({x},{y})"{faded}>',
-                 f'<title>{esc_plain(_tooltip(data, i))}</title>',
-                 f'<rect width="{cw}" height="{ch}" rx="3" fill="{p["fill"]}" '
-                 f'stroke="{INK if sel else p["colour"]}" stroke-width="{2.5 if sel else 1}"/>',
-                 f'<rect width="{cw}" height="3" fill="{p["colour"]}"/>']
+        # a big model's report stays small: one line of hover text per head (its card has the rest)
+        tip = _tooltip(data, i) if len(data["keys"]) <= 256 else _tooltip(data, i).split("\n")[0]
+        # colours come from the role's class (one <style> rule per role above), so a big atlas stays small
+        rid = int(data["roles"][i])
+        box = (f'<rect width="{cw}" height="{ch}" rx="3" style="stroke:{INK};stroke-width:2.5"/>' if sel
+               else f'<rect width="{cw}" height="{ch}" rx="3"/>')
+        parts = [f'<g class="apx-cell apx-r{rid}" data-key="{esc_plain(key)}" transform="translate({x},{y})"{faded}>',
+                 f'<title>{esc_plain(tip)}</title>', box, f'<rect class="apx-strip" width="{cw}" height="3"/>']
         fs = 11 if lay["label"] == "short" else 9.5
-        parts.append(f'<text x="3" y="{3 + fs}" font-size="{fs}" fill="{p["ink"]}" '
-                     f'font-weight="600">{esc_plain(label)}</text>')
-        if n_sp:
+        ty = 3 + fs if lay.get("spark", True) else (ch + 3) / 2 + fs * 0.36     # centred in a small mark
+        parts.append(f'<text x="3" y="{ty:.1f}">{esc_plain(label)}</text>')
+        if n_sp and lay.get("spark", True):
             y0, y1 = 5 + fs + 2, ch - 3
             d, pen, last = [], False, (0.0, 0.0)
             for k in range(n_sp):
@@ -152,7 +182,9 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
                              f'fill="#FBFAF7" stroke="{INK}" stroke-dasharray="2,1.5"/>')
         parts.append("</g>")
         g = "".join(parts)
-        if link_cards and key in link_cards:
+        if link_all:
+            g = f'<a href="#{esc_plain(head_anchor(key))}" data-head="{esc_plain(key)}">{g}</a>'
+        elif link_cards and key in link_cards:
             g = f'<a href="#card-{esc_plain(key.replace(":", "-").replace(".", "-"))}">{g}</a>'
         out.append(g)
     out.append("</svg>")
@@ -160,7 +192,7 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
 
 
 def atlas_html(scan, marks: dict | None = None, selected: str | None = None, link_cards: set | None = None,
-               with_style: bool = True) -> str:
+               with_style: bool = True, caution: bool = True, heading: bool = True, link_all: bool = False) -> str:
     data = _data.atlas_data(scan)
     m = scan.model or {}
     counts = scan.heads["role"].value_counts().to_dict() if len(scan.heads) else {}
@@ -168,10 +200,13 @@ def atlas_html(scan, marks: dict | None = None, selected: str | None = None, lin
     sub = (f'{esc_plain(m.get("name") or m.get("path") or "model")} · scheme {esc_plain(m.get("scheme"))} · '
            f'{len(data["rows"])} layer rows × {data["n_cols"]} heads · {len(data["keys"])} heads'
            + (f" · {n_marked} with findings (▲; dashed = stale)" if n_marked else ""))
-    body = (f'<div class="apx apx-atlas-view"><h3>Atlas — role of every head</h3><p class="apx-sub">{sub}. '
-            f'Each cell: role colour, written role code, distance profile sparkline (δ from small to large); '
-            f'hover a cell for its evidence.</p>{legend_html(counts)}{atlas_svg(data, marks, selected, link_cards)}'
-            f'{caution_html(scan.caution)}</div>')
+    how = ("Each cell: role colour, written role, distance profile sparkline (δ from small to large)"
+           if data["layout"]["spark"] else "Each mark: one head, role colour and written role code; rows are layers")
+    body = (f'<div class="apx apx-atlas-view">{"<h3>Atlas — role of every head</h3>" if heading else ""}'
+            f'<p class="apx-sub">{sub}. {how}; hover for its evidence'
+            f'{", click for its card" if link_cards or link_all else ""}.</p>'
+            f'{legend_html(counts, data["layout"])}{atlas_svg(data, marks, selected, link_cards, link_all)}'
+            f'{caution_html(scan.caution) if caution else ""}</div>')
     return (style_tag() if with_style else "") + body
 
 
@@ -199,12 +234,12 @@ def _symlog(d: float) -> float:
     return math.copysign(math.log2(1 + abs(d)), d)
 
 
-def profile_svg(h: dict, width: int = 340, height: int = 160) -> str:
+def profile_svg(h: dict, width: int = 340, height: int = 170) -> str:
     d, v, lo, hi = h["distance"], h["value"], h["low"], h["high"]
     info = h["info"]
     if len(d) == 0 or not np.isfinite(v).any():
         return '<p class="apx-none">No distance profile was measured for this head.</p>'
-    ml, mr, mt, mb = 40, 8, 10, 28
+    ml, mr, mt, mb = 52, 8, 10, 28
     xs = np.array([_symlog(x) for x in d])
     allv = np.concatenate([v[np.isfinite(v)], lo[np.isfinite(lo)], hi[np.isfinite(hi)]])
     y_lo, y_hi = float(allv.min()), float(allv.max())
@@ -220,7 +255,8 @@ def profile_svg(h: dict, width: int = 340, height: int = 160) -> str:
     if len(band) > 1:
         pts = " ".join(f"{x:.1f},{a:.1f}" for x, a, _ in band) + " " + \
               " ".join(f"{x:.1f},{b:.1f}" for x, _, b in reversed(band))
-        out.append(f'<polygon points="{pts}" fill="#3F6E9A" fill-opacity=".18" stroke="none"/>')
+        out.append(f'<polygon class="apx-band" points="{pts}" fill="#3F6E9A" fill-opacity=".32" stroke="#3F6E9A" '
+                   f'stroke-opacity=".5" stroke-width=".6"/>')
     seg = []
     for x, y in zip(xs, v):
         if np.isfinite(y):
@@ -230,19 +266,18 @@ def profile_svg(h: dict, width: int = 340, height: int = 160) -> str:
             seg = []
     if seg:
         out.append(f'<polyline points="{" ".join(seg)}" fill="none" stroke="#3F6E9A" stroke-width="1.6"/>')
-    if finite(info.get("slope")) and finite(info.get("intercept")):
-        s, b = info["slope"], info["intercept"]
-        grid = np.linspace(float(d.min()), float(d.max()), 64)
+    # the slope line: y = b − slope·δ over δ ≥ 0 (data.slope_line), the points the widget and the picture draw
+    seg = []
+    line_d, line_y = h.get("slope_line", (np.zeros(0), np.zeros(0)))
+    for g, yv in list(zip(line_d, line_y)) + [(None, None)]:
+        y = Y(yv) if g is not None else None
+        if y is not None and mt - 0.5 <= y <= height - mb + 0.5:
+            seg.append(f"{X(_symlog(g)):.1f},{y:.1f}")
+            continue
+        if len(seg) > 1:
+            out.append(f'<polyline class="apx-slope" points="{" ".join(seg)}" fill="none" stroke="#B8613F" '
+                       f'stroke-width="1.4" stroke-dasharray="4,3"/>')
         seg = []
-        for g in list(grid) + [None]:
-            y = Y(b + s * g) if g is not None else None
-            if y is not None and mt - 0.5 <= y <= height - mb + 0.5:
-                seg.append(f"{X(_symlog(g)):.1f},{y:.1f}")
-                continue
-            if len(seg) > 1:
-                out.append(f'<polyline points="{" ".join(seg)}" fill="none" stroke="#B8613F" stroke-width="1.2" '
-                           f'stroke-dasharray="4,3"/>')
-            seg = []
     for t in [-256, -64, -16, -4, -1, 0, 1, 4, 16, 64, 256, 1024]:
         if d.min() <= t <= d.max():
             x = X(_symlog(t))
@@ -251,14 +286,26 @@ def profile_svg(h: dict, width: int = 340, height: int = 160) -> str:
     for yv in (y_lo, (y_lo + y_hi) / 2, y_hi):
         out.append(f'<text x="{ml - 4}" y="{Y(yv) + 3:.1f}" font-size="9" text-anchor="end" fill="#5A5F66">{fmt(yv, 1)}</text>')
     out.append(f'<text x="{(ml + width - mr) / 2:.0f}" y="{height - 3}" font-size="10" text-anchor="middle" '
-               f'fill="#5A5F66">distance δ (log scale) · band: interval · dashed: slope</text>')
+               f'fill="#5A5F66">distance δ (log scale) · band: 90% interval · dashed: slope</text>')
+    cy = (mt + height - mb) / 2
+    out.append(f'<text x="10" y="{cy:.0f}" font-size="9.5" text-anchor="middle" fill="#5A5F66" '
+               f'transform="rotate(-90 10 {cy:.0f})">score (logit), 0 at δ = 0</text>')
     out.append("</svg>")
     return "".join(out)
 
 
-def shares_svg(info: dict, width: int = 340) -> str:
+def _share(x) -> str:
+    """A share in [0, 1] with three decimals and never in scientific notation (it must fit beside its bar)."""
+    return f"{float(x):.3f}" if finite(x) else "—"
+
+
+def share_text(v, lo, hi) -> str:
+    return _share(v) + (f" [{_share(lo)}, {_share(hi)}]" if finite(lo) and finite(hi) else "")
+
+
+def shares_svg(info: dict, width: int = 360) -> str:
     parts = ("distance", "slot", "content", "residual")
-    rowh, ml, mr = 20, 64, 110
+    rowh, ml, mr = 20, 64, 132
     height = rowh * 4 + 16
     bw = width - ml - mr
     out = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" class="apx-shares" '
@@ -275,22 +322,27 @@ def shares_svg(info: dict, width: int = 340) -> str:
             out.append(f'<line x1="{a:.1f}" x2="{b:.1f}" y1="{y + 8}" y2="{y + 8}" stroke="{INK}" stroke-width="1.2"/>'
                        f'<line x1="{a:.1f}" x2="{a:.1f}" y1="{y + 4}" y2="{y + 12}" stroke="{INK}"/>'
                        f'<line x1="{b:.1f}" x2="{b:.1f}" y1="{y + 4}" y2="{y + 12}" stroke="{INK}"/>')
-        out.append(f'<text x="{ml + bw + 5}" y="{y + 12}" font-size="10.5" fill="{INK}">{fmt(v)} '
-                   f'<tspan fill="#5A5F66">{fmt_interval(lo, hi)}</tspan></text>')
+        iv = f" [{_share(lo)}, {_share(hi)}]" if finite(lo) and finite(hi) else ""
+        out.append(f'<text x="{ml + bw + 5}" y="{y + 12}" font-size="10.5" fill="{INK}">{_share(v)}'
+                   f'<tspan fill="#5A5F66">{iv}</tspan></text>')
     out.append(f'<text x="2" y="{height - 1}" font-size="9.5" fill="#5A5F66">share of within-row score variance; '
-               f'whiskers: bootstrap interval</text></svg>')
+               f'whiskers: 90% bootstrap interval</text></svg>')
     return "".join(out)
 
 
 def facts_table(info: dict) -> str:
     rows = [
-        ("slope", f"{fmt(info.get('slope'), 3)} {fmt_interval(info.get('slope_lo'), info.get('slope_hi'), 3)}"),
+        ("slope", f"{fmt(info.get('slope'), 3)} {fmt_interval(info.get('slope_lo'), info.get('slope_hi'), 3)}"
+                  " score/token (positive: falls with distance)"),
         ("shift test", f"{info.get('shift_verdict') or '—'} · change {fmt(info.get('shift_change'), 3)} · "
-                       f"offset {fmt(info.get('shift_offset'), 0)} · {info.get('shift_kind') or '—'}"),
+                       f"{shift_how(info.get('shift_kind'), info.get('shift_offset'))}"),
         ("role support", fmt(info.get("role_support")) + (f" · between {info['role_between']}"
                                                            if info.get("role_between") else "")),
         ("induction score", fmt(info.get("induction"))),
-        ("anchor", f"slot {fmt(info.get('anchor_slot'), 0)} · weight {fmt(info.get('anchor_weight'))}"),
+    ]
+    if is_anchor_like(info.get("role"), info.get("tags")):
+        rows.append(("anchor", f"slot {fmt(info.get('anchor_slot'), 0)} · weight {fmt(info.get('anchor_weight'))}"))
+    rows += [
         ("entropy ratio", fmt(info.get("entropy_ratio"))),
         ("mass", f"prev {fmt(info.get('mass_previous'))} · next {fmt(info.get('mass_next'))} · "
                  f"first {fmt(info.get('mass_first'))} · self {fmt(info.get('mass_self'))}"),
@@ -310,7 +362,17 @@ def map_img(mp: dict | None, scale_to: int = 256) -> str:
             + (f" (brightest = 99th percentile; max {fmt(mp['max'], 3)})" if mp.get("clipped") else "")
             + (f"; each pixel averages {mp['step_q']}×{mp['step_k']} pairs" if mp["step_q"] > 1 or mp["step_k"] > 1 else ""))
     return (f'<figure style="margin:0;max-width:{max(w, 260)}px"><img class="apx-map" alt="weight map" width="{w}" height="{h}" '
-            f'src="{png_data_uri(rgb)}"/><figcaption class="apx-sub">{esc_plain(note)}</figcaption></figure>')
+            f'src="{png_data_uri(rgb)}"/>{colour_bar_html(mp)}<figcaption class="apx-sub">{esc_plain(note)}</figcaption>'
+            '</figure>')
+
+
+def colour_bar_html(mp: dict, width: int = 160) -> str:
+    """The map's colour scale: the ramp from weight 0 to the map's top value, labelled at both ends."""
+    ramp = np.repeat(colourise(np.arange(255, dtype=np.uint8)[None, :]), 8, axis=0)     # codes 0..254, 255 = missing
+    top = ("≥ " if mp.get("clipped") else "") + fmt(mp["vmax"], 3)
+    return (f'<div class="apx-cbar" style="display:flex;align-items:center;gap:4px;font-size:10.5px;color:#5A5F66;'
+            f'margin:3px 0">weight 0<img alt="colour scale" width="{width}" height="8" '
+            f'style="border:1px solid #CFC8BC;image-rendering:auto" src="{png_data_uri(ramp)}"/>{esc_plain(top)}</div>')
 
 
 def top_keys_table(tk: list[dict]) -> str:
@@ -337,13 +399,13 @@ def role_badge(role: Any) -> str:
 
 
 def card_html(scan, key: str, text: int | None = None, findings: list[dict] | None = None,
-              with_style: bool = True, anchor: bool = False) -> str:
+              with_style: bool = True, anchor: bool = False, caution: bool = True, map_side: int = 256) -> str:
     h = _data.head_info(scan, key)
     info = h["info"]
     avail = _data.texts_with_map(scan, key)
     if text is None or text not in avail:
         text = avail[0] if avail else None
-    mp = _data.map_payload(scan, key, text) if text is not None else None
+    mp = _data.map_payload(scan, key, text, max_side=map_side) if text is not None else None
     tname = scan.texts[text].get("name", f"text {text}") if text is not None else ""
     tags = ", ".join(info["tags"])
     aid = f' id="card-{esc_plain(key.replace(":", "-").replace(".", "-"))}"' if anchor else ""
@@ -354,7 +416,7 @@ def card_html(scan, key: str, text: int | None = None, findings: list[dict] | No
             f'<div><h4>Distance profile</h4>{profile_svg(h)}<h4>Score split</h4>{shares_svg(info)}</div>'
             f'<div><h4>Evidence</h4>{facts_table(info)}<h4>Top keys</h4>'
             f'{top_keys_table(mp["top_keys"] if mp else [])}</div></div>'
-            f'<h4>Findings</h4>{findings_list(mine)}{caution_html(scan.caution)}</div>')
+            f'<h4>Findings</h4>{findings_list(mine)}{caution_html(scan.caution) if caution else ""}</div>')
     return (style_tag() if with_style else "") + body
 
 
@@ -422,9 +484,10 @@ PROBE_SERIES = [("r2", "probe R²", "#3F6E9A", ""), ("control_r2", "control (shu
                 ("untrained_r2", "untrained copy", "#6C8C4F", "2,3")]
 
 
-def curves_html(scan, with_style: bool = True) -> str:
+def curves_html(scan, with_style: bool = True, caution: bool = True, heading: bool = True) -> str:
     c = _data.curves_data(scan)
-    parts = ['<div class="apx apx-curves"><h3>Curves — position probes and behaviour past the training length</h3>',
+    parts = ['<div class="apx apx-curves">'
+             + ("<h3>Curves — position probes and behaviour past the training length</h3>" if heading else ""),
              '<div class="apx-cols">']
     pr = c["probe"]
     parts.append("<div><h4>Probe for absolute position, per layer</h4>")
@@ -451,14 +514,14 @@ def curves_html(scan, with_style: bool = True) -> str:
         parts.append(_line_chart([{"y": en["entropy"], "colour": "#6C8C4F", "dots": True}], en["position"], 380, 160,
                                  "query position", "entropy ratio", vline=en.get("training_length"),
                                  vlabel="training length"))
-    parts.append("</div></div>" + caution_html(scan.caution) + "</div>")
+    parts.append("</div></div>" + (caution_html(scan.caution) if caution else "") + "</div>")
     return (style_tag() if with_style else "") + "".join(parts)
 
 
 # ------------------------------------------------------------------ findings
 def findings_table_html(rows: list[dict], path: str | None = None, with_style: bool = True,
-                        caution: str | None = None) -> str:
-    head = '<div class="apx apx-findings"><h3>Findings</h3>'
+                        caution: str | None = None, heading: bool = True) -> str:
+    head = '<div class="apx apx-findings">' + ("<h3>Findings</h3>" if heading else "")
     if path:
         head += f'<p class="apx-sub">store: {esc_plain(path)}</p>'
     if not rows:

@@ -70,14 +70,38 @@ class Survey(StaticFallback, ipywidgets.VBox):
     def select(self, key: str) -> None:
         self.atlas.select(key)
 
+    def figure(self):
+        """The atlas as a matplotlib figure (``survey.card.figure()`` and ``survey.curves.figure()`` are the
+        others)."""
+        return self.atlas.figure()
+
+    def _pictures(self):
+        # one picture of everything the survey shows: the atlas, the open card and the curves (if measured)
+        from . import figures
+        return figures.stack([self.atlas.figure(), self.card.figure(), self.curves.figure()]), ""
+
+    def summary(self):
+        title, lines = self.atlas.summary()
+        parts = [title] + lines
+        if self.card.head:
+            t, ls = self.card.summary()
+            parts += [t + ":"] + ls
+        if self.panel is not None:
+            t, ls = self.panel.summary()
+            parts += [t + ":"] + ls
+        t, ls = self.curves.summary()
+        return "Survey — atlas, head card, findings and curves", parts + ls
+
     def to_html(self) -> str:
         rows = self.panel.rows if self.panel is not None else []
-        parts = [static.atlas_html(self.scan, self.atlas.marks, self.atlas.selected or None),
+        # the caution once, at the end (each view alone carries its own)
+        parts = [static.atlas_html(self.scan, self.atlas.marks, self.atlas.selected or None, caution=False),
                  static.card_html(self.scan, self.card.head, self.card.text if self.card.text >= 0 else None, rows,
-                                  with_style=False) if self.card.head else ""]
+                                  with_style=False, caution=False) if self.card.head else ""]
         if self.panel is not None:
             parts.append(static.findings_table_html(rows, self.panel.path or None, with_style=False))
-        parts.append(static.curves_html(self.scan, with_style=False))
+        parts.append(static.curves_html(self.scan, with_style=False, caution=False))
+        parts.append(static.caution_html(self.scan.caution))
         return "".join(parts)
 
 

@@ -35,7 +35,7 @@ def _profile_for(role: str, d: np.ndarray, rng: np.random.Generator) -> np.ndarr
     elif role == "next-token":
         v = np.where(d == -1, 4.0, -0.3 * np.log1p(ad))
     elif role == "local":
-        v = -rng.uniform(0.1, 0.6) * ad
+        v = -rng.uniform(0.1, 0.6) * np.minimum(ad, 32)
     elif role == "counting":
         v = np.zeros_like(d)
     else:
@@ -104,7 +104,8 @@ def synthetic_scan(layers: int = 4, heads: int = 4, *, seed: int = 0, causal: bo
                     w = float(rng.uniform(0.01, 0.08))
                     r[f"share_{k}"] = float(v)
                     r[f"share_{k}_lo"], r[f"share_{k}_hi"] = max(0.0, float(v) - w), min(1.0, float(v) + w)
-                slope = float(-rng.uniform(0.0, 0.6)) if role in ("local", "previous-token") else float(rng.normal(0, 0.05))
+                # the slope as attnpos.split defines it: positive when scores fall with distance
+                slope = float(rng.uniform(0.01, 0.6)) if role in ("local", "previous-token") else float(rng.normal(0, 0.005))
                 r["slope"], r["slope_lo"], r["slope_hi"] = slope, slope - 0.03, slope + 0.03
                 r["entropy_ratio"] = float(rng.uniform(0.85, 1.0) if role == "counting" else rng.uniform(0.1, 0.7))
                 r["anchor_slot"] = 0.0 if role == "anchor" else float("nan")

@@ -35,9 +35,13 @@ def _find_chromium() -> str | None:
 
 
 @pytest.fixture(scope="session")
-def chromium_path() -> str:
+def chromium_path(request) -> str:
     path = _find_chromium()
     if path is None and hasattr(os, "geteuid") and os.geteuid() == 0:
+        # say so on a line of its own (the terminal reporter writes past pytest's capture): it takes minutes
+        reporter = request.config.pluginmanager.get_plugin("terminalreporter")
+        if reporter is not None:
+            reporter.write_line("browser tests: installing Debian's chromium with apt-get (a few minutes, once)")
         env = dict(os.environ, DEBIAN_FRONTEND="noninteractive")
         subprocess.run(["apt-get", "update"], env=env, check=False, capture_output=True, timeout=300)
         subprocess.run(["apt-get", "install", "-y", "chromium", "chromium-driver"], env=env, check=False,
@@ -96,7 +100,9 @@ def jupyterlab(tmp_path_factory):
     # start the notebook's kernel without asking ("Always start the preferred kernel")
     tracker = base / "settings" / "@jupyterlab" / "notebook-extension"
     tracker.mkdir(parents=True)
-    (tracker / "tracker.jupyterlab-settings").write_text(json.dumps({"autoStartDefaultKernel": True}))
+    # ... and render every cell (JupyterLab 4 otherwise renders only the cells in view)
+    (tracker / "tracker.jupyterlab-settings").write_text(json.dumps({"autoStartDefaultKernel": True,
+                                                                     "windowingMode": "none"}))
     port, token = _free_port(), "attnpos-test-" + os.urandom(8).hex()
     env = dict(os.environ, HF_HUB_OFFLINE="1", TRANSFORMERS_OFFLINE="1", JUPYTER_CONFIG_DIR=str(cfg),
                JUPYTER_RUNTIME_DIR=str(base / "runtime"), JUPYTERLAB_SETTINGS_DIR=str(base / "settings"),

@@ -54,7 +54,11 @@ def test_report_of_a_real_scan_renders_offline(browser, real_scan, artifacts, tm
 
 def test_report_shows_hostile_tokens_as_text(browser, tmp_path):
     scan = synthetic_scan(3, 3, seed=21, hostile=True)
-    out = write_report(scan, tmp_path / "hostile.html")
+    findings_mod = pytest.importorskip("attnpos.findings")
+    store = findings_mod.Findings(tmp_path / "notes.json")
+    store.add("L1.H1", f"note {HOSTILE} {HOSTILE_IMG}", fingerprint=scan.model["fingerprint"],
+              texts_hash=scan.texts_hash)
+    out = write_report(scan, tmp_path / "hostile.html", findings=store)
     page, ev = _open(browser, out)
     try:
         assert page.locator("svg.apx-atlas g.apx-cell").count() == 9
@@ -64,8 +68,14 @@ def test_report_shows_hostile_tokens_as_text(browser, tmp_path):
         assert "\\x00\\x1b[31m\\x07" in body
         # ... and nothing was injected or run (Chromium's HTML parser as the reference: WHATWG HTML parsing of the
         # escaped text creates no elements or event-handler attributes)
-        assert page.locator("script").count() == 0
+        # only the report's own two script elements: its JSON data and its hash-pinned script
+        assert page.locator("script").count() == 2
         assert page.locator("img[src='x']").count() == 0
+        # the card drawn in the page for a clicked head shows the hostile note as text, and runs nothing
+        page.locator("a[data-head='L1.H1']").click()
+        page.locator("#rp-card .ap-card-findings li").wait_for(timeout=10_000)
+        assert HOSTILE in page.locator("#rp-card .ap-card-findings").inner_text()
+        assert page.locator("img[src='x']").count() == 0 and page.locator("script").count() == 2
         assert page.evaluate("() => [...document.querySelectorAll('*')].filter(e => e.getAttributeNames()"
                              ".some(a => a.startsWith('on'))).length") == 0
         assert ev["dialogs"] == [] and ev["errors"] == []

@@ -33,6 +33,7 @@ _EXPORTS = {
     "record": "capture", "Recording": "capture", "Reducer": "capture",
     "Split": "split", "ShiftTest": "shift", "induction_scores": "induction", "head_table": "roles",
     "Scan": "results.scan", "scan": "pipeline", "ablate": "ablation", "load_result": "core.protocol",
+    "sweep": "sweeping",
 }
 
 __all__ = ["AttnposError", *_EXPORTS, "__version__"]

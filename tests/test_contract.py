@@ -58,6 +58,13 @@ def results():
         "ablation": ablation.ablate(rope, ["L0.H1", "L1.H2"], TEXTS, n_boot=10),
         "compare": compare.compare_scans(scan, attnpos.scan(rope, TEXTS[:2], n_boot=10), all_heads=True),
     }
+    from attnpos.results.sweep import SweepResult
+
+    untrained = attnpos.from_model(tiny.build("llama", layers=2, heads=4), tiny.tokenizer(), name="tiny-llama")
+    early = attnpos.scan(untrained, TEXTS[:1], n_boot=0, shift=False)
+    later = attnpos.scan(untrained, TEXTS[:2], n_boot=0, shift=False)
+    out["sweep"] = SweepResult.from_scans([(0, early), (50, later)],
+                                          loss={"run": {"source": "made here", "step": [10, 50], "loss": [4.1, 2.9]}})
     scan.attach(out["length"])
     return out
 

@@ -237,6 +237,7 @@ _CLASSES: dict[str, type | str] = {
     "bands": "attnpos.results.bands:BandsResult",
     "ablation": "attnpos.results.ablation:AblationResult",
     "compare": "attnpos.results.compare:CompareResult",
+    "sweep": "attnpos.results.sweep:SweepResult",
 }
 
 

@@ -22,3 +22,9 @@ ABLATION_BOOT = 200
 
 #: training context of the reference models, in tokens (attnpos train --context)
 REFERENCE_CONTEXT = 128
+
+#: bootstrap resamples per checkpoint in a sweep (attnpos sweep --boot): the timeline reads point values, so none
+#: by default (a sweep of many checkpoints stays a sweep of scans, not of bootstraps)
+SWEEP_BOOT = 0
+#: worker processes of the local cluster a sweep starts (attnpos sweep --workers), one thread each
+SWEEP_WORKERS = 2

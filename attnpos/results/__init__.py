@@ -15,5 +15,6 @@ kind           class                                       made by
 ``bands``      :class:`~attnpos.results.bands.BandsResult`  :func:`attnpos.bands.rope_bands`
 ``ablation``   :class:`~attnpos.results.ablation.AblationResult`  :func:`attnpos.ablate`
 ``compare``    :class:`~attnpos.results.compare.CompareResult`  :func:`attnpos.compare.compare`
+``sweep``      :class:`~attnpos.results.sweep.SweepResult`  :func:`attnpos.sweeping.sweep`
 =============  ==========================================  =====================================
 """

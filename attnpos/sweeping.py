@@ -261,6 +261,16 @@ def store_meta(raw_texts, *, n_boot: int = settings.SWEEP_BOOT, shift: bool = Tr
                          "max_tokens": int(max_tokens) if max_tokens else None}}
 
 
+def require_engine() -> None:
+    """Dask distributed and pyarrow are the optional extra ``sweep``; say how to install them when missing."""
+    import importlib.util
+
+    missing = [m for m in ("distributed", "pyarrow") if importlib.util.find_spec(m) is None]
+    if missing:
+        raise AttnposError(f"attnpos sweep needs {' and '.join(missing)} (Dask distributed runs the scans, pyarrow "
+                           "writes the head tables): pip install 'attnpos[sweep]'.")
+
+
 def check_scheduler(address: str | None) -> None:
     if address is not None and not SCHEDULER_ADDRESS.match(str(address)):
         raise AttnposError(f"{address!r} is not a scheduler address; give it as the Dask scheduler prints it, e.g. "
@@ -286,7 +296,8 @@ def connect(scheduler: str | None = None, workers: int = settings.SWEEP_WORKERS)
     return Client(cluster), cluster
 
 
-def _record(store: SweepStore, c: Checkpoint, out: dict) -> str:
+def record_result(store: SweepStore, c: Checkpoint, out: dict) -> str:
+    """Write what :func:`scan_checkpoint` returned for ``c`` into the store; returns its status."""
     point = c.point()
     if out["status"] == "ok":
         store.write_entry(out["key"], point, out["heads"], out["scan"], seconds=out.get("seconds"),
@@ -321,6 +332,7 @@ def sweep(targets, texts=None, *, out: str | os.PathLike, scheduler: str | None 
     if workers < 1:
         raise AttnposError(f"workers must be at least 1, got {workers}.")
     check_scheduler(scheduler)
+    require_engine()
     points = find_checkpoints(targets, allow_pickle=allow_pickle, trust_remote_code=trust_remote_code)
     raw = as_raw(texts)
     options = _options(n_boot, shift, induction, max_tokens, allow_pickle, trust_remote_code, threads)
@@ -349,7 +361,7 @@ def sweep(targets, texts=None, *, out: str | os.PathLike, scheduler: str | None 
                     res = fut.result()
                 except Exception as exc:  # noqa: BLE001 - e.g. KilledWorker: the task kept killing its worker
                     res = {"status": "failed", "error": f"{type(exc).__name__}: {str(exc)[:400]}"}
-                status = _record(store, c, res)
+                status = record_result(store, c, res)
                 store.rebuild_index()
                 if on_result is not None:
                     on_result(c, status, {k: v for k, v in res.items() if k not in ("heads", "scan")})

@@ -34,8 +34,9 @@ def add_arguments(p) -> None:
 def check(args) -> None:
     from ..errors import AttnposError
     from ..sweep_store import SweepStore
-    from ..sweeping import check_scheduler, find_checkpoints, store_meta
+    from ..sweeping import check_scheduler, find_checkpoints, require_engine, store_meta
 
+    require_engine()
     check_scheduler(args.scheduler)
     if args.scheduler is not None and args.workers is not None:
         raise AttnposError("--workers sizes the local cluster a sweep starts; with --scheduler the cluster's own "

@@ -317,3 +317,28 @@ def test_a_store_of_other_texts_is_refused(run_dir, client, tmp_path):
     sweep([run / "checkpoint-1"], TEXTS, out=tmp_path / "s", client=client)
     with pytest.raises(AttnposError, match="other texts"):
         sweep([run / "checkpoint-1"], TEXTS[:1], out=tmp_path / "s", client=client)
+
+
+def test_the_timeline_view_carries_the_grid_the_loss_and_a_static_rendering():
+    import numpy as np
+
+    from attnpos.views.timeline import Timeline, palette
+
+    rows = [dict(step=s, key=f"L0.H{h}", stack="main", layer=0, head=h, role=r, tags=[r], induction=0.1 * s)
+            for s in (100, 200, 400) for h, r in ((0, "counting"), (1, "induction" if s > 100 else "mixed"))]
+    res = SweepResult(points=[{"step": s, "status": "ok"} for s in (100, 200, 400)], heads=pd.DataFrame(rows),
+                      loss={"run": {"source": "trainer_state.json", "step": [50, 100, 300, 400],
+                                    "loss": [3.0, 2.5, 2.6, 2.0]}})
+    w = Timeline(res, head="L0.H1")
+    names = [p["role"] for p in palette()]
+    grid = np.frombuffer(w.roles, np.uint8).reshape(2, 3)
+    assert [[names[c] for c in r] for r in grid] == [list(res.grid().loc[k]) for k in res.head_keys()]
+    nums = np.frombuffer(w.numbers, "<f4").reshape(2, 3, len(w.meta["stat_names"]))
+    k = w.meta["stat_names"].index("induction")
+    np.testing.assert_allclose(nums[1, :, k], [10.0, 20.0, 40.0], rtol=1e-6)
+    assert list(np.frombuffer(w.loss_values, "<f4")) == [50, 100, 300, 400, 3.0, 2.5, 2.6, 2.0]
+    assert w.meta["role_emergence"]["induction"] == {"step": 200, "heads": ["L0.H1"]}
+    page = w.to_html()
+    assert page.count("class='apt-cell'") == 6 and "class='apt-loss'" in page
+    assert "L0.H1</b> over the steps — induction from step 200" in page
+    assert w._repr_mimebundle_()[0]["text/html"] == page

@@ -81,6 +81,16 @@ def test_save_every_writes_checkpoints_in_the_model_layout(run_dir):
     assert curve["step"] == list(range(1, 13)) and curve["loss"] == [v for _, v in record["train_loss_history"]]
 
 
+def test_saving_checkpoints_does_not_change_the_training(tmp_path):
+    from attnpos.reference.train import train
+
+    plain, _ = train("rope", None, steps=5, **TINY)
+    saved, _ = train("rope", tmp_path / "run", steps=5, save_every=2, **TINY)
+    a, b = plain.state_dict(), saved.state_dict()
+    assert a.keys() == b.keys() and all(bool((a[k] == b[k]).all()) for k in a)     # bit for bit
+    assert sorted(p.name for p in (tmp_path / "run").glob("checkpoint-*")) == ["checkpoint-2", "checkpoint-4"]
+
+
 def test_a_trainer_state_file_gives_the_step_and_the_loss_curve(tmp_path, run_dir):
     run, _ = run_dir
     other = tmp_path / "hf-run"

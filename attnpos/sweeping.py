@@ -5,8 +5,8 @@ Example::
 
     >>> import attnpos
     >>> tl = attnpos.sweep("runs/rope", out="runs/rope-sweep")               # doctest: +SKIP
-    >>> tl.role_emergence()["previous-token"]                                # doctest: +SKIP
-    {'step': 120, 'heads': ['L0.H1']}
+    >>> tl.role_emergence()["previous-token"]          # a 600-step RoPE run, demo notebook 06 # doctest: +SKIP
+    {'step': 100, 'heads': ['L0.H1']}
     >>> attnpos.sweep("runs/rope", out="runs/rope-sweep",                    # doctest: +SKIP
     ...               scheduler="tcp://scheduler-host:8786")                  # the same sweep on a cluster
 
@@ -291,7 +291,7 @@ def connect(scheduler: str | None = None, workers: int = settings.SWEEP_WORKERS)
         except (OSError, TimeoutError) as exc:
             raise AttnposError(f"Could not reach the Dask scheduler at {scheduler} ({exc}). Check the address, "
                                "and that the scheduler runs and this machine may connect to it.") from None
-    cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True, dashboard_address=None,
+    cluster = LocalCluster(n_workers=int(workers), threads_per_worker=1, processes=True, dashboard_address=":0",
                            silence_logs=logging.ERROR)
     return Client(cluster), cluster
 

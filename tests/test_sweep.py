@@ -51,7 +51,7 @@ def run_dir(tmp_path_factory):
 def client():
     from dask.distributed import Client, LocalCluster
 
-    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+    cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=":0",
                            silence_logs=50)
     c = Client(cluster)
     try:

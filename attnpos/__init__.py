@@ -34,6 +34,7 @@ _EXPORTS = {
     "Split": "split", "ShiftTest": "shift", "induction_scores": "induction", "head_table": "roles",
     "Scan": "results.scan", "scan": "pipeline", "ablate": "ablation", "load_result": "core.protocol",
     "stretch": "stretching",
+    "sweep": "sweeping",
 }
 
 __all__ = ["AttnposError", *_EXPORTS, "__version__"]

@@ -60,6 +60,13 @@ def results():
         "stretch": stretching.stretch(rope, TEXTS * 6, to=160, scalings=["linear:2", "yarn:2"], n_sequences=3,
                                       n_boot=10),
     }
+    from attnpos.results.sweep import SweepResult
+
+    untrained = attnpos.from_model(tiny.build("llama", layers=2, heads=4), tiny.tokenizer(), name="tiny-llama")
+    early = attnpos.scan(untrained, TEXTS[:1], n_boot=0, shift=False)
+    later = attnpos.scan(untrained, TEXTS[:2], n_boot=0, shift=False)
+    out["sweep"] = SweepResult.from_scans([(0, early), (50, later)],
+                                          loss={"run": {"source": "made here", "step": [10, 50], "loss": [4.1, 2.9]}})
     scan.attach(out["length"])
     return out
 

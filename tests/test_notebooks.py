@@ -33,10 +33,12 @@ def test_notebook_runs(path, tmp_path):
     nb = nbformat.read(work / path.name, as_version=4)
     env_before = os.environ.get("HF_HUB_OFFLINE")
     os.environ["HF_HUB_OFFLINE"] = "1"
+    os.environ["ATTNPOS_DEMO_QUICK"] = "1"       # notebooks that train (06) run a tiny schedule in the suite
     try:
         client = NotebookClient(nb, timeout=600, kernel_name="python3", resources={"metadata": {"path": str(work)}})
         client.execute()
     finally:
+        os.environ.pop("ATTNPOS_DEMO_QUICK", None)
         if env_before is None:
             os.environ.pop("HF_HUB_OFFLINE", None)
     errors = [o for c in nb.cells if c.cell_type == "code" for o in c.outputs if o.output_type == "error"]

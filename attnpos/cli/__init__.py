@@ -1,4 +1,4 @@
-"""The command line: ``attnpos scan | probe | length | stretch | ablate | compare | train | reference``.
+"""The command line: ``attnpos scan | probe | length | stretch | ablate | compare | sweep | train | reference``.
 
 One module per sub-command in this package, each with ``add_arguments(parser)``,
 ``check(args)`` — every check that needs no model: output paths, input files, head keys, numbers, the model folder
@@ -19,7 +19,7 @@ import warnings
 
 from ..errors import AttnposError
 
-COMMANDS = ("scan", "probe", "length", "stretch", "ablate", "compare", "train", "reference")
+COMMANDS = ("scan", "probe", "length", "stretch", "ablate", "compare", "sweep", "train", "reference")
 
 _HELP = {
     "scan": "scan a model: per-head masses, score split, slope, shift test, induction, roles",
@@ -32,6 +32,8 @@ _HELP = {
               "intervention that backs a role",
     "compare": "compare two checkpoints head by head: role, score-split shares and slope changes beyond their "
                "intervals",
+    "sweep": "scan every checkpoint of a training run in parallel (Dask distributed) into a resumable store: when "
+             "did each head get its role",
     "train": "train one reference model on CPU: attnpos train SCHEME --out DIR [--minutes M] [--context N] "
              "[--seed S] [--steps N]",
     "reference": "the reference models: their corpus (size, hash, entropy), a quick position probe, the training "

@@ -26,6 +26,10 @@ def add_arguments(p) -> None:
     p.add_argument("--batch", type=c.count(1), default=32, help="windows per batch (default 32)")
     p.add_argument("--lr", type=c.positive_number, default=3e-3, help="peak learning rate (default 3e-3)")
     p.add_argument("--threads", type=c.count(1), default=2, help="torch CPU threads (default 2)")
+    p.add_argument("--save-every", type=c.count(1), default=None, metavar="K",
+                   help="also save the model every K updates into OUT/checkpoint-<step>/ (for attnpos sweep)")
+    p.add_argument("--log-every", type=c.count(1), default=50, metavar="N",
+                   help="record the running training loss every N updates (default 50)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
 
 
@@ -41,6 +45,10 @@ def command_line(args) -> str:
         parts += ["--batch", str(args.batch)]
     if args.lr != 3e-3:
         parts += ["--lr", f"{args.lr:g}"]
+    if args.save_every is not None:
+        parts += ["--save-every", str(args.save_every)]
+    if args.log_every != 50:
+        parts += ["--log-every", str(args.log_every)]
     return shlex.join(parts)
 
 
@@ -60,9 +68,11 @@ def run(args) -> int:
         minutes = 4.5
     _, record = train(args.scheme, args.out, context=args.context, seed=args.seed, steps=args.steps,
                       minutes=minutes, batch=args.batch, lr=args.lr, threads=args.threads,
-                      progress=not args.quiet, command=command_line(args))
+                      progress=not args.quiet, command=command_line(args), save_every=args.save_every,
+                      log_every=args.log_every)
     print(f"{args.scheme}: {record['steps']} steps in {record['minutes']:.2f} min; "
           f"loss per byte (nats) train {record['train_loss_per_byte']:.4f}, val {record['val_loss_per_byte']:.4f} "
           f"(untrained {record['val_loss_per_byte_untrained']:.4f}; unigram entropy "
-          f"{record['unigram_entropy_per_byte']:.4f}); saved to {args.out}")
+          f"{record['unigram_entropy_per_byte']:.4f}); saved to {args.out}"
+          + (f" (and a checkpoint every {args.save_every} steps)" if args.save_every else ""))
     return 0

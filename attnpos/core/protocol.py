@@ -238,6 +238,7 @@ _CLASSES: dict[str, type | str] = {
     "ablation": "attnpos.results.ablation:AblationResult",
     "compare": "attnpos.results.compare:CompareResult",
     "stretch": "attnpos.results.stretch:StretchResult",
+    "sweep": "attnpos.results.sweep:SweepResult",
 }
 
 

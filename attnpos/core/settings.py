@@ -36,3 +36,8 @@ STRETCH_BAND_TEXTS = 4
 #: the dtypes weights can be kept in (attnpos scan --dtype); the first is the default. Attention scores are always
 #: computed and reduced in float32, whatever the weights' dtype.
 DTYPES = ("float32", "bfloat16", "float16")
+#: bootstrap resamples per checkpoint in a sweep (attnpos sweep --boot): the timeline reads point values, so none
+#: by default (a sweep of many checkpoints stays a sweep of scans, not of bootstraps)
+SWEEP_BOOT = 0
+#: worker processes of the local cluster a sweep starts (attnpos sweep --workers), one thread each
+SWEEP_WORKERS = 2

@@ -120,8 +120,13 @@ def _versions() -> dict:
 def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CONTEXT, seed: int = 0,
           steps: int | None = None, minutes: float | None = 4.5, batch: int = 32, lr: float = 3e-3,
           warmup: int = 40, threads: int = 2, corpus_bytes: int | None = None, val_windows: int = VAL_WINDOWS,
-          progress: bool = True, command: str | None = None, n_layers: int = 4, hidden: int = 128, heads: int = 4):
-    """Train a reference model; save it to ``out`` (if given) and return ``(model, record)``."""
+          progress: bool = True, command: str | None = None, n_layers: int = 4, hidden: int = 128, heads: int = 4,
+          save_every: int | None = None, log_every: int = 50):
+    """Train a reference model; save it to ``out`` (if given) and return ``(model, record)``.
+
+    ``save_every``: also save the model every this-many updates into ``out/checkpoint-<step>/`` (the same folder
+    layout as the final model, whose own record covers the steps so far); ``log_every``: how often the running
+    mean of the training loss is added to ``train_loss_history``."""
     if scheme not in SCHEMES:
         raise AttnposError(f"unknown position scheme {scheme!r}; choose one of: {', '.join(SCHEMES)}")
     if steps is None and minutes is None:
@@ -130,6 +135,10 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
         raise AttnposError(f"--steps must be at least 1, got {steps}")
     if minutes is not None and minutes <= 0:
         raise AttnposError(f"--minutes must be positive, got {minutes}")
+    if save_every is not None and (save_every < 1 or out is None):
+        raise AttnposError(f"--save-every must be at least 1 and needs --out, got {save_every}")
+    if log_every < 1:
+        raise AttnposError(f"--log-every must be at least 1, got {log_every}")
     torch.set_num_threads(max(1, int(threads)))
     t_start = time.perf_counter()
 
@@ -204,8 +213,16 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
         if len(recent) > 50:
             recent.pop(0)
         step += 1
-        if step % 50 == 0:
+        if step % log_every == 0:
             history.append([step, round(sum(recent) / len(recent), 4)])
+        if save_every and step % save_every == 0 and (steps is None or step < steps):
+            model.eval()
+            model.config.attnpos_training = {"scheme": scheme, "steps": step, "intermediate": True,
+                                             "train_loss_history": [list(h) for h in history],
+                                             "loss_unit": "nats per byte (running mean of the last 50 batches)",
+                                             "seed": int(seed), "context": context, "command": command or ""}
+            save(model, Path(out) / f"checkpoint-{step}")
+            model.train()
         if bar is not None:
             bar.update(1)
             if step % 10 == 0:
@@ -230,6 +247,8 @@ def train(scheme: str, out: str | os.PathLike | None, context: int = DEFAULT_CON
         "unigram_entropy_per_byte": round(entropy, 5),
         "loss_unit": "nats per byte (train loss: mean of the last 50 batches; val: fixed held-out windows)",
         "train_loss_history": history,
+        "log_every": int(log_every),
+        "save_every": int(save_every) if save_every else None,
         "batch": batch,
         "context": context,
         "lr": lr,

@@ -16,5 +16,6 @@ kind           class                                       made by
 ``ablation``   :class:`~attnpos.results.ablation.AblationResult`  :func:`attnpos.ablate`
 ``compare``    :class:`~attnpos.results.compare.CompareResult`  :func:`attnpos.compare.compare`
 ``stretch``    :class:`~attnpos.results.stretch.StretchResult`  :func:`attnpos.stretching.stretch`
+``sweep``      :class:`~attnpos.results.sweep.SweepResult`  :func:`attnpos.sweeping.sweep`
 =============  ==========================================  =====================================
 """

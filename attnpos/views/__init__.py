@@ -8,6 +8,8 @@ Widgets (anywidget; each also renders as static HTML when no kernel or widget ma
 - :class:`Curves` — probe R² per layer; loss per position past the training length.
 - :class:`FindingsPanel` — notes on a head, layer or the model, written through :mod:`attnpos.findings`.
 - :class:`Survey` — all four, linked.
+- :class:`StretchBoard` — a stretch result: loss curves of every scaling and the heads × variants break grid.
+- :class:`Timeline` — a sweep result: heads × training steps coloured by role, the loss curve above.
 
 Example::
 
@@ -25,7 +27,9 @@ from .curves import Curves
 from .findings_panel import FindingsPanel
 from .static import atlas_html, card_html, curves_html, findings_table_html
 from .survey import Survey, survey
+from .stretch import StretchBoard
+from .timeline import Timeline
 
-__all__ = ["Atlas", "HeadCard", "Curves", "FindingsPanel", "Survey", "survey", "roles_now", "role_colours", "role_palette", "RAMP",
+__all__ = ["Atlas", "HeadCard", "Curves", "FindingsPanel", "Survey", "survey", "StretchBoard", "Timeline", "roles_now", "role_colours", "role_palette", "RAMP",
            "head_key", "layer_key", "parse_key", "show_token", "atlas_html", "card_html", "curves_html",
            "findings_table_html"]

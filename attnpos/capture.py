@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import sys
 import warnings
 from dataclasses import dataclass, field
 from typing import Any, Iterable, Sequence

@@ -447,7 +447,7 @@ def all_cards_payload(scan, shared: bool = False) -> dict:
 
     t = scan.heads.reset_index(drop=True)
     n = len(t)
-    fields = list(ATLAS_FIELDS) + ["intercept"]
+    fields = [f for f in ATLAS_FIELDS if f != "faded"] + ["intercept"]     # the card reads role_support itself
     numbers = np.full((n, len(fields)), np.nan, dtype=np.float32)
     words = {k: [] for k in ("keys", "roles", "tags", "evidence", "shift_kind", "shift_verdict", "shift_how",
                              "anchor_like")}
@@ -466,7 +466,7 @@ def all_cards_payload(scan, shared: bool = False) -> dict:
         words["evidence"].append(info["evidence"])
         for w in ("shift_kind", "shift_verdict", "shift_how"):
             words[w].append(info.get(w) or "")
-        words["anchor_like"].append(bool(info["anchor_like"]))
+        words["anchor_like"].append(1 if info["anchor_like"] else 0)
         dist = h["distance"]
         arr = np.stack([h["value"], h["low"], h["high"]]) if len(dist) else np.zeros((3, 0))
         fin = arr[np.isfinite(arr)]
@@ -486,6 +486,9 @@ def all_cards_payload(scan, shared: bool = False) -> dict:
         for name in ("roles", "tags", "shift_kind", "shift_verdict", "shift_how"):
             words[name] = [values.setdefault(json_key(v), len(values)) for v in words[name]]
         words["values"] = [json.loads(v) for v in values]
+        for name in ("shift_kind", "shift_verdict", "shift_how"):
+            if n and len(set(words[name])) == 1:
+                words[name] = words[name][0]          # the same for every head: one index (report_cards.js reads it)
     return {"fields": fields, "n": n, "nb": nb, "distance": [float(x) for x in dist],
             "numbers": b64(numbers.astype("<f4")), "profile": b64(prof.astype(np.uint8)),
             "profile_low": b64(lows.astype("<f4")), "profile_span": b64(spans.astype("<f4")),

@@ -15,12 +15,13 @@
   const K = D.fields.length, nb = D.nb;
   const index = new Map(D.keys.map((k, i) => [k, i]));
 
-  const word = (name, i) => D.values[D[name][i]];      // repeated words are stored once (data.all_cards_payload)
+  // repeated words are stored once (data.all_cards_payload); a word every head shares is one index, not a list
+  const word = (name, i) => D.values[typeof D[name] === "number" ? D[name] : D[name][i]];
 
   function state(i) {
     const info = { key: D.keys[i], role: word("roles", i) || null, tags: word("tags", i), evidence: D.evidence[i],
                    shift_kind: word("shift_kind", i), shift_verdict: word("shift_verdict", i),
-                   shift_how: word("shift_how", i), anchor_like: D.anchor_like[i] };
+                   shift_how: word("shift_how", i), anchor_like: D.anchor_like[i] === 1 };
     D.fields.forEach((f, k) => { const v = numbers[i * K + k]; info[f] = Number.isFinite(v) ? v : null; });
     // the profile, decoded from its uint8 codes (255 = not measured)
     const arr = new Float32Array(4 * nb);
@@ -65,7 +66,8 @@
   const strength = new Float32Array(b64(D.strength));
   const view = document.querySelector("#atlas .apx-atlas-view");
   if (view) {
-    const cells = new Map([...view.querySelectorAll("g.apx-cell")].map((g) => [g.getAttribute("data-key"), g]));
+    const cells = new Map([...view.querySelectorAll("a[data-head] > g.apx-cell")]
+      .map((g) => [g.parentNode.getAttribute("data-head"), g]));
     const f = { roles: null, lo: null, hi: null, strength: 0 };
     const shown = apEl("span", "apx-sub");
     const paint = () => {

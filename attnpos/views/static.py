@@ -149,7 +149,9 @@ def atlas_svg(data: dict, marks: dict | None = None, selected: str | None = None
         rid = int(data["roles"][i])
         box = (f'<rect width="{cw}" height="{ch}" rx="3" style="stroke:{INK};stroke-width:2.5"/>' if sel
                else f'<rect width="{cw}" height="{ch}" rx="3"/>')
-        parts = [f'<g class="apx-cell apx-r{rid}" data-key="{esc_plain(key)}" transform="translate({x},{y})"{faded}>',
+        # linked cells (the report) carry their key once, on the link (a 32 × 32 report stays under 1 MB)
+        key_attr = "" if link_all else f' data-key="{esc_plain(key)}"'
+        parts = [f'<g class="apx-cell apx-r{rid}"{key_attr} transform="translate({x},{y})"{faded}>',
                  f'<title>{esc_plain(tip)}</title>', box, f'<rect class="apx-strip" width="{cw}" height="3"/>']
         fs = 11 if lay["label"] == "short" else 9.5
         ty = 3 + fs if lay.get("spark", True) else (ch + 3) / 2 + fs * 0.36     # centred in a small mark

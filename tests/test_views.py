@@ -531,3 +531,18 @@ def test_scan_refuses_a_figures_path_that_is_a_file(tmp_path, capsys):
     f.write_text("x")
     assert cli_main(["scan", "ref:rope", "--figures", str(f)]) == 2
     assert "--figures takes a folder" in capsys.readouterr().err
+
+
+def test_every_part_of_the_split_is_drawn_on_the_card():
+    # the card's share bars (static SVG, matplotlib picture, summary) follow the core's list of split parts,
+    # including the position-pair part, instead of a list of their own
+    from attnpos.core.columns import PART_NAMES
+    from attnpos.views import static
+    from attnpos.views.common import part_colours
+
+    assert "pair" in PART_NAMES and list(part_colours()) == list(PART_NAMES)   # card.js reads the parts from it
+    info = {f"share_{p}": 0.2 for p in PART_NAMES}
+    svg = static.shares_svg(info)
+    for p in PART_NAMES:
+        assert f">{p}</text>" in svg
+    assert f'height="{20 * len(PART_NAMES) + 16}"' in svg

@@ -163,3 +163,18 @@ def keep_reducer():
             return self.d
 
     return Keep()
+
+
+def refused_before_torch(argv: list, message: str, cwd) -> None:
+    """Run ``attnpos <argv>`` in a fresh interpreter and check it is refused (exit 2) with ``message`` on stderr,
+    no traceback, and torch never imported."""
+    import subprocess
+    import sys
+
+    code = ("import sys\nfrom attnpos.cli import main\n"
+            f"rc = main({argv!r})\n"
+            "assert rc == 2, rc\n"
+            "assert 'torch' not in sys.modules, 'torch was imported before the argument was refused'\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, cwd=cwd)
+    assert done.returncode == 0, done.stderr
+    assert message in done.stderr and "Traceback" not in done.stderr

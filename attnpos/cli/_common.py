@@ -73,6 +73,17 @@ def add_text_arguments(p: argparse.ArgumentParser, windows: bool = True) -> None
                        help="split texts into windows of at most N tokens (default: the model's context limit)")
 
 
+def add_long_text_arguments(p: argparse.ArgumentParser, sequences: int, sequences_help: str) -> None:
+    """``--text``, ``--training-length`` and ``--sequences`` of the commands that read long sequences (length,
+    stretch)."""
+    p.add_argument("--text", action="append", type=Path, default=None, metavar="PATH",
+                   help="a .txt file or a folder of them, joined and cut into sequences of N tokens; repeatable; "
+                        "default: freshly generated documents of the reference corpus scenarios")
+    p.add_argument("--training-length", type=count(1), default=None, metavar="L",
+                   help="the context length the model was trained on (default: recorded with the model or config)")
+    p.add_argument("--sequences", type=count(1), default=sequences, metavar="K", help=sequences_help)
+
+
 def add_json_argument(p: argparse.ArgumentParser, what: str) -> None:
     p.add_argument("--json", type=Path, default=None, metavar="OUT", help=f"write the {what} as JSON")
 

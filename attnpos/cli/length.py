@@ -3,7 +3,6 @@ head, role drift."""
 
 from __future__ import annotations
 
-from pathlib import Path
 
 from ..core import settings
 from . import _common as c
@@ -14,13 +13,7 @@ def add_arguments(p) -> None:
     c.add_model_arguments(p)
     p.add_argument("--to", type=c.count(4), required=True, metavar="N",
                    help="sequence length in tokens (may exceed the training length)")
-    p.add_argument("--text", action="append", type=Path, default=None, metavar="PATH",
-                   help="a .txt file or a folder of them, joined and cut into sequences of N tokens; repeatable; "
-                        "default: freshly generated documents of the reference corpus scenarios")
-    p.add_argument("--training-length", type=c.count(1), default=None, metavar="L",
-                   help="the context length the model was trained on (default: recorded with the model or config)")
-    p.add_argument("--sequences", type=c.count(1), default=settings.LENGTH_SEQUENCES, metavar="K",
-                   help=f"at most K sequences ({settings.LENGTH_SEQUENCES})")
+    c.add_long_text_arguments(p, settings.LENGTH_SEQUENCES, f"at most K sequences ({settings.LENGTH_SEQUENCES})")
     p.add_argument("--bins", type=c.count(1), default=settings.LENGTH_BINS,
                    help=f"about this many query-position bins ({settings.LENGTH_BINS})")
     p.add_argument("--boot", type=c.count(0), default=settings.LENGTH_BOOT,

@@ -19,13 +19,8 @@ def add_arguments(p) -> None:
                         "F default 2), yarn[:F[:BETA_FAST:BETA_SLOW]], llama3[:F[:LOW:HIGH]]; F defaults to N / "
                         "training length; repeatable (default: linear, dynamic, yarn); the unscaled model is always "
                         "measured")
-    p.add_argument("--text", action="append", type=Path, default=None, metavar="PATH",
-                   help="a .txt file or a folder of them, joined and cut into sequences of N tokens; repeatable; "
-                        "default: freshly generated documents of the reference corpus scenarios")
-    p.add_argument("--training-length", type=c.count(1), default=None, metavar="L",
-                   help="the context length the model was trained on (default: recorded with the model or config)")
-    p.add_argument("--sequences", type=c.count(1), default=settings.STRETCH_SEQUENCES, metavar="K",
-                   help=f"at most K sequences, read by every variant ({settings.STRETCH_SEQUENCES})")
+    c.add_long_text_arguments(p, settings.STRETCH_SEQUENCES,
+                              f"at most K sequences, read by every variant ({settings.STRETCH_SEQUENCES})")
     p.add_argument("--boot", type=c.count(0), default=settings.STRETCH_BOOT,
                    help=f"bootstrap resamples over sequences for the intervals ({settings.STRETCH_BOOT})")
     p.add_argument("--quiet", action="store_true", help="no progress bar")

@@ -86,25 +86,20 @@ def _f(x: float, nd: int = 2) -> str:
     return "—" if not math.isfinite(x) else f"{x:.{nd}f}"
 
 
-def _induction(row, ctx):
-    x = _num(row, "induction")
-    if _ok(x) and x >= th.INDUCTION_SCORE:
-        return f"induction score {_f(x)} ≥ {th.INDUCTION_SCORE}"
-    return None
+def _at_least(column: str, threshold_name: str, label: str):
+    """A check that holds when the head's ``column`` is at least the threshold ``th.<threshold_name>`` (read when
+    the check runs, so a changed threshold takes effect)."""
+    def check(row, ctx):
+        x, t = _num(row, column), getattr(th, threshold_name)
+        if _ok(x) and x >= t:
+            return f"{label} {_f(x)} ≥ {t}"
+        return None
+    return check
 
 
-def _previous(row, ctx):
-    x = _num(row, "mass_previous")
-    if _ok(x) and x >= th.NEIGHBOUR_MASS:
-        return f"mass.previous {_f(x)} ≥ {th.NEIGHBOUR_MASS}"
-    return None
-
-
-def _next(row, ctx):
-    x = _num(row, "mass_next")
-    if _ok(x) and x >= th.NEIGHBOUR_MASS:
-        return f"mass.next {_f(x)} ≥ {th.NEIGHBOUR_MASS}"
-    return None
+_induction = _at_least("induction", "INDUCTION_SCORE", "induction score")
+_previous = _at_least("mass_previous", "NEIGHBOUR_MASS", "mass.previous")
+_next = _at_least("mass_next", "NEIGHBOUR_MASS", "mass.next")
 
 
 def _anchor(row, ctx):

@@ -63,8 +63,8 @@ function cardProfile(dist, val, lo, hi, info) {
 }
 
 function cardShares(info, partColours) {
-  const parts = ["distance", "slot", "content", "residual"];
-  const width = 360, rowh = 20, ml = 64, mr = 132, height = rowh * 4 + 16, bw = width - ml - mr;
+  const parts = Object.keys(partColours);      // the split's parts, in the core's order (views.common.part_colours)
+  const width = 360, rowh = 20, ml = 64, mr = 132, height = rowh * parts.length + 16, bw = width - ml - mr;
   const svg = apSvg("svg", { width, height, class: "ap-shares", role: "img", "aria-label": "shares of the score split" });
   const clamp = (v) => Math.min(Math.max(v, 0), 1);
   parts.forEach((p, k) => {

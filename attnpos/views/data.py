@@ -13,6 +13,7 @@ import numpy as np
 import pandas as pd
 
 from ..core import roles as core_roles
+from ..core.columns import PART_NAMES
 from ..core.keys import compact, head_key, layer_key, parse_key
 from .common import (block_labels, clean, fmt, fmt_interval, is_anchor_like, map_view, num, role_index, shift_how, spark_codes, tags_of,
                      text_of, top_keys)
@@ -388,8 +389,7 @@ def card_summary(scan, key: str) -> tuple[str, list[str]]:
     lines = [f"role {info['role'] or '—'}" + (f" (tags: {', '.join(info['tags'])})" if info["tags"] else ""),
              f"slope {fmt(info.get('slope'), 3)} {fmt_interval(info.get('slope_lo'), info.get('slope_hi'), 3)} "
              "score/token (positive: scores fall with distance)".replace("  ", " "),
-             "shares distance / slot / content / residual: " + " / ".join(
-                 fmt(info.get(f"share_{p}"), 3) for p in ("distance", "slot", "content", "residual")),
+             f"shares {' / '.join(PART_NAMES)}: " + " / ".join(fmt(info.get(f"share_{p}"), 3) for p in PART_NAMES),
              f"shift test: {info.get('shift_verdict') or '—'} (change {fmt(info.get('shift_change'), 3)}; "
              f"{info['shift_how']})",
              f"induction {fmt(info.get('induction'))} · entropy ratio {fmt(info.get('entropy_ratio'))}"]

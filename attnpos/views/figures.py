@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..core.columns import PART_NAMES
 from . import data as _data
 from .common import INK, PAPER, RAMP, colourise, fmt, part_colours, role_palette
 
@@ -291,7 +292,7 @@ def card_figure(scan, key: str, text: int | None = None, title: str | None = Non
     _style(ax)
     # score split
     ax = fig.add_axes([970 / W, bottom, 200 / W, top - bottom])
-    parts = ["distance", "slot", "content", "residual"]
+    parts = list(PART_NAMES)
     cols = part_colours()
     vals = [info.get(f"share_{p}") for p in parts]
     ys = np.arange(len(parts))

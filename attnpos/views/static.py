@@ -11,6 +11,7 @@ from typing import Any
 
 import numpy as np
 
+from ..core.columns import PART_NAMES
 from . import data as _data
 from .common import (INK, UNKNOWN_COLOUR, colourise, part_colours, role_codes, role_colours, roles_now,
                       esc, esc_plain, finite, fmt, fmt_interval, ink_on, is_anchor_like, png_data_uri, ramp_colour,
@@ -84,7 +85,7 @@ def _tooltip(data: dict, i: int) -> str:
         lines.append(f"tags: {data['tags'][i]}")
     if data["evidence"][i]:
         lines.append(f"evidence: {data['evidence'][i]}")
-    lines.append("shares d/s/c/r: " + " / ".join(fmt(f[f'share_{p}']) for p in ("distance", "slot", "content", "residual")))
+    lines.append(f"shares {'/'.join(p[0] for p in PART_NAMES)}: " + " / ".join(fmt(f.get(f'share_{p}')) for p in PART_NAMES))
     lines.append(f"slope {fmt(f['slope'], 3)} {fmt_interval(f['slope_lo'], f['slope_hi'], 3)}".rstrip())
     lines.append(f"mass prev {fmt(f['mass_previous'])} · next {fmt(f['mass_next'])} · first {fmt(f['mass_first'])}"
                  f" · self {fmt(f['mass_self'])}")
@@ -306,9 +307,9 @@ def share_text(v, lo, hi) -> str:
 
 
 def shares_svg(info: dict, width: int = 360) -> str:
-    parts = ("distance", "slot", "content", "residual")
+    parts = PART_NAMES
     rowh, ml, mr = 20, 64, 132
-    height = rowh * 4 + 16
+    height = rowh * len(parts) + 16
     bw = width - ml - mr
     out = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" class="apx-shares" '
            f'role="img" aria-label="shares of the score split">']

@@ -2,22 +2,8 @@
 // axis, and the selected head's statistics over the steps below. Numbers arrive as binary buffers; every text
 // (head keys, names, errors) is set with textContent.
 
-const APT_SVG = "http://www.w3.org/2000/svg";
+// apEl / apSvg come from the shared helpers (_shared.js) put in front of this module
 const APT = { left: 86, right: 16, row: 16, lossH: 92, top: 8, pad: 14 };
-
-function aptEl(tag, cls, text) {
-  const e = document.createElement(tag);
-  if (cls) e.className = cls;
-  if (text !== undefined && text !== null) e.textContent = String(text);
-  return e;
-}
-
-function aptSvg(tag, attrs, text) {
-  const e = document.createElementNS(APT_SVG, tag);
-  for (const k in attrs || {}) e.setAttribute(k, attrs[k]);
-  if (text !== undefined && text !== null) e.textContent = String(text);
-  return e;
-}
 
 function aptBuf(v, Kind) {
   if (!v) return new Kind(0);
@@ -30,7 +16,7 @@ function aptFmt(x, d = 3) {
 }
 
 function aptRender({ model, el }) {
-  const root = aptEl("div", "apt-timeline apt-live");
+  const root = apEl("div", "apt-timeline apt-live");
   el.appendChild(root);
   let rows = [];
 
@@ -60,40 +46,40 @@ function aptRender({ model, el }) {
     const hasLoss = d.loss.step.length > 0;
     const top = APT.top + (hasLoss ? APT.lossH + 18 : 0);
     const height = top + APT.row * heads.length + 34;
-    root.appendChild(aptEl("div", "apt-title", meta.title || ""));
-    const svg = aptSvg("svg", { class: "apt-svg", width, height, viewBox: `0 0 ${width} ${height}`, tabindex: 0,
+    root.appendChild(apEl("div", "apt-title", meta.title || ""));
+    const svg = apSvg("svg", { class: "apt-svg", width, height, viewBox: `0 0 ${width} ${height}`, tabindex: 0,
                                 role: "grid", "aria-label": meta.title || "timeline" });
     if (hasLoss) {
       const fin = d.loss.value.filter(Number.isFinite);
       const l0 = Math.min(...fin), l1 = Math.max(...fin), span = (l1 - l0) || 1;
       const y = (v) => APT.top + 4 + ((l1 - v) / span) * (APT.lossH - 8);
-      svg.appendChild(aptSvg("rect", { x: APT.left + APT.pad, y: APT.top, width: inner, height: APT.lossH,
+      svg.appendChild(apSvg("rect", { x: APT.left + APT.pad, y: APT.top, width: inner, height: APT.lossH,
                                        fill: "#F7F5F0", stroke: "#D6D2C8" }));
-      svg.appendChild(aptSvg("text", { x: APT.left + APT.pad - 6, y: APT.top + 10, "text-anchor": "end",
+      svg.appendChild(apSvg("text", { x: APT.left + APT.pad - 6, y: APT.top + 10, "text-anchor": "end",
                                        "font-size": 10 }, l1.toPrecision(3)));
-      svg.appendChild(aptSvg("text", { x: APT.left + APT.pad - 6, y: APT.top + APT.lossH, "text-anchor": "end",
+      svg.appendChild(apSvg("text", { x: APT.left + APT.pad - 6, y: APT.top + APT.lossH, "text-anchor": "end",
                                        "font-size": 10 }, l0.toPrecision(3)));
-      svg.appendChild(aptSvg("text", { x: APT.pad, y: APT.top + APT.lossH / 2, "font-size": 11 }, "training loss"));
+      svg.appendChild(apSvg("text", { x: APT.pad, y: APT.top + APT.lossH / 2, "font-size": 11 }, "training loss"));
       const pts = [];
       d.loss.step.forEach((s, k) => {
         const v = d.loss.value[k];
         if (Number.isFinite(v) && s >= lo && s <= hi) pts.push(`${x(s).toFixed(1)},${y(v).toFixed(1)}`);
       });
-      if (pts.length) svg.appendChild(aptSvg("polyline", { class: "apt-loss", points: pts.join(" "), fill: "none",
+      if (pts.length) svg.appendChild(apSvg("polyline", { class: "apt-loss", points: pts.join(" "), fill: "none",
                                                             stroke: "#1B1F24", "stroke-width": 1.5 }));
     }
     rows = heads.map((key, i) => {
-      const g = aptSvg("g", { class: "apt-row", "data-head": key, role: "row" });
+      const g = apSvg("g", { class: "apt-row", "data-head": key, role: "row" });
       const yy = top + i * APT.row;
-      g.appendChild(aptSvg("text", { class: "apt-label", x: APT.left + APT.pad - 6, y: yy + APT.row - 4,
+      g.appendChild(apSvg("text", { class: "apt-label", x: APT.left + APT.pad - 6, y: yy + APT.row - 4,
                                      "text-anchor": "end", "font-size": 11 }, key));
       cols.forEach(([a, b], j) => {
         const p = meta.palette[d.roles[i * steps.length + j]] || meta.palette[0];
-        const r = aptSvg("rect", { class: "apt-cell", x: a.toFixed(1), y: yy, width: Math.max(1, b - a - 1).toFixed(1),
+        const r = apSvg("rect", { class: "apt-cell", x: a.toFixed(1), y: yy, width: Math.max(1, b - a - 1).toFixed(1),
                                    height: APT.row - 1, fill: p.colour, stroke: "#D6D2C8", "stroke-width": 0.5 });
-        r.appendChild(aptSvg("title", {}, `${key} at step ${steps[j]}: ${p.role || "not scanned"}`));
+        r.appendChild(apSvg("title", {}, `${key} at step ${steps[j]}: ${p.role || "not scanned"}`));
         g.appendChild(r);
-        if (b - a >= 14) g.appendChild(aptSvg("text", { x: ((a + b) / 2).toFixed(1), y: yy + APT.row - 4,
+        if (b - a >= 14) g.appendChild(apSvg("text", { x: ((a + b) / 2).toFixed(1), y: yy + APT.row - 4,
                                                         "text-anchor": "middle", "font-size": 9, fill: p.ink }, p.code));
       });
       g.addEventListener("click", () => { model.set("selected", key); model.save_changes(); });
@@ -103,10 +89,10 @@ function aptRender({ model, el }) {
     const yb = top + APT.row * heads.length + 14;
     const every = steps.length <= 12 ? 1 : Math.max(1, Math.floor(steps.length / 12));
     steps.forEach((s, j) => {
-      if (j % every === 0) svg.appendChild(aptSvg("text", { x: x(s).toFixed(1), y: yb, "text-anchor": "middle",
+      if (j % every === 0) svg.appendChild(apSvg("text", { x: x(s).toFixed(1), y: yb, "text-anchor": "middle",
                                                             "font-size": 10 }, s));
     });
-    svg.appendChild(aptSvg("text", { x: (APT.left + width) / 2, y: yb + 16, "text-anchor": "middle",
+    svg.appendChild(apSvg("text", { x: (APT.left + width) / 2, y: yb + 16, "text-anchor": "middle",
                                      "font-size": 11 }, "training step"));
     svg.addEventListener("keydown", (ev) => {
       const i = heads.indexOf(model.get("selected"));
@@ -118,43 +104,43 @@ function aptRender({ model, el }) {
     });
     root.appendChild(svg);
 
-    const legend = aptEl("div", "apt-legend");
+    const legend = apEl("div", "apt-legend");
     const used = new Set(d.roles);
     meta.palette.forEach((p, i) => {
       if (!used.has(i)) return;
-      const k = aptEl("span", "apt-key");
-      const sw = aptEl("span", "apt-swatch", p.code);
+      const k = apEl("span", "apt-key");
+      const sw = apEl("span", "apt-swatch", p.code);
       sw.style.background = p.colour; sw.style.color = p.ink;
       k.appendChild(sw); k.appendChild(document.createTextNode(p.role || "not scanned"));
       legend.appendChild(k);
     });
     root.appendChild(legend);
-    root.appendChild(aptEl("p", "apt-note", hasLoss ? `Loss: ${meta.loss.unit || ""} \u2014 from ${meta.loss.source || ""}`
+    root.appendChild(apEl("p", "apt-note", hasLoss ? `Loss: ${meta.loss.unit || ""} \u2014 from ${meta.loss.source || ""}`
                                                     : "No training loss curve was found."));
     const re = meta.role_emergence || {};
     if (Object.keys(re).length) {
-      const t = aptEl("table", "apt-table apt-emergence");
-      const h = aptEl("tr");
-      ["role", "holds from step", "heads (earliest first)"].forEach((c) => h.appendChild(aptEl("th", null, c)));
+      const t = apEl("table", "apt-table apt-emergence");
+      const h = apEl("tr");
+      ["role", "holds from step", "heads (earliest first)"].forEach((c) => h.appendChild(apEl("th", null, c)));
       t.appendChild(h);
       for (const role in re) {
-        const tr = aptEl("tr");
-        [role, re[role].step, re[role].heads.join(", ")].forEach((c) => tr.appendChild(aptEl("td", null, c)));
+        const tr = apEl("tr");
+        [role, re[role].step, re[role].heads.join(", ")].forEach((c) => tr.appendChild(apEl("td", null, c)));
         t.appendChild(tr);
       }
       root.appendChild(t);
     } else {
-      root.appendChild(aptEl("p", null, "No role but 'mixed' holds at the last step."));
+      root.appendChild(apEl("p", null, "No role but 'mixed' holds at the last step."));
     }
     if ((meta.failed || []).length) {
-      const ul = aptEl("ul", "apt-failed");
-      meta.failed.forEach((f) => ul.appendChild(aptEl("li", null, `${f.name} (step ${f.step}): ${f.error}`)));
+      const ul = apEl("ul", "apt-failed");
+      meta.failed.forEach((f) => ul.appendChild(apEl("li", null, `${f.name} (step ${f.step}): ${f.error}`)));
       root.appendChild(ul);
     }
-    const panel = aptEl("div", "apt-panel");
+    const panel = apEl("div", "apt-panel");
     root.appendChild(panel);
-    const caution = aptEl("p", "apt-caution");
-    caution.appendChild(aptEl("b", null, "Caution. "));
+    const caution = apEl("p", "apt-caution");
+    caution.appendChild(apEl("b", null, "Caution. "));
     caution.appendChild(document.createTextNode(meta.caution || ""));
     root.appendChild(caution);
     root._panel = panel;
@@ -167,30 +153,30 @@ function aptRender({ model, el }) {
     const steps = d.steps, lo = Math.min(...steps), hi = Math.max(...steps);
     const vals = steps.map((_, j) => d.nums[(i * steps.length + j) * d.S + k]);
     const fin = vals.filter(Number.isFinite);
-    const svg = aptSvg("svg", { class: "apt-chart", width: w, height: h, "data-stat": d.meta.stat_names[k] });
-    svg.appendChild(aptSvg("text", { x: 2, y: 10, "font-size": 10 }, label));
+    const svg = apSvg("svg", { class: "apt-chart", width: w, height: h, "data-stat": d.meta.stat_names[k] });
+    svg.appendChild(apSvg("text", { x: 2, y: 10, "font-size": 10 }, label));
     if (!fin.length) {
-      svg.appendChild(aptSvg("text", { x: l, y: h / 2, "font-size": 10, fill: "#5A5F66" }, "not measured"));
+      svg.appendChild(apSvg("text", { x: l, y: h / 2, "font-size": 10, fill: "#5A5F66" }, "not measured"));
       return svg;
     }
     let v0 = Math.min(0, ...fin), v1 = Math.max(...fin);
     if (v1 - v0 < 1e-9) v1 = v0 + 1;
     const x = (s) => l + ((s - lo) / ((hi - lo) || 1)) * (w - l - r);
     const y = (v) => t + ((v1 - v) / (v1 - v0)) * (h - t - b);
-    svg.appendChild(aptSvg("line", { x1: l, x2: w - r, y1: y(v0), y2: y(v0), stroke: "#D6D2C8" }));
-    svg.appendChild(aptSvg("text", { x: l - 3, y: y(v1) + 4, "text-anchor": "end", "font-size": 9 }, v1.toPrecision(2)));
-    svg.appendChild(aptSvg("text", { x: l - 3, y: y(v0), "text-anchor": "end", "font-size": 9 }, v0.toPrecision(2)));
+    svg.appendChild(apSvg("line", { x1: l, x2: w - r, y1: y(v0), y2: y(v0), stroke: "#D6D2C8" }));
+    svg.appendChild(apSvg("text", { x: l - 3, y: y(v1) + 4, "text-anchor": "end", "font-size": 9 }, v1.toPrecision(2)));
+    svg.appendChild(apSvg("text", { x: l - 3, y: y(v0), "text-anchor": "end", "font-size": 9 }, v0.toPrecision(2)));
     const pts = [];
     steps.forEach((s, j) => { if (Number.isFinite(vals[j])) pts.push(`${x(s).toFixed(1)},${y(vals[j]).toFixed(1)}`); });
-    svg.appendChild(aptSvg("polyline", { points: pts.join(" "), fill: "none", stroke: "#3F6E9A", "stroke-width": 1.5 }));
+    svg.appendChild(apSvg("polyline", { points: pts.join(" "), fill: "none", stroke: "#3F6E9A", "stroke-width": 1.5 }));
     steps.forEach((s, j) => {
       if (!Number.isFinite(vals[j])) return;
-      const c = aptSvg("circle", { cx: x(s).toFixed(1), cy: y(vals[j]).toFixed(1), r: 2.2, fill: "#3F6E9A" });
-      c.appendChild(aptSvg("title", {}, `step ${s}: ${aptFmt(vals[j])}`));
+      const c = apSvg("circle", { cx: x(s).toFixed(1), cy: y(vals[j]).toFixed(1), r: 2.2, fill: "#3F6E9A" });
+      c.appendChild(apSvg("title", {}, `step ${s}: ${aptFmt(vals[j])}`));
       svg.appendChild(c);
     });
-    svg.appendChild(aptSvg("text", { x: l, y: h - 3, "font-size": 9 }, lo));
-    svg.appendChild(aptSvg("text", { x: w - r, y: h - 3, "font-size": 9, "text-anchor": "end" }, hi));
+    svg.appendChild(apSvg("text", { x: l, y: h - 3, "font-size": 9 }, lo));
+    svg.appendChild(apSvg("text", { x: w - r, y: h - 3, "font-size": 9, "text-anchor": "end" }, hi));
     return svg;
   }
 
@@ -201,14 +187,14 @@ function aptRender({ model, el }) {
     rows.forEach((g) => g.classList.toggle("apt-selected", g.getAttribute("data-head") === key));
     panel.replaceChildren();
     const i = d.heads.indexOf(key);
-    if (i < 0) { panel.appendChild(aptEl("p", null, "Click a row to see a head's statistics over the steps.")); return; }
+    if (i < 0) { panel.appendChild(apEl("p", null, "Click a row to see a head's statistics over the steps.")); return; }
     const em = (d.meta.emerged || {})[key] || {};
     const since = Object.keys(em).map((r) => `${r} from step ${em[r]}`).join(", ") || "no role but 'mixed' at the end";
-    const title = aptEl("div", "apt-panel-title");
-    title.appendChild(aptEl("b", null, key));
+    const title = apEl("div", "apt-panel-title");
+    title.appendChild(apEl("b", null, key));
     title.appendChild(document.createTextNode(` over the steps \u2014 ${since}`));
     panel.appendChild(title);
-    const charts = aptEl("div", "apt-charts");
+    const charts = apEl("div", "apt-charts");
     (d.meta.stat_labels || []).forEach((lab, k) => charts.appendChild(chart(d, i, k, lab)));
     panel.appendChild(charts);
   }

@@ -23,7 +23,7 @@ import traitlets as t
 
 from ..core import roles as core_roles
 from ..core.protocol import CAUTION
-from ._base import StaticFallback
+from ._base import StaticFallback, esm
 
 HERE = Path(__file__).parent
 
@@ -97,7 +97,7 @@ class Timeline(StaticFallback, anywidget.AnyWidget):
     (float32: the loss curve's steps, then its losses).
     """
 
-    _esm = (HERE / "timeline.js").read_text(encoding="utf-8")
+    _esm = esm("timeline.js")
     _css = (HERE / "timeline.css").read_text(encoding="utf-8")
 
     meta = t.Dict().tag(sync=True)

@@ -1,12 +1,12 @@
 """The timeline widget: a sweep's heads × steps coloured by role, the training loss curve above on the same step
 axis, and a clicked head's statistics over time.
 
-Self-contained (its own ``timeline.js`` / ``timeline.css``, its drawing data and its static rendering in this
-file); it reads a :class:`~attnpos.results.sweep.SweepResult` and the role specs of :mod:`attnpos.core.roles`.
+Its own ``timeline.js`` (after the views' shared helpers) / ``timeline.css``, its drawing data and its static
+rendering in this file; it reads a :class:`~attnpos.results.sweep.SweepResult` and the role specs of :mod:`attnpos.core.roles`.
 
 Example::
 
-    from attnpos.views.timeline import Timeline
+    from attnpos.views import Timeline
     tl = attnpos.sweep("runs/rope", out="runs/rope-sweep")
     Timeline(tl)                              # click a row: tl's statistics of that head over the steps below
 """

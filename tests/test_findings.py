@@ -1,4 +1,7 @@
-"""Tests for the findings store (attnpos/findings.py): persistence, locking, corruption, staleness, export."""
+"""Tests for the findings store (attnpos/findings.py): persistence, locking, corruption, staleness, export.
+
+External check: the Markdown export is read back with the table rule of the GitHub Flavored Markdown spec
+(0.29-gfm, "Tables (extension)"), written from the spec in ``_gfm_cells``; the rest is the store's own behaviour."""
 
 from __future__ import annotations
 
@@ -12,6 +15,8 @@ from pathlib import Path
 
 import filelock
 import pytest
+
+import tiny
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -335,24 +340,13 @@ def test_processes_writing_one_file_lose_nothing(path: Path) -> None:
 
 
 def test_threads_writing_one_file_lose_nothing(path: Path) -> None:
-    import threading
-
     stores = [Findings(path) for _ in range(4)]
-    errors: list[BaseException] = []
 
     def run(n: int) -> None:
-        try:
-            for k in range(15):
-                stores[n].add("model", f"thread {n} note {k}")
-        except BaseException as exc:  # pragma: no cover - reported below
-            errors.append(exc)
+        for k in range(15):
+            stores[n].add("model", f"thread {n} note {k}")
 
-    threads = [threading.Thread(target=run, args=(n,)) for n in range(4)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    assert not errors
+    assert not tiny.in_threads(run, 4)
     assert len(Findings(path).all()) == 60
 
 

@@ -178,3 +178,23 @@ def refused_before_torch(argv: list, message: str, cwd) -> None:
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60, cwd=cwd)
     assert done.returncode == 0, done.stderr
     assert message in done.stderr and "Traceback" not in done.stderr
+
+
+def in_threads(work, n: int = 4) -> list:
+    """Run ``work(k)`` for k = 0 … n − 1 in n threads at once; the exceptions they raised, in no order."""
+    import threading
+
+    errors: list = []
+
+    def run(k):
+        try:
+            work(k)
+        except BaseException as exc:  # noqa: BLE001 - collected for the caller's assert
+            errors.append(exc)
+
+    threads = [threading.Thread(target=run, args=(k,)) for k in range(n)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    return errors

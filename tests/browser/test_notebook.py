@@ -1,5 +1,8 @@
 """In a real browser: JupyterLab runs a notebook that scans the RoPE reference model and shows the linked atlas,
-card and findings panel; we click, type and check what a person would see."""
+card and findings panel; we click, type and check what a person would see.
+
+External check: JupyterLab's own widget manager and Chromium (layout, events, console) run the widgets as a user's
+notebook does; the numbers shown are checked in the stage tests."""
 
 from __future__ import annotations
 

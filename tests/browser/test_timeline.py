@@ -5,6 +5,9 @@ rendering (the notebook's fallback) shows the same grid.
 The widget's ES module runs in a plain page with a small stand-in for the widget model (get / set / on /
 save_changes), so the drawing code is the one a notebook runs. The JupyterLab path is tested for the survey in
 test_notebook.py; the timeline's saved-notebook rendering in tests/test_notebooks.py.
+
+External check: Chromium's own HTML parser, SVG renderer and JavaScript engine draw and run the module (what a
+notebook's browser would do); the sweep under it is checked against scans by hand in tests/test_sweep.py.
 """
 
 from __future__ import annotations

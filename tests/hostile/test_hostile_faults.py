@@ -12,6 +12,8 @@ import warnings
 from pathlib import Path
 
 import pytest
+
+import tiny
 import torch
 
 from attnpos.errors import AttnposError
@@ -317,25 +319,15 @@ def test_a_failure_part_way_leaves_the_old_file_and_no_temporary(tmp_path, monke
 
 
 def test_raced_writers_to_one_path_all_succeed(tmp_path):
-    import threading
-
     from attnpos.files import write_atomic
 
-    out, errors = tmp_path / "report.html", []
+    out = tmp_path / "report.html"
 
     def writer(k):
-        try:
-            for n in range(15):
-                write_atomic(out, f"writer {k} pass {n}\n" * 200)
-        except Exception as exc:  # noqa: BLE001 - collected for the assert
-            errors.append(exc)
+        for n in range(15):
+            write_atomic(out, f"writer {k} pass {n}\n" * 200)
 
-    threads = [threading.Thread(target=writer, args=(k,)) for k in range(4)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join()
-    assert errors == []
+    assert tiny.in_threads(writer, 4) == []
     lines = set(out.read_text().splitlines())
     assert len(lines) == 1 and _no_temporaries(tmp_path)
 

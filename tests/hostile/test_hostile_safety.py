@@ -1,4 +1,8 @@
-"""Safety: pickle weights, code shipped in a model folder, hostile strings in HTML, and the findings file."""
+"""Safety: pickle weights, code shipped in a model folder, hostile strings in HTML, and the findings file.
+
+External checks, each named beside its test: torch.load's weights_only unpickler (PyTorch documentation) for pickle
+weights; Python's html.parser (WHATWG HTML tokenising, as common practice for a stdlib parser) in ``assert_inert``
+for the hostile strings; everything else is the package's own behaviour."""
 
 from __future__ import annotations
 

@@ -1,4 +1,7 @@
-"""Messy text inputs: each ends in a correct result or one clear error paragraph (CLI: non-zero exit, no traceback)."""
+"""Messy text inputs: each ends in a correct result or one clear error paragraph (CLI: non-zero exit, no traceback).
+
+External checks: Python's own codecs write the encoded inputs, and the byte-order marks are the Unicode Standard's
+(§23.8; RFC 3629 §6 for UTF-8), named beside the tests that use them; the tokenizer is transformers' GPT-2 one."""
 
 from __future__ import annotations
 

@@ -112,8 +112,10 @@ def weights_are_safetensors(p: Path, allow_pickle: bool) -> bool:
 
 
 def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
-           trust_remote_code: bool = False) -> Located:
-    """Find and check the checkpoint ``path_or_name`` refers to (see the module doc)."""
+           trust_remote_code: bool = False, check_weights: bool = True) -> Located:
+    """Find and check the checkpoint ``path_or_name`` refers to (see the module doc). ``check_weights=False`` leaves
+    out the check of the config against the weights' headers and the machine's memory (for listing checkpoints that
+    are loaded, and checked, later and elsewhere — a sweep's workers)."""
     text = str(path_or_name)
     if text.lower().endswith(".gguf"):
         return locate_gguf(Path(text).expanduser())
@@ -136,9 +138,9 @@ def locate(path_or_name: str | os.PathLike, *, allow_pickle: bool = False,
     if problem:
         raise AttnposError(f"{p}/config.json: {problem}")
     safe = weights_are_safetensors(p, allow_pickle)
-    if safe:
+    if check_weights and safe:
         sizes.check_checkpoint(p, cfg)       # config against the weights' headers and the machine, before allocation
-    else:
+    elif check_weights:
         sizes.refuse_zero_sizes(p, cfg)
         sizes.refuse_if_too_big(sizes.estimate_config_bytes(cfg), f"The model in {p} (as its config.json describes "
                                 "it, in float32)", "Check the sizes in config.json, or load it on a machine with "

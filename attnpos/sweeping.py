@@ -95,24 +95,12 @@ def find_checkpoints(targets: str | os.PathLike | Iterable[str | os.PathLike], *
     """The checkpoints ``targets`` names, in step order, each checked as :func:`attnpos.locate.locate` checks a
     model (no torch). ``targets``: a run folder (its ``checkpoint-*`` folders and, when it holds a model, the final
     one), a model folder or ``ref:<scheme>``, a ``.txt`` file listing such names one per line, or a list of these."""
-    from .locate import Located, locate, read_config
+    from .locate import locate
 
     def listed(t, **kw):
-        # a checkpoint whose weights are damaged is still listed: its task then fails on the worker, is recorded as
-        # failed with its error, and the rest of the sweep goes on (a missing or foreign folder is refused here)
-        try:
-            return locate(t, **kw)
-        except AttnposError:
-            q = Path(str(t)).expanduser()
-            if str(t).startswith("ref:") or not (q / "config.json").is_file():
-                raise
-            try:
-                cfg = read_config(q)
-            except AttnposError:
-                cfg = {}
-            if not kw.get("trust_remote_code") and (cfg.get("auto_map") or any(f.suffix == ".py" for f in q.iterdir())):
-                raise                     # a refusal to run a folder's code stays a refusal of the whole sweep
-            return Located(path=q, name=q.name, config=cfg, safetensors=True)
+        # the weights are checked where they are loaded, on the worker: a checkpoint whose weights are damaged is
+        # then recorded as failed with its error and the rest of the sweep goes on
+        return locate(t, check_weights=False, **kw)
 
     if isinstance(targets, (str, os.PathLike)):
         targets = [targets]

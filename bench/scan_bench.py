@@ -16,6 +16,10 @@ a short warm-up. The figures go to a JSON file and a table on the terminal.
 
     python bench/scan_bench.py                 # full run: T = 512 … 4096 (about 10 min on 2 idle cores)
     python bench/scan_bench.py --quick         # CI smoke run: small T, 2 layers, under 2 minutes
+    python bench/scan_bench.py --shapes smol-a # one real shape only (see bench/real_shapes.py)
+
+The full run then measures the shapes of real checkpoints (bench/real_shapes.py): a SmolLM2-135M-shaped model on
+6 × 256 and 64 × 128 tokens and a 1B-class bf16 model on 4 × 1024, with the load, the probe and `length` as well.
 
 See bench/README.md for what is measured and how to read it.
 """
@@ -31,9 +35,15 @@ import sys
 import time
 from pathlib import Path
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import real_shapes  # noqa: E402  (the real-shape cases, beside this file)
+
 os.environ.setdefault("HF_HUB_OFFLINE", "1")
 os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+# attnpos sets this when imported; the children import torch first, so it is set here for every case alike
+# (otherwise A would spin-wait between parallel regions and C would not, and the two would not be comparable)
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 SCHEMA = "attnpos.bench/1"
 HERE = Path(__file__).resolve().parent
@@ -231,7 +241,7 @@ def run_case(case: str, T: int, args) -> dict:
             "torch_threads": torch.get_num_threads(), **extra}
 
 
-def profile_scan(T: int, args) -> int:
+def profile_scan(T: int | str, args) -> int:
     """Case C once, in this process, under pyinstrument (``pip install pyinstrument``): where a scan's time goes."""
     try:
         from pyinstrument import Profiler
@@ -243,24 +253,39 @@ def profile_scan(T: int, args) -> int:
     import attnpos
     from attnpos.reference.tokenizer import build_tokenizer
 
-    max_len = max(T, 128) + 64
-    model = build_model(args.layers, args.heads, args.hidden, max_len, "eager")
-    subject = attnpos.subject.from_model(model, build_tokenizer(model_max_length=max_len), name="bench")
-    texts = make_texts(args.texts, T)
-    attnpos.scan(subject, make_texts(1, 64, seed=1), n_boot=2, shift=False, induction=False, progress=False)
+    full = args.profile_full
+    if isinstance(T, str):            # a real shape: its saved folder, loaded as a user would
+        s = real_shapes.SHAPES[T]
+        subject = attnpos.load(real_shapes.ensure_folder(T), dtype=s["dtype"])
+        texts = real_shapes.make_texts(T)
+        what = (f"{T}: llama {s['layers']} layers x {s['heads']}/{s['kv_heads']} heads x {s['hidden']}, "
+                f"{s['texts']} texts of T={s['T']}")
+        warm = [" ".join(f"w{i}" for i in range(3, 66))]
+    else:
+        max_len = max(T, 128) + 64
+        model = build_model(args.layers, args.heads, args.hidden, max_len, "eager")
+        subject = attnpos.subject.from_model(model, build_tokenizer(model_max_length=max_len), name="bench")
+        texts = make_texts(args.texts, T)
+        what = f"llama {args.layers}x{args.heads}x{args.hidden}, {args.texts} texts of T={T}"
+        warm = make_texts(1, 64, seed=1)
+    attnpos.scan(subject, warm, n_boot=2, shift=False, induction=False, progress=False)
     profiler = Profiler(interval=0.005)
     profiler.start()
-    attnpos.scan(subject, texts, n_boot=args.boot, shift=False, induction=False, progress=False)
+    attnpos.scan(subject, texts, n_boot=args.boot, shift=full, induction=full, progress=False)
     profiler.stop()
-    print(f"attnpos.scan, llama {args.layers}x{args.heads}x{args.hidden}, {args.texts} texts of T={T}, "
-          f"n_boot {args.boot}, {torch.get_num_threads()} torch threads")
+    print(f"attnpos.scan{' (defaults: shift and induction tests on)' if full else ' (no shift/induction test)'}, "
+          f"{what}, n_boot {args.boot}, {torch.get_num_threads()} torch threads")
     print(profiler.output_text(unicode=True, color=False))
     return 0
 
 
 def child_main(args) -> None:
     try:
-        res = run_case(args.child, args.T, args)
+        if args.shape:
+            res = real_shapes.run_shape_case(args.child, args.shape, Path(args.folder), args, hand_written_stats,
+                                             rss_mb, peak_rss_mb)
+        else:
+            res = run_case(args.child, args.T, args)
     except MemoryError as exc:
         res = {"status": "failed", "reason": f"out of memory ({exc})", "peak_rss_mb": peak_rss_mb()}
     except RuntimeError as exc:
@@ -283,11 +308,13 @@ def mem_available_gb() -> float | None:
     return None
 
 
-def spawn(case: str, T: int, args) -> dict:
+def spawn(case: str, T: int, args, shape: str | None = None, folder: Path | None = None) -> dict:
     cmd = [sys.executable, str(Path(__file__).resolve()), "--child", case, "--T", str(T),
            "--layers", str(args.layers), "--heads", str(args.heads), "--hidden", str(args.hidden),
            "--texts", str(args.texts), "--boot", str(args.boot), "--repeat", str(args.repeat),
            "--threads", str(args.threads)]
+    if shape:
+        cmd += ["--shape", shape, "--folder", str(folder)]
     t0 = time.perf_counter()
     try:
         proc = subprocess.run(cmd, capture_output=True, text=True, timeout=args.timeout)
@@ -318,7 +345,7 @@ def combine(runs: list[dict]) -> dict:
     out["peak_rss_mb"] = max(r["peak_rss_mb"] for r in runs)
     out["base_rss_mb"] = min(r["base_rss_mb"] for r in runs if r.get("base_rss_mb") is not None) \
         if any(r.get("base_rss_mb") is not None for r in runs) else None
-    for k in ("shift_seconds", "induction_seconds"):
+    for k in ("shift_seconds", "induction_seconds", "record_seconds"):
         if k in best:
             out[k] = min(r[k] for r in runs)
     out["rounds"] = len(runs)
@@ -420,6 +447,30 @@ def targets(results: list[dict], quick: bool) -> dict:
     return out
 
 
+def run_shape(shape: str, args) -> dict:
+    """Every case of one real shape, in rounds, each case in a fresh process; ratios from the combined cases."""
+    folder = real_shapes.ensure_folder(shape, log=lambda m: print("  " + m, flush=True))
+    wanted = args.shape_cases or real_shapes.DEFAULT_CASES[shape]
+    rounds = 1 if shape == "1b" and not args.shape_rounds else (args.shape_rounds or args.rounds)
+    runs: dict = {}
+    for rnd in range(rounds):
+        for case in wanted:
+            res = spawn(case, real_shapes.SHAPES[shape]["T"], args, shape=shape, folder=folder)
+            runs.setdefault(case, []).append(res)
+            if res["status"] == "ok":
+                more = (f"  record {res['record_seconds']:.2f} s, CPU/wall {res['record_cpu_per_wall']:.2f}"
+                        if "record_seconds" in res else "")
+                print(f"  {shape:6s} {real_shapes.SHAPE_LABEL[case]:20s} {res['seconds']:8.2f} s   peak RSS "
+                      f"{res['peak_rss_mb']:7.0f} MB{more}   (round {rnd + 1}, load {os.getloadavg()[0]:.1f})",
+                      flush=True)
+            else:
+                print(f"  {shape:6s} {real_shapes.SHAPE_LABEL[case]:20s} {res['status']}: {res.get('reason')}",
+                      flush=True)
+    cases = {k: combine(v) for k, v in runs.items()}
+    return {"shape": shape, "spec": real_shapes.SHAPES[shape], "rounds": rounds, "cases": cases,
+            "ratios": real_shapes.shape_ratios(cases, agreement)}
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     p.add_argument("--quick", action="store_true", help="CI smoke run: T=128,256, 2 layers, 1 round, 20 resamples")
@@ -433,16 +484,28 @@ def main(argv=None) -> int:
                                               "best time is kept (default 2)")
     p.add_argument("--repeat", type=int, default=1, help="timed runs per case within one process (default 1)")
     p.add_argument("--threads", type=int, default=0, help="torch threads in each child (0: torch's default)")
-    p.add_argument("--cases", nargs="+", choices=CASES, default=list(CASES))
+    p.add_argument("--cases", nargs="+", choices=CASES, default=list(CASES), help="cases of the grid")
+    p.add_argument("--shapes", nargs="*", choices=list(real_shapes.SHAPES),
+                   help="real shapes to run after the grid (default: all in the full run, none with --lengths; "
+                        "--shapes alone, with no names: none)")
+    p.add_argument("--shape-cases", nargs="+", choices=real_shapes.SHAPE_CASES,
+                   help="cases of the real shapes (default: all; the 1b shape leaves out P and L)")
+    p.add_argument("--no-grid", action="store_true", help="run only the real shapes")
+    p.add_argument("--shape-rounds", type=int, help="rounds for the real shapes (default: --rounds; 1 for 1b)")
     p.add_argument("--b-max-gb", type=float, default=6.0,
                    help="skip B where its all-layer maps would need more than this (default 6 GB)")
     p.add_argument("--timeout", type=int, default=3600, help="seconds before a case is abandoned")
     p.add_argument("--out", type=Path, help="JSON output (default bench/results.json, quick: bench/results-quick.json)")
-    p.add_argument("--profile", type=int, metavar="T",
-                   help="instead of the benchmark: profile one attnpos scan (case C) at length T with pyinstrument")
-    p.add_argument("--child", choices=CASES, help=argparse.SUPPRESS)
+    p.add_argument("--profile", metavar="T|SHAPE",
+                   help="instead of the benchmark: profile one attnpos scan (case C) with pyinstrument, on the grid "
+                        "model at length T or on a real shape (e.g. smol-a)")
+    p.add_argument("--profile-full", action="store_true", help="with --profile: the default scan (case C+)")
+    p.add_argument("--child", choices=CASES + real_shapes.SHAPE_CASES, help=argparse.SUPPRESS)
     p.add_argument("--T", type=int, help=argparse.SUPPRESS)
+    p.add_argument("--shape", help=argparse.SUPPRESS)
+    p.add_argument("--folder", help=argparse.SUPPRESS)
     args = p.parse_args(argv)
+    explicit_lengths = args.lengths is not None
     if args.quick:
         args.lengths = args.lengths or [128, 256]
         args.layers = args.layers or 2
@@ -456,7 +519,9 @@ def main(argv=None) -> int:
         child_main(args)
         return 0
     if args.profile:
-        return profile_scan(args.profile, args)
+        return profile_scan(int(args.profile) if args.profile.isdigit() else args.profile, args)
+    if args.shapes is None:
+        args.shapes = ["mini"] if args.quick else ([] if explicit_lengths else list(real_shapes.FULL_SHAPES))
     out_path = args.out or HERE / ("results-quick.json" if args.quick else "results.json")
 
     import torch
@@ -467,7 +532,7 @@ def main(argv=None) -> int:
           f"load average {os.getloadavg()[0]:.2f}", flush=True)
     load_before = os.getloadavg()
     results = []
-    for T in args.lengths:
+    for T in ([] if args.no_grid else args.lengths):
         cases: dict = {}
         skip: dict = {}
         if "B" in args.cases:
@@ -502,7 +567,8 @@ def main(argv=None) -> int:
                   "B/A": ratio(b, a)}
         results.append({"T": T, "cases": cases, "ratios": ratios,
                         "agreement_B_vs_C": agreement(cases.get("B", {}), cases.get("C", {}))})
-    for r in results:                      # per-head statistics are large; the JSON keeps only their agreement
+    shape_results = [run_shape(shape, args) for shape in args.shapes]
+    for r in results + shape_results:      # per-head statistics are large; the JSON keeps only their agreement
         for e in r["cases"].values():
             e.pop("stats", None)
     report = {
@@ -522,13 +588,25 @@ def main(argv=None) -> int:
                      "repeat": args.repeat,
                      "quick": args.quick, "b_max_gb": args.b_max_gb},
         "results": results,
-        "targets": targets(results, args.quick),
+        "shapes": shape_results,
+        "targets": {**targets(results, args.quick), **real_shapes.shape_targets(shape_results)},
     }
     out_path.parent.mkdir(parents=True, exist_ok=True)
     out_path.write_text(json.dumps(report, indent=1))
     print()
-    print(table(results))
-    print()
+    if results:
+        print(table(results))
+        print()
+    if shape_results:
+        print(real_shapes.shape_table(shape_results))
+        print()
+        for r in shape_results:
+            q = r["ratios"]
+            print(f"{r['shape']}: " + ", ".join(f"{k} {fmt(v, 3 if k == 'agreement_B_vs_C' else 2)}"
+                                                for k, v in q.items() if k != "agreement_B_vs_C")
+                  + (f"; B and C masses/entropy agree within {q['agreement_B_vs_C']:.1e}"
+                     if q["agreement_B_vs_C"] is not None else ""))
+        print()
     print("times in seconds (best of runs, all texts); MB = peak RSS of the case's own process")
     for name, ok in report["targets"].items():
         print(f"target {name}: {'met' if ok else ('not measured' if ok is None else 'NOT met')}")

@@ -51,7 +51,22 @@ def test_quick_bench_runs_and_writes_every_field(tmp_path):
         # B computes the same masses and entropy as the scan: equal up to float rounding
         assert r["agreement_B_vs_C"] is not None and r["agreement_B_vs_C"] < 1e-4
 
-    # the targets are evaluated only at their lengths, which the quick run does not reach
+    # the real-shape part runs its smoke shape (grouped-query heads, word tokenizer) with every case
+    [shape] = report["shapes"]
+    assert shape["shape"] == "mini" and shape["spec"]["kv_heads"] < shape["spec"]["heads"]
+    for case in ("load_tf", "load", "A", "A_sdpa", "B", "C", "Cplus", "P", "L"):
+        entry = shape["cases"][case]
+        assert entry["status"] == "ok", (case, entry)
+        assert isinstance(entry["seconds"], float) and entry["seconds"] > 0
+        assert isinstance(entry["peak_rss_mb"], float) and entry["peak_rss_mb"] > 0
+    assert isinstance(shape["cases"]["C"]["record_seconds"], float)
+    for key in ("C/A", "C/A'", "C+/A", "C+/A'", "P/A", "L/A", "B/C", "record/A", "load/load_tf", "P_rss/A_rss",
+                "C_rss/A_rss", "record_cpu/wall"):
+        assert isinstance(shape["ratios"][key], float), key
+    # B (output_attentions, per query head) and the scan agree on a grouped-query model too
+    assert shape["ratios"]["agreement_B_vs_C"] is not None and shape["ratios"]["agreement_B_vs_C"] < 1e-4
+
+    # the targets are evaluated only at their lengths and shapes, which the quick run does not reach
     assert set(report["targets"]) and all(v is None for v in report["targets"].values())
     # the terminal table has a row per length
     table_rows = [line for line in proc.stdout.splitlines() if line.split() and line.split()[0] in map(str, lengths)]

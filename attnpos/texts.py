@@ -16,6 +16,7 @@ from __future__ import annotations
 import hashlib
 import os
 import warnings
+from collections import abc
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable, Sequence
@@ -40,6 +41,34 @@ class RawText:
     source: str
 
 
+class DisplayTokens(abc.Sequence):
+    """The display string of each token id of a unit (:func:`display_tokens`), decoded when read: a long text has
+    millions of tokens and only the few windows whose maps are shown need theirs. Behaves like a list of str (a
+    slice is a list)."""
+
+    __slots__ = ("_tokenizer", "_ids")
+
+    def __init__(self, tokenizer, ids: Sequence[int]):
+        self._tokenizer, self._ids = tokenizer, ids
+
+    def __len__(self) -> int:
+        return len(self._ids)
+
+    def __getitem__(self, k):
+        if isinstance(k, slice):
+            return display_tokens(self._tokenizer, self._ids[k])
+        return display_tokens(self._tokenizer, [self._ids[k]])[0]
+
+    def __iter__(self):
+        return iter(display_tokens(self._tokenizer, self._ids))
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, abc.Sequence) and not isinstance(other, str) and list(self) == list(other)
+
+    def __repr__(self) -> str:
+        return f"DisplayTokens({list(self)!r})"
+
+
 @dataclass
 class TextUnit:
     """One tokenised text (or window of one) as the model sees it."""
@@ -47,7 +76,8 @@ class TextUnit:
     name: str
     source: str
     ids: list[int]
-    tokens: list[str]          # display string per token (user text: escape before rendering)
+    tokens: Sequence[str]      # display string per token (user text: escape before rendering); from prepare() a
+    #                            DisplayTokens, decoded when read
     special: np.ndarray        # bool per token: BOS/CLS/SEP/EOS/PAD...
     window: tuple[int, int] | None = None   # [start, end) in the source's body tokens, when split
 
@@ -252,7 +282,7 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
                 special[len(ids) - len(suffix):] = True
             special |= np.isin(np.asarray(ids), list(special_ids)) if special_ids else False
             name = r.name if len(starts) == 1 else f"{r.name}#{k + 1}"
-            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=display_tokens(tok, ids),
+            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=DisplayTokens(tok, ids),
                                   special=special, window=(a, a + len(chunk)) if len(starts) > 1 else None))
     if split and warn:
         warnings.warn(f"{len(split)} text(s) longer than the limit of {limit} tokens were split into windows, each "

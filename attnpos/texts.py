@@ -231,6 +231,46 @@ def _encode(tokenizer, text: str) -> list[int]:
                            "token); save the tokenizer again with `tokenizer.save_pretrained(folder)`.") from None
 
 
+ENCODE_PIECE = 1 << 16
+"""Characters of a long text tokenised at a time (:func:`encode_long`): the tokenizer's own output for a whole
+text (its token strings, offsets and masks) costs about 200 bytes per character at its peak."""
+
+_SEAM = 256
+
+
+def _cut_at(text: str, at: int) -> int | None:
+    """A place at or after ``at`` to cut ``text``: before a single space between two non-spaces (tokenizers that
+    attach a space to the word after it, and those that split on spaces, both cut there), within 4096
+    characters; None when there is none."""
+    for k in range(max(at, 1), min(at + 4096, len(text) - 1)):
+        if text[k] == " " and not text[k - 1].isspace() and not text[k + 1].isspace():
+            return k
+    return None
+
+
+def encode_long(tokenizer, text: str, piece: int = ENCODE_PIECE) -> list[int]:
+    """:func:`_encode` of a text of any length, a piece of about ``piece`` characters at a time, so that memory
+    does not grow with the tokenizer's output for the whole text. The ids are those of the whole text at once:
+    each cut (see :func:`_cut_at`) is checked by tokenising the text around it both whole and in two parts;
+    when a cut changes the tokens there, or no cut is found, the whole text is tokenised at once."""
+    if len(text) <= piece:
+        return _encode(tokenizer, text)
+    cuts = [0]
+    while len(text) - cuts[-1] > piece:
+        k = _cut_at(text, cuts[-1] + piece)
+        if k is None:
+            return _encode(tokenizer, text)
+        a, b = text[max(k - _SEAM, cuts[-1]):k], text[k:k + _SEAM]
+        if _encode(tokenizer, a + b) != _encode(tokenizer, a) + _encode(tokenizer, b):
+            return _encode(tokenizer, text)           # this tokenizer joins or changes tokens across the cut
+        cuts.append(k)
+    cuts.append(len(text))
+    out: list[int] = []
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        out.extend(_encode(tokenizer, text[a:b]))
+    return out
+
+
 def template(tokenizer) -> tuple[list[int], list[int]]:
     """The special tokens the tokenizer puts before and after a text (e.g. [CLS] … [SEP], or BOS …)."""
     probe = "x y"
@@ -264,7 +304,7 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
     units: list[TextUnit] = []
     split: list[str] = []
     for r in check(raw):
-        body = _encode(tok, r.text)
+        body = encode_long(tok, r.text)
         if not body:
             raise AttnposError(f"The text {r.name} produced no tokens with this tokenizer.")
         room = (limit - len(prefix) - len(suffix)) if limit else len(body)

@@ -170,3 +170,37 @@ def test_prepare_decodes_no_display_tokens_until_read(rope, monkeypatch):
     assert list(u[2].tokens) == texts.display_tokens(rope.tokenizer, u[2].ids) and calls
     assert u[2].tokens[:3] == texts.display_tokens(rope.tokenizer, u[2].ids[:3])
     assert u[2].tokens[-1] == texts.display_tokens(rope.tokenizer, u[2].ids[-1:])[0] and len(u[2].tokens) == len(u[2])
+
+
+class _Counting:
+    """A tokenizer wrapper that records how many characters each call tokenises."""
+
+    def __init__(self, tok, dummy_prefix=False):
+        self.tok, self.sizes, self.dummy_prefix = tok, [], dummy_prefix
+
+    def __call__(self, text, **kw):
+        self.sizes.append(len(text))
+        out = dict(self.tok(text, **kw))
+        if self.dummy_prefix:                   # a SentencePiece-like tokenizer: every call starts with a marker
+            out["input_ids"] = [7] + list(out["input_ids"])
+        return out
+
+
+@pytest.mark.parametrize("which", ["byte", "wordpiece"])
+def test_a_long_text_is_tokenised_in_pieces_into_the_same_ids(rope, which):
+    import tiny
+
+    tok = rope.tokenizer if which == "byte" else tiny.tokenizer()
+    text = LOG * 40                             # about 20 000 characters
+    whole = texts._encode(tok, text)
+    counting = _Counting(tok)
+    assert texts.encode_long(counting, text, piece=2000) == whole
+    assert max(counting.sizes) < 2000 + 4096 and len(counting.sizes) > 10
+
+
+def test_a_tokenizer_that_changes_tokens_at_a_cut_gets_the_whole_text(rope):
+    text = LOG * 40
+    counting = _Counting(rope.tokenizer, dummy_prefix=True)
+    whole = [7] + texts._encode(rope.tokenizer, text)
+    assert texts.encode_long(counting, text, piece=2000) == whole
+    assert max(counting.sizes) == len(text)

@@ -8,7 +8,9 @@
   also keeps each text's row-centred scores on the first :data:`PAIR_MAX` × :data:`PAIR_MAX` (query, key)
   positions, from which the split forms the per-(i, j) products across texts.
 
-Both are vectorised over heads and pairs; neither keeps a map.
+Both are vectorised over heads and pairs; neither keeps a map. "Per text" means per resampling unit: past
+:data:`BOOT_UNITS` windows, a block of consecutive windows whose sums are added up (:func:`windows_per_unit`), so
+what they keep does not grow with the input.
 """
 
 from __future__ import annotations

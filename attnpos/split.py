@@ -41,7 +41,10 @@ of the texts. Nothing the size of a text's pairs is ever held.
 
 **Intervals.** 90% percentile intervals from a bootstrap over texts (texts resampled with replacement; needs ≥ 2).
 Each resample refits the three named parts; the pair part of a resample reuses the full-data fit's residuals (its
-cross-text products are weighted by the resample, copies of one text never paired with each other).
+cross-text products are weighted by the resample, copies of one text never paired with each other). Past
+:data:`attnpos.reducers.BOOT_UNITS` windows the units resampled are blocks of consecutive windows (a block
+bootstrap; :func:`attnpos.reducers.windows_per_unit`), and the pair part's products are still those of different
+windows (:meth:`Split._pair_products_blocks`).
 
 Example::
 

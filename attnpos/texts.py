@@ -103,8 +103,10 @@ SNIFF_BYTES = 8192
 TEXT_MEMORY_FACTOR = 250
 """Bytes of memory per byte of text file, a rough upper bound for reading and tokenising it: the bytes, the
 decoded text, the tokenizer's output for the whole text, and a token id and a display string per token as Python
-objects (a byte-level tokenizer makes one token per byte). Measured with ref:rope: 235 bytes per byte at 1 MB, 198
-at 5 MB (``python bench/text_memory.py read 1000000 5000000``, see bench/README.md)."""
+objects (a byte-level tokenizer makes one token per byte). Measured with ref:rope when the whole text went through
+the tokenizer at once: 235 bytes per byte at 1 MB, 198 at 5 MB; tokenised in pieces (:func:`encode_long`) 26 and 19
+(``python bench/text_memory.py read 1000000 5000000``, see bench/README.md). The bound stays that of the whole
+text at once, which a tokenizer whose tokens change at a cut still needs."""
 
 
 def _decode(path: Path) -> str:

@@ -22,7 +22,7 @@ from .capture import record
 from .core import progress as _progress, settings
 from .errors import AttnposError
 from .induction import induction_scores
-from .reducers import SplitStats, WeightStats
+from .reducers import BOOT_UNITS, SplitStats, WeightStats
 from .results.scan import Scan
 from .roles import head_table
 from .shift import ShiftTest
@@ -95,6 +95,13 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
     }
     if sh is not None:
         extra["shift"] = {"kind": sh.shift_kind, "kinds": list(sh.kinds), "offset": sh.offset, "note": sh.note}
-    return Scan(model=info, texts=[u.describe() for u in units], tokens=[u.tokens for u in units],
+    # display tokens of every window up to BOOT_UNITS windows; past that only of the windows whose maps are kept
+    # (the views' only use of them), so a long text does not keep millions of strings: the rest are empty lists
+    show = (lambda i: True) if len(units) <= BOOT_UNITS else (lambda i: i in kept)
+    tokens = [list(u.tokens) if show(i) else [] for i, u in enumerate(units)]
+    if len(units) > BOOT_UNITS:
+        extra["split"]["windows_per_unit"] = rec.results["split"].get("windows_per_unit", 1)
+        extra["tokens_left_out"] = sum(1 for i in range(len(units)) if not show(i))
+    return Scan(model=info, texts=[u.describe() for u in units], tokens=tokens,
                 special=[np.flatnonzero(u.special).tolist() for u in units], heads=table, profile=profile,
                 maps=rec.maps, texts_hash=texts_hash(units), versions=versions(), extra=extra)

@@ -8,7 +8,9 @@
   also keeps each text's row-centred scores on the first :data:`PAIR_MAX` × :data:`PAIR_MAX` (query, key)
   positions, from which the split forms the per-(i, j) products across texts.
 
-Both are vectorised over heads and pairs; neither keeps a map.
+Both are vectorised over heads and pairs; neither keeps a map. "Per text" means per resampling unit: past
+:data:`BOOT_UNITS` windows, a block of consecutive windows whose sums are added up (:func:`windows_per_unit`), so
+what they keep does not grow with the input.
 """
 
 from __future__ import annotations
@@ -32,6 +34,27 @@ NEAR = 32           # weight-by-distance kept for |δ| ≤ NEAR
 # row-centred scores there (PAIR_MAX² floats per head and text — 4 kB; 32 keeps a scan of 270 heads on 64 texts
 # under 300 MB), and the first positions are where texts overlap most (every text has them)
 PAIR_MAX = 32
+# the bootstrap resamples at most this many units: with more windows than this, consecutive windows are summed into
+# blocks (``windows_per_unit``) and the blocks are resampled — a block bootstrap, legitimate for the consecutive
+# windows of one long text — so the statistics kept per unit, and the memory of a scan, stay the same whatever the
+# length of the input. With at most this many windows every window is its own unit (nothing is summed).
+BOOT_UNITS = 64
+
+
+def windows_per_unit(n_windows: int, max_units: int = BOOT_UNITS) -> tuple[int, int]:
+    """(windows summed into one resampling unit, number of units) for ``n_windows`` consecutive windows: window t
+    goes to unit t // m. One window per unit up to ``max_units`` windows; beyond, the fewest windows per unit that
+    keep the units at most ``max_units``.
+
+    >>> windows_per_unit(40), windows_per_unit(64), windows_per_unit(65), windows_per_unit(1000)
+    ((1, 40), (1, 64), (2, 33), (16, 63))
+    """
+    if max_units < 1:
+        raise ValueError("max_units must be at least 1")
+    if n_windows <= max_units:
+        return 1, n_windows
+    m = -(-n_windows // max_units)
+    return m, -(-n_windows // m)
 
 
 def blas_one_thread():
@@ -247,19 +270,24 @@ class WeightStats(Reducer):
 
     name = "weights"
 
+    def __init__(self, max_units: int = BOOT_UNITS):
+        self.max_units = max_units
+
     def begin(self, subject, units: Sequence[TextUnit]) -> None:
         self.ph = _PerHead(subject)
         S, H = len(self.ph.keys), self.ph.n_heads
-        n = len(units)
+        # masses, entropy and slot weights are kept per resampling unit (first axis: a text, or a block of
+        # consecutive windows past BOOT_UNITS, see windows_per_unit), so the roles can be resampled like the split
+        self.per_unit, n = windows_per_unit(len(units), self.max_units)
         self.max_t = max(len(u) for u in units)
         z = lambda *shape: np.zeros(shape, dtype=np.float64)  # noqa: E731
-        # masses, entropy and slot weights are kept per text (first axis), so the roles can be resampled over texts
         self.mass = {k: z(n, S, H) for k in ("previous", "next", "first", "self")}
         self.mass_n = {k: z(n, S) for k in ("previous", "next", "first", "self")}
         self.ent = z(n, S, H)
         self.ent_n = z(n, S)
-        self.slot_w = np.zeros((n, S, H, self.max_t), dtype=np.float32)
-        self.slot_n = np.zeros((n, S, self.max_t), dtype=np.float32)
+        slot_dtype = np.float32 if self.per_unit == 1 else np.float64    # a block's sums: float64
+        self.slot_w = np.zeros((n, S, H, self.max_t), dtype=slot_dtype)
+        self.slot_n = np.zeros((n, S, self.max_t), dtype=slot_dtype)
         self.near_w = z(S, H, 2 * NEAR + 1)
         self.near_n = z(S, 2 * NEAR + 1)
         self._counted: set = set()
@@ -279,14 +307,16 @@ class WeightStats(Reducer):
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
         ordf, n_allowed, qe, okf = self._queries(cap, A)
         if (si, cap.text) not in self._counted:    # head-independent counts, once per layer and text
+            if self._counted and next(iter(self._counted))[1] != cap.text:
+                self._counted.clear()              # texts come one after another: only the current one's
             self._counted.add((si, cap.text))
-            self._count(si, cap.text, A, ordf, qe, okf)
+            self._count(si, cap.text // self.per_unit, A, ordf, qe, okf)
         # mean weight by distance, |δ| ≤ NEAR, over ordinary queries (weights are 0 on disallowed pairs); the
         # previous / next / self masses are its δ = 1, −1, 0 entries
         nb = band(w, NEAR)                          # (n, T, 2·NEAR+1)
         near = torch.matmul(ordf, nb).double().numpy()
         self.near_w[si, hs] += near
-        t = cap.text
+        t = cap.text // self.per_unit              # the text's resampling unit (itself up to BOOT_UNITS texts)
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
             self.mass[name][t, si, hs] += near[:, NEAR + d]
         self.mass["first"][t, si, hs] += w[:, okf, 0].sum(-1).double().numpy()
@@ -508,21 +538,27 @@ class SplitStats(Reducer):
 
     name = "split"
 
-    def __init__(self, heads_only: set | None = None):
+    def __init__(self, heads_only: set | None = None, max_units: int = BOOT_UNITS):
         self.heads_only = heads_only
+        self.max_units = max_units
 
     def begin(self, subject, units: Sequence[TextUnit]) -> None:
         self.ph = _PerHead(subject)
         self.units = list(units)
         self.design = Design(units)
-        S, H, n = len(self.ph.keys), self.ph.n_heads, len(units)
+        S, H = len(self.ph.keys), self.ph.n_heads
+        # axis 0 of b, ssw, gram_key (and of pair) is the resampling unit: a text, or past max_units texts a block
+        # of consecutive windows whose sums are added up (see windows_per_unit and _BlockSums)
+        self.per_unit, n = windows_per_unit(len(units), self.max_units)
         p = self.design.p
         self.b = np.zeros((n, S, H, p))
         self.ssw = np.zeros((n, S, H))
         self.gram_key = np.zeros((n, S), dtype=np.int64)   # which Gram (mask pattern) each text/site used
         self.grams: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
         self.R = min(PAIR_MAX, self.design.max_t)
-        self.pair = np.zeros((n, S, H, self.R, self.R), dtype=np.float32)   # row-centred scores, pair region
+        # row-centred scores on the pair region: per text, or (blocks) the current window's, summed into _BlockSums
+        self.pair = np.zeros((1 if self.per_unit > 1 else n, S, H, self.R, self.R), dtype=np.float32)
+        self._blocks = _BlockSums(self, n) if self.per_unit > 1 else None
         self.regions: dict[tuple, dict] = {}                                 # per pattern: see _region
         self._rows: dict[tuple, tuple] = {}               # per pattern: layout, keys per row, row feature counts
         self._scratch: torch.Tensor | None = None         # centred scores, when row constants are large
@@ -553,7 +589,8 @@ class SplitStats(Reducer):
                         else "general")
                 self._rows[key] = (kind, torch.from_numpy(a.sum(1).astype(np.float64)), torch.from_numpy(C))
                 self.regions[key] = self._region(cap, a, C)
-            self.gram_key[cap.text, si] = list(self.grams).index(key)
+            if self._blocks is None:
+                self.gram_key[cap.text, si] = list(self.grams).index(key)
             self._layer_gram[at] = key
         return self._rows[self._layer_gram[at]]
 
@@ -573,6 +610,8 @@ class SplitStats(Reducer):
             raise ValueError("SplitStats runs on unshifted recordings only")
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
+        if self._blocks is not None:
+            self._blocks.start(cap.text)             # a new window: the last one goes into its block
         kind, n_i, rows_c = self._pattern(cap, si)
         s0 = cap.zeroed_scores()                     # (n, T, T), 0 on disallowed pairs
         if self._scratch is None or self._scratch.numel() < s0.numel():
@@ -583,21 +622,161 @@ class SplitStats(Reducer):
         b = torch.cat([diag @ FD, col @ FJ], dim=-1)
         if correction is not None:
             b -= correction
-        self.b[cap.text, si, hs] = b.numpy()
-        self.ssw[cap.text, si, hs] = ssw.numpy()
+        if self._blocks is None:
+            self.b[cap.text, si, hs] = b.numpy()
+            self.ssw[cap.text, si, hs] = ssw.numpy()
+        else:                                        # a block's sums over its windows
+            self.b[cap.text // self.per_unit, si, hs] += b.numpy()
+            self.ssw[cap.text // self.per_unit, si, hs] += ssw.numpy()
         # the pair region: row-centred scores of queries and keys below R (0 on disallowed pairs)
         T = s0.shape[-1]
         R = min(self.R, T)
         m = s0[:, :R].sum(-1, dtype=torch.float64) / n_i[:R].clamp_min(1.0)            # (n, R) row means
         A = cap.allowed[:R, :R]
         blk = (s0[:, :R, :R].double() - m[..., None]) * A.to(torch.float64)
-        self.pair[cap.text, si, hs, :R, :R] = blk.numpy()
+        self.pair[0 if self._blocks is not None else cap.text, si, hs, :R, :R] = blk.numpy()
 
     def result(self) -> dict:
         self._scratch = None
         self._rows.clear()
+        if self._blocks is not None:
+            return self._blocks.result()
         grams = list(self.grams.values())
         return {"keys": self.ph.keys, "design": self.design, "b": self.b, "ssw": self.ssw,
                 "gram_key": self.gram_key, "grams": [g for g, _ in grams], "dist_counts": [n for _, n in grams],
-                "pair": self.pair, "regions": [self.regions[k] for k in self.grams]}
+                "pair": self.pair, "regions": [self.regions[k] for k in self.grams], "n_windows": len(self.units)}
+
+
+def _region_map(region: dict, p: int, pD: int) -> np.ndarray:
+    """The fit on one window's pair region as a linear map of the coefficients: F (R², p) with F @ coef = the
+    fitted scores (distance + key − row term, as in :meth:`attnpos.split.Split._pair_products`) on the allowed
+    pairs, 0 elsewhere; so the window's residual there is c − F @ coef."""
+    R = region["R"]
+    i, j = np.arange(R)[:, None], np.arange(R)[None, :]
+    F = np.zeros((R, R, p))
+    F[:, :, :pD] = region["FD"][i - j + R - 1]
+    F[:, :, pD:] += region["FJ"][None, :, :]
+    F -= (region["C"] / np.maximum(region["n_i"], 1.0)[:, None])[:, None, :]
+    F *= region["allowed"][:, :, None]
+    return F.reshape(R * R, p)
+
+
+class _BlockSums:
+    """SplitStats' storage past ``max_units`` windows: every resampling unit is a block of consecutive windows.
+
+    b and ssw are summed per block in place (SplitStats.update). The rest is summed when a window is complete:
+
+    * Gram matrices and pair counts per block and site (sites whose windows all had the same mask patterns share
+      one sum), so ``gram_key``/``grams``/``dist_counts`` keep their meaning with blocks in place of texts;
+    * for the position pair, the block's windows grouped by their pair regions (same size and mask on every
+      site): per group the sums of the row-centred scores c and of c², and of the region's features (so the sum
+      of the windows' residuals is one linear map of the fit's coefficients), and, to leave out the products of a
+      window with itself, Σ c·c, Σ Fᵀc and Σ FᵀF (a window's own Σ r² is a quadratic form of the coefficients).
+
+    Nothing of a window is kept once it is in its block; memory is that of at most ``max_units`` blocks."""
+
+    def __init__(self, stats: "SplitStats", n_units: int):
+        self.st = stats
+        self.n_units = n_units
+        self.current: int | None = None
+        self.open: int | None = None                  # block being filled
+        self.slot: list | None = None                 # per site: index into self.bg
+        self.bg: list = []                            # the open block's Gram sums [G, counts]
+        self.grams: list = []                         # closed blocks' Gram sums
+        self.groups: dict = {}                        # (block, region signature) → pair sums of its windows
+
+    def start(self, text: int) -> None:
+        if text != self.current:
+            if self.current is not None:
+                self._add_window()
+            self.current = text
+
+    @staticmethod
+    def _shared(slots, keys, make, add, store):
+        """Sums shared by sites: a site's new sum is its old sum (slot) plus its window's value (key); sites with
+        the same old slot and key share it. Returns the sites' new slots into the new store."""
+        new: dict = {}
+        out = []
+        for old, key in zip(slots, keys):
+            sig = (old, key)
+            if sig not in new:
+                new[sig] = len(store)
+                store.append(make(key) if old is None else add(old, key))
+            out.append(new[sig])
+        return out
+
+    def _close(self) -> None:
+        if self.open is not None:
+            self.st.gram_key[self.open] = len(self.grams) + np.asarray(self.slot)
+            self.grams.extend(self.bg)
+        self.open, self.slot, self.bg = None, None, []
+
+    def _add_window(self) -> None:
+        st, t = self.st, self.current
+        S = len(st.ph.keys)
+        unit = t // st.per_unit
+        if unit != self.open:
+            self._close()
+            self.open, self.slot = unit, [None] * S
+        keys = [st._layer_gram[(t, si)] for si in range(S)]
+        old_bg = self.bg
+        self.bg = []
+        self.slot = self._shared(self.slot, keys,
+                                 lambda k: [st.grams[k][0].copy(), st.grams[k][1].copy()],
+                                 lambda o, k: [old_bg[o][0] + st.grams[k][0], old_bg[o][1] + st.grams[k][1]],
+                                 self.bg)
+        # the pair region: the window joins the group of its block with the same regions on every site
+        p, pD, H = st.design.p, st.design.n_dist + 1, st.ph.n_heads
+        regions = [st.regions[k] for k in keys]
+        sig = (unit, tuple((r["R"], np.packbits(r["allowed"]).tobytes()) for r in regions))
+        g = self.groups.get(sig)
+        if g is None:
+            R = st.R
+            g = self.groups[sig] = {"unit": unit, "m": 0, "slot": [None] * S, "regions": [],
+                                    "pair": np.zeros((S, H, R, R)), "pair_sq": np.zeros((S, H, R, R)),
+                                    "cc": np.zeros((S, H)), "Fc": np.zeros((S, H, p))}
+        maps = {k: _region_map(st.regions[k], p, pD) for k in set(keys)}
+
+        def make(k):
+            r = st.regions[k]
+            F = maps[k]
+            return {"R": r["R"], "allowed": r["allowed"], "FD": r["FD"], "FJ": r["FJ"].copy(),
+                    "Cn": r["C"] / np.maximum(r["n_i"], 1.0)[:, None], "FtF": F.T @ F}
+
+        def add(o, k):
+            a, r, F = old_regions[o], st.regions[k], maps[k]
+            return {"R": a["R"], "allowed": a["allowed"], "FD": a["FD"], "FJ": a["FJ"] + r["FJ"],
+                    "Cn": a["Cn"] + r["C"] / np.maximum(r["n_i"], 1.0)[:, None], "FtF": a["FtF"] + F.T @ F}
+
+        old_regions = g["regions"]
+        g["regions"] = []
+        with blas_one_thread():
+            g["slot"] = self._shared(g["slot"], keys, make, add, g["regions"])
+            for si, k in enumerate(keys):
+                Rt = st.regions[k]["R"]
+                c = st.pair[0, si].astype(np.float64)              # (H, R, R), 0 outside the region
+                g["pair"][si] += c
+                g["pair_sq"][si] += c * c
+                g["cc"][si] += (c * c).sum((-2, -1))
+                g["Fc"][si] += c[:, :Rt, :Rt].reshape(H, -1) @ maps[k]
+        g["m"] += 1
+        st.pair[0] = 0.0
+        # the window's own pattern data is no longer needed
+        for k in set(keys):
+            st.grams.pop(k, None)
+            st.regions.pop(k, None)
+            st._rows.pop(k, None)
+        for si in range(S):
+            st._layer_gram.pop((t, si), None)
+
+    def result(self) -> dict:
+        st = self.st
+        if self.current is not None:
+            self._add_window()
+            self.current = None
+        self._close()
+        groups = list(self.groups.values())
+        return {"keys": st.ph.keys, "design": st.design, "b": st.b, "ssw": st.ssw, "gram_key": st.gram_key,
+                "grams": [g for g, _ in self.grams], "dist_counts": [n for _, n in self.grams],
+                "pair_groups": groups, "n_windows": len(st.units), "windows_per_unit": st.per_unit}
 

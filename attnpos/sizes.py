@@ -35,6 +35,10 @@ POSITION_NAMES = ("max_position_embeddings", "n_positions", "n_ctx", "max_seq_le
 FFN_NAMES = ("intermediate_size", "n_inner", "d_ff", "ffn_dim", "encoder_ffn_dim", "hidden_dim")
 
 _LAYER_RE = re.compile(r"(?:^|\.)(?:layers?|h|blocks?)\.(\d+)\.")
+# ALBERT shares its layers across depth: num_hidden_layers applications of num_hidden_groups groups of
+# inner_group_num layers each (transformers' AlbertTransformer), stored once as
+# albert_layer_groups.G.albert_layers.L.* — depth is not a count of stored layers, the groups and layers are
+_SHARED_RE = re.compile(r"(?:^|\.)albert_layer_groups\.(\d+)\.albert_layers\.(\d+)\.")
 _TABLE_RE = re.compile(r"(?:^|\.)(?:wpe|position_embeddings|embed_positions)\.weight\Z")
 
 
@@ -134,6 +138,38 @@ def layers_in_names(names) -> int | None:
     return best
 
 
+def shared_layers_in_names(names) -> tuple[int, int] | None:
+    """(layer groups, layers per group) that ALBERT-style shared-layer tensor names hold
+    (``albert_layer_groups.G.albert_layers.L.``: the largest G + 1 and L + 1), or None when no name is laid out
+    that way.
+
+    >>> shared_layers_in_names(["albert.encoder.albert_layer_groups.0.albert_layers.0.attention.query.weight"])
+    (1, 1)
+    """
+    groups = inner = None
+    for name in names:
+        for m in _SHARED_RE.finditer(name):
+            g, i = int(m.group(1)) + 1, int(m.group(2)) + 1
+            groups = g if groups is None or g > groups else groups
+            inner = i if inner is None or i > inner else inner
+    return None if groups is None else (groups, inner)
+
+
+def _refuse_missing_shared_layers(folder, cfg: dict, tables: dict) -> None:
+    """A shared-layer config (ALBERT) may apply one stored layer at every depth, so its num_hidden_layers is not
+    compared with the stored layers; its layer groups and layers per group are."""
+    held = shared_layers_in_names(tables)
+    if held is None:
+        return
+    for what, key, have in (("layer groups", "num_hidden_groups", held[0]),
+                            ("layers per group", "inner_group_num", held[1])):
+        claimed = cfg.get(key, 1)
+        if isinstance(claimed, int) and not isinstance(claimed, bool) and claimed > have:
+            raise AttnposError(f"{folder}/config.json claims {claimed} {what} ({key}), but the weights hold only "
+                               f"{have}; the missing ones would be filled with random values and measured as if "
+                               f"trained. Fix {key} in config.json, or re-save the checkpoint.")
+
+
 def refuse_zero_sizes(folder, cfg: dict) -> None:
     """A config with no attention heads, no width, no layers or an empty vocabulary describes no model to study."""
     for what, names in (("attention heads", HEAD_NAMES), ("hidden width", WIDTH_NAMES), ("layers", LAYER_NAMES),
@@ -163,6 +199,7 @@ def check_checkpoint(folder: Path, cfg: dict) -> None:
                 size *= s
             numel += size
     if tables:
+        _refuse_missing_shared_layers(folder, cfg, tables)
         claimed, held = config_layers(cfg), layers_in_names(tables)
         if claimed is not None and held is not None and claimed > held:
             raise AttnposError(f"{folder}/config.json claims {claimed} layers, but the weights hold only {held}; "

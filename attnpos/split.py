@@ -41,7 +41,10 @@ of the texts. Nothing the size of a text's pairs is ever held.
 
 **Intervals.** 90% percentile intervals from a bootstrap over texts (texts resampled with replacement; needs ≥ 2).
 Each resample refits the three named parts; the pair part of a resample reuses the full-data fit's residuals (its
-cross-text products are weighted by the resample, copies of one text never paired with each other).
+cross-text products are weighted by the resample, copies of one text never paired with each other). Past
+:data:`attnpos.reducers.BOOT_UNITS` windows the units resampled are blocks of consecutive windows (a block
+bootstrap; :func:`attnpos.reducers.windows_per_unit`), and the pair part's products are still those of different
+windows (:meth:`Split._pair_products_blocks`).
 
 Example::
 
@@ -246,13 +249,66 @@ class Split:
         return P, V
 
     @staticmethod
-    def _with_pair(shares4: np.ndarray, P: np.ndarray, V: np.ndarray, w: np.ndarray) -> np.ndarray:
+    def _pair_products_blocks(res: dict, coef: np.ndarray):
+        """:meth:`_pair_products` when the resampling units are blocks of windows (``res["pair_groups"]``, see
+        :class:`attnpos.reducers._BlockSums`): ``P`` and ``V`` (S, H, units, units) between blocks, plus what the
+        different windows *within* a block share, ``Pw`` and ``Vw`` (S, H, units) — a block's products with itself
+        less each window's own. With these, every weighting of the blocks gives the same sums over pairs of
+        different windows that :meth:`_pair_products` gives over texts."""
+        design: Design = res["design"]
+        groups, n_units = res["pair_groups"], res["b"].shape[0]
+        S, H, R = res["b"].shape[1], res["b"].shape[2], groups[0]["pair"].shape[-1]
+        pD = design.n_dist + 1
+        nG = len(groups)
+        M = np.zeros((n_units, nG))
+        for q, g in enumerate(groups):
+            M[g["unit"], q] = 1.0
+        P = np.zeros((S, H, n_units, n_units))
+        V = np.zeros((S, H, n_units, n_units))
+        Pw = np.zeros((S, H, n_units))
+        Vw = np.zeros((S, H, n_units))
+        for si in range(S):
+            co = coef[si]                                                   # (p, H)
+            r = np.zeros((nG, H, R, R))
+            A = np.zeros((nG, R, R))
+            own = np.zeros((nG, H))                                         # Σ over a group's windows of Σ r²
+            for q, g in enumerate(groups):
+                reg = g["regions"][g["slot"][si]]
+                Rt, m = reg["R"], g["m"]
+                i, j = np.arange(Rt)[:, None], np.arange(Rt)[None, :]
+                dist = reg["FD"] @ co[:pD]                                  # (2Rt − 1, H)
+                key = reg["FJ"] @ co[pD:]                                   # (Rt, H): summed over the windows
+                row = reg["Cn"] @ co                                        # (Rt, H): summed over the windows
+                fitted = m * dist[i - j + Rt - 1] + key[None, :, :] - row[:, None, :]
+                At = reg["allowed"]
+                A[q, :Rt, :Rt] = m * At
+                r[q, :, :Rt, :Rt] = g["pair"][si, :, :Rt, :Rt] - np.moveaxis(fitted, -1, 0) * At
+                own[q] = (g["cc"][si] - 2.0 * np.einsum("hp,ph->h", g["Fc"][si], co)
+                          + np.einsum("ph,pq,qh->h", co, reg["FtF"], co))
+            rf = r.reshape(nG, H, -1).transpose(1, 0, 2)                    # (H, nG, K)
+            Pg = rf @ rf.transpose(0, 2, 1)                                 # (H, nG, nG)
+            c2 = np.stack([g["pair_sq"][si] for g in groups]).reshape(nG, H, -1).transpose(1, 0, 2)
+            v1 = c2 @ A.reshape(nG, -1).T
+            Vg = 0.5 * (v1 + v1.transpose(0, 2, 1))
+            P[si] = M @ Pg @ M.T
+            V[si] = M @ Vg @ M.T
+            Pw[si] = np.diagonal(P[si], axis1=-2, axis2=-1) - own.T @ M.T
+            Vw[si] = np.diagonal(V[si], axis1=-2, axis2=-1) - np.stack([g["cc"][si] for g in groups]).T @ M.T
+        return P, V, Pw, Vw
+
+    @staticmethod
+    def _with_pair(shares4: np.ndarray, P: np.ndarray, V: np.ndarray, w: np.ndarray,
+                   within: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
         """Shares of the five parts: the position-pair part is the fraction of the within-row variance that the
         full fit's residual shares between different texts at the same (i, j) (pairs of copies of one text left
-        out), at most the residual; the residual keeps the rest."""
+        out), at most the residual; the residual keeps the rest. ``within``: with blocks of windows as units, what
+        different windows of one block share (:meth:`_pair_products_blocks`), counted w² times."""
         W = np.outer(w, w) - np.diag(w * w)
         num = np.einsum("shtu,tu->sh", P, W)
         den = np.einsum("shtu,tu->sh", V, W)
+        if within is not None:
+            num = num + np.einsum("sht,t->sh", within[0], w * w)
+            den = den + np.einsum("sht,t->sh", within[1], w * w)
         with np.errstate(invalid="ignore", divide="ignore"):
             frac = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
         rest = shares4[..., 3]
@@ -265,10 +321,15 @@ class Split:
             return self._fit(res)
 
     def _fit(self, res: dict) -> SplitResult:
-        n = res["b"].shape[0]
+        n = res["b"].shape[0]                   # resampling units: texts, or blocks of windows (pair_groups)
         shares4, prof, slope, coef = self._fit_weights(res, np.ones(n))
-        P, V = self._pair_products(res, coef)
-        shares = self._with_pair(shares4, P, V, np.ones(n))
+        within = None
+        if "pair_groups" in res:
+            P, V, Pw, Vw = self._pair_products_blocks(res, coef)
+            within = (Pw, Vw)
+        else:
+            P, V = self._pair_products(res, coef)
+        shares = self._with_pair(shares4, P, V, np.ones(n), within)
         lo = lambda a: np.full_like(a, np.nan)  # noqa: E731
         out = dict(shares_lo=lo(shares), shares_hi=lo(shares), profile_lo=lo(prof), profile_hi=lo(prof),
                    slope_lo=lo(slope), slope_hi=lo(slope))
@@ -283,7 +344,7 @@ class Split:
                 key = w.tobytes()
                 if key not in seen:
                     s4, p_, l_, _ = self._fit_weights(res, w)
-                    seen[key] = (self._with_pair(s4, P, V, w), p_, l_)
+                    seen[key] = (self._with_pair(s4, P, V, w, within), p_, l_)
                 s_, p_, l_ = seen[key]
                 bs["shares"].append(s_)
                 bs["profile"].append(p_)
@@ -296,4 +357,4 @@ class Split:
             out["boot_slope"] = np.stack(bs["slope"])
         design: Design = res["design"]
         return SplitResult(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
-                        n_texts=n, n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)
+                        n_texts=int(res.get("n_windows", n)), n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

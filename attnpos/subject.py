@@ -184,6 +184,7 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         if bars:
             hf_logging.enable_progress_bar()
     model.eval()
+    no_pooler = _drop_absent_pooler(model, info)
     random_init, unused = check_loaded_tensors(model, info, where=str(p), allow_missing=allow_missing_weights)
     try:
         tokenizer = AutoTokenizer.from_pretrained(p, trust_remote_code=trust_remote_code)
@@ -202,7 +203,36 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     if unused:
         subject.notes.append(f"the weights hold {len(unused)} tensor(s) the loaded model does not use "
                              f"({_names(unused)}).")
+    if no_pooler:
+        subject.notes.append(f"the weights hold no pooler ({_names(no_pooler)}; a masked-LM or other task "
+                             "checkpoint), so the model was built without one: it reads only the last layer's output "
+                             "and nothing attnpos measures.")
     return subject
+
+
+def _drop_absent_pooler(model, info: dict) -> list[str]:
+    """A BERT-style encoder (BERT, ALBERT, RoBERTa …) saved from a task model (masked LM, token classification)
+    has no pooler: transformers builds those bodies with ``add_pooling_layer=False``, but the bare model class
+    attnpos loads builds one and would fill it with random values. When *every* tensor of the pooler is missing,
+    the pooler is removed (``pooler = None``, which those classes' forward skips) and its names taken out of the
+    missing tensors; the pooler reads only the last layer's first position, so no attention changes. A pooler
+    that is only partly missing stays missing (a damaged checkpoint). Returns the names taken out."""
+    body = getattr(model, getattr(model, "base_model_prefix", "") or "", None) or model
+    pooler = getattr(body, "pooler", None)
+    if not isinstance(pooler, torch.nn.Module):
+        return []
+    prefix = "" if body is model else f"{model.base_model_prefix}."
+    names = {f"{prefix}pooler.{n}" for n, _ in pooler.named_parameters()}
+    missing = [str(k[0]) if isinstance(k, (tuple, list)) else str(k) for k in info.get("missing_keys") or ()]
+    found = {n for n in missing if n in names or n.split(".", 1)[-1] in names}
+    if not names or {n.split(".", 1)[-1] if n not in names else n for n in found} != names:
+        return []
+    body.pooler = None
+    if hasattr(body, "pooler_activation"):
+        body.pooler_activation = None
+    info["missing_keys"] = [k for k in info.get("missing_keys") or ()
+                            if (str(k[0]) if isinstance(k, (tuple, list)) else str(k)) not in found]
+    return sorted(found)
 
 
 def _names(names: list[str], n: int = 6) -> str:

@@ -16,6 +16,7 @@ from __future__ import annotations
 import hashlib
 import os
 import warnings
+from collections import abc
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable, Sequence
@@ -40,6 +41,34 @@ class RawText:
     source: str
 
 
+class DisplayTokens(abc.Sequence):
+    """The display string of each token id of a unit (:func:`display_tokens`), decoded when read: a long text has
+    millions of tokens and only the few windows whose maps are shown need theirs. Behaves like a list of str (a
+    slice is a list)."""
+
+    __slots__ = ("_tokenizer", "_ids")
+
+    def __init__(self, tokenizer, ids: Sequence[int]):
+        self._tokenizer, self._ids = tokenizer, ids
+
+    def __len__(self) -> int:
+        return len(self._ids)
+
+    def __getitem__(self, k):
+        if isinstance(k, slice):
+            return display_tokens(self._tokenizer, self._ids[k])
+        return display_tokens(self._tokenizer, [self._ids[k]])[0]
+
+    def __iter__(self):
+        return iter(display_tokens(self._tokenizer, self._ids))
+
+    def __eq__(self, other) -> bool:
+        return isinstance(other, abc.Sequence) and not isinstance(other, str) and list(self) == list(other)
+
+    def __repr__(self) -> str:
+        return f"DisplayTokens({list(self)!r})"
+
+
 @dataclass
 class TextUnit:
     """One tokenised text (or window of one) as the model sees it."""
@@ -47,7 +76,8 @@ class TextUnit:
     name: str
     source: str
     ids: list[int]
-    tokens: list[str]          # display string per token (user text: escape before rendering)
+    tokens: Sequence[str]      # display string per token (user text: escape before rendering); from prepare() a
+    #                            DisplayTokens, decoded when read
     special: np.ndarray        # bool per token: BOS/CLS/SEP/EOS/PAD...
     window: tuple[int, int] | None = None   # [start, end) in the source's body tokens, when split
 
@@ -73,8 +103,10 @@ SNIFF_BYTES = 8192
 TEXT_MEMORY_FACTOR = 250
 """Bytes of memory per byte of text file, a rough upper bound for reading and tokenising it: the bytes, the
 decoded text, the tokenizer's output for the whole text, and a token id and a display string per token as Python
-objects (a byte-level tokenizer makes one token per byte). Measured with ref:rope: 235 bytes per byte at 1 MB, 198
-at 5 MB (``python bench/text_memory.py read 1000000 5000000``, see bench/README.md)."""
+objects (a byte-level tokenizer makes one token per byte). Measured with ref:rope when the whole text went through
+the tokenizer at once: 235 bytes per byte at 1 MB, 198 at 5 MB; tokenised in pieces (:func:`encode_long`) 26 and 19
+(``python bench/text_memory.py read 1000000 5000000``, see bench/README.md). The bound stays that of the whole
+text at once, which a tokenizer whose tokens change at a cut still needs."""
 
 
 def _decode(path: Path) -> str:
@@ -201,6 +233,46 @@ def _encode(tokenizer, text: str) -> list[int]:
                            "token); save the tokenizer again with `tokenizer.save_pretrained(folder)`.") from None
 
 
+ENCODE_PIECE = 1 << 16
+"""Characters of a long text tokenised at a time (:func:`encode_long`): the tokenizer's own output for a whole
+text (its token strings, offsets and masks) costs about 200 bytes per character at its peak."""
+
+_SEAM = 256
+
+
+def _cut_at(text: str, at: int) -> int | None:
+    """A place at or after ``at`` to cut ``text``: before a single space between two non-spaces (tokenizers that
+    attach a space to the word after it, and those that split on spaces, both cut there), within 4096
+    characters; None when there is none."""
+    for k in range(max(at, 1), min(at + 4096, len(text) - 1)):
+        if text[k] == " " and not text[k - 1].isspace() and not text[k + 1].isspace():
+            return k
+    return None
+
+
+def encode_long(tokenizer, text: str, piece: int = ENCODE_PIECE) -> list[int]:
+    """:func:`_encode` of a text of any length, a piece of about ``piece`` characters at a time, so that memory
+    does not grow with the tokenizer's output for the whole text. The ids are those of the whole text at once:
+    each cut (see :func:`_cut_at`) is checked by tokenising the text around it both whole and in two parts;
+    when a cut changes the tokens there, or no cut is found, the whole text is tokenised at once."""
+    if len(text) <= piece:
+        return _encode(tokenizer, text)
+    cuts = [0]
+    while len(text) - cuts[-1] > piece:
+        k = _cut_at(text, cuts[-1] + piece)
+        if k is None:
+            return _encode(tokenizer, text)
+        a, b = text[max(k - _SEAM, cuts[-1]):k], text[k:k + _SEAM]
+        if _encode(tokenizer, a + b) != _encode(tokenizer, a) + _encode(tokenizer, b):
+            return _encode(tokenizer, text)           # this tokenizer joins or changes tokens across the cut
+        cuts.append(k)
+    cuts.append(len(text))
+    out: list[int] = []
+    for a, b in zip(cuts[:-1], cuts[1:]):
+        out.extend(_encode(tokenizer, text[a:b]))
+    return out
+
+
 def template(tokenizer) -> tuple[list[int], list[int]]:
     """The special tokens the tokenizer puts before and after a text (e.g. [CLS] … [SEP], or BOS …)."""
     probe = "x y"
@@ -234,7 +306,7 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
     units: list[TextUnit] = []
     split: list[str] = []
     for r in check(raw):
-        body = _encode(tok, r.text)
+        body = encode_long(tok, r.text)
         if not body:
             raise AttnposError(f"The text {r.name} produced no tokens with this tokenizer.")
         room = (limit - len(prefix) - len(suffix)) if limit else len(body)
@@ -252,7 +324,7 @@ def prepare(subject, raw: Sequence[RawText], *, max_tokens: int | None = None,
                 special[len(ids) - len(suffix):] = True
             special |= np.isin(np.asarray(ids), list(special_ids)) if special_ids else False
             name = r.name if len(starts) == 1 else f"{r.name}#{k + 1}"
-            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=display_tokens(tok, ids),
+            units.append(TextUnit(name=name, source=r.source, ids=ids, tokens=DisplayTokens(tok, ids),
                                   special=special, window=(a, a + len(chunk)) if len(starts) > 1 else None))
     if split and warn:
         warnings.warn(f"{len(split)} text(s) longer than the limit of {limit} tokens were split into windows, each "

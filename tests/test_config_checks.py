@@ -102,3 +102,74 @@ def test_more_kv_heads_than_query_heads_refused_in_memory_and_on_disk(tmp_path):
     (folder / "model.safetensors").write_bytes(b"")
     with pytest.raises(attnpos.AttnposError, match="8 key/value heads for 4 query heads"):
         locate(folder)
+
+
+# ------------------------------------------------------------------ ALBERT: one layer shared across depth
+# transformers' AlbertTransformer applies num_hidden_groups groups of inner_group_num layers over
+# num_hidden_layers depths, stored once as albert.encoder.albert_layer_groups.G.albert_layers.L.*; its task models
+# (AlbertForMaskedLM …) build the body with add_pooling_layer=False, so their checkpoints hold no pooler
+# (modeling_albert in transformers)
+
+@pytest.fixture(scope="module")
+def albert_dirs(tmp_path_factory):
+    """An ALBERT masked-LM and a bare ALBERT, random weights, 12 depths over one shared layer."""
+    import transformers as tf
+
+    root = tmp_path_factory.mktemp("albert")
+    cfg = tf.AlbertConfig(num_hidden_layers=12, num_attention_heads=4, hidden_size=32, embedding_size=16,
+                          intermediate_size=64, max_position_embeddings=128, vocab_size=tiny.tokenizer().vocab_size)
+    out = {}
+    for name, cls in (("mlm", tf.AlbertForMaskedLM), ("bare", tf.AlbertModel)):
+        torch.manual_seed(0)
+        model = cls(cfg).eval()
+        model.save_pretrained(root / name)
+        tiny.tokenizer().save_pretrained(root / name)
+        out[name] = (root / name, model)
+    return out
+
+
+def test_albert_masked_lm_checkpoint_loads_and_scans(albert_dirs):
+    folder, mlm = albert_dirs["mlm"]
+    s = attnpos.load(folder)
+    assert s.n_layers == 12 and len(s.sites) == 12 and s.missing_weights == []
+    assert len({id(site.module) for site in s.sites}) == 1              # one module, applied at every depth
+    assert any("no pooler" in n for n in s.notes)
+    ids = tiny.tokenizer()("The tide turned at four and the boats came in.", return_tensors="pt")["input_ids"]
+    with torch.no_grad():                    # the loaded body computes what the saved model's body computes
+        want = mlm.albert(ids).last_hidden_state
+        got = s.model(ids).last_hidden_state
+    torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)
+    scan = attnpos.scan(s, ["The tide turned at four and the boats came in one by one."], n_boot=0, shift=False,
+                        induction=False)
+    assert len(scan.heads) == 48 and scan.heads["mass_previous"].notna().all()
+
+
+@pytest.mark.parametrize("name,drop", [
+    ("mlm", "albert.encoder.albert_layer_groups.0.albert_layers.0.attention.query.weight"),
+    ("bare", "pooler.weight"),               # a pooler that is only partly there is a damaged checkpoint
+])
+def test_albert_tensor_removed_is_refused_naming_it_alone(albert_dirs, tmp_path, name, drop):
+    import shutil
+
+    from safetensors.torch import load_file, save_file
+
+    folder = tmp_path / "holes"
+    shutil.copytree(albert_dirs[name][0], folder)
+    weights = load_file(folder / "model.safetensors")
+    del weights[drop]
+    save_file(weights, folder / "model.safetensors", metadata={"format": "pt"})
+    with pytest.raises(attnpos.AttnposError, match="1 tensor") as err:
+        attnpos.load(folder)
+    assert drop.removeprefix("albert.") in str(err.value)
+
+
+def test_albert_depth_is_not_its_stored_layers_but_its_groups_are(albert_dirs, tmp_path):
+    from attnpos.sizes import check_checkpoint
+
+    folder = albert_dirs["bare"][0]
+    cfg = json.loads((folder / "config.json").read_text())
+    check_checkpoint(folder, cfg)            # 12 depths over one stored layer: what ALBERT is
+    assert locate(folder).config["num_hidden_layers"] == 12
+    for key in ("num_hidden_groups", "inner_group_num"):
+        with pytest.raises(attnpos.AttnposError, match=f"claims 3 .*{key}.*hold only 1"):
+            check_checkpoint(folder, {**cfg, key: 3})

@@ -39,7 +39,9 @@ class Scan(Result):
             (``"scores"`` or ``"log-weights"``).
         texts: one dict per text unit: ``name``, ``source``, ``n_tokens``, ``window`` (``[start, end]`` in the
             source's tokens, or None).
-        tokens: display strings per text unit (user text: escape before rendering).
+        tokens: display strings per text unit (user text: escape before rendering). Past 64 text units only the
+            units whose weight maps are kept have theirs (the others an empty list; ``extra["tokens_left_out"]``
+            counts them).
         special: indices of special tokens (BOS/CLS/SEP) per text unit.
         heads: the head table (pandas DataFrame, one row per stack × layer × head, columns
             :func:`attnpos.core.columns.names`).

@@ -321,3 +321,29 @@ def test_a_role_without_an_array_form_is_checked_row_by_row():
             core_roles.criteria_arrays(cols, np.ones(3, bool))
         names, holds = core_roles.criteria_arrays(cols, np.ones(3, bool), row_at=lambda idx: rows[idx[0]])
         assert [list(np.array(names)[h]) for h in holds] == [list(core_roles.criteria(r)) for r in rows]
+
+
+# ------------------------------------------------------------------------------------------------ the split
+
+@pytest.mark.parametrize("name,workers", [("ref:rope", 2), ("gpt2", 1), ("bert", 2), ("qwen2-window", 1)])
+def test_split_bootstrap_solved_together_equals_one_resample_at_a_time(subjects, name, workers, monkeypatch):
+    import split_reference
+    from attnpos import split as split_mod
+
+    if name == "qwen2-window":                              # one full and one sliding-window layer: two mask patterns
+        s = _tiny("qwen2", layer_types=["full_attention", "sliding_attention"], use_sliding_window=True,
+                  sliding_window=6)
+        assert len(set(record(s, TEXTS[:1], [SplitStats()]).results["split"]["gram_key"][0])) == 2
+    else:
+        s = subjects[name]
+    monkeypatch.setattr(split_mod, "_workers", lambda: workers)
+    rec = record(s, TEXTS, [SplitStats()])
+    new = Split(n_boot=30, seed=4).fit(rec)
+    ref = split_reference.Split(n_boot=30, seed=4).fit(rec)
+    for k in ("shares", "profile", "slope", "shares_lo", "shares_hi", "profile_lo", "profile_hi", "slope_lo",
+              "slope_hi", "boot_weights", "boot_shares", "boot_slope"):
+        a, b = getattr(new, k), getattr(ref, k)
+        assert a.shape == b.shape, k
+        np.testing.assert_array_equal(np.isnan(a), np.isnan(b), err_msg=k)
+        np.testing.assert_allclose(np.nan_to_num(a), np.nan_to_num(b), rtol=1e-7, atol=1e-8, err_msg=k)
+    assert new.n_texts == ref.n_texts and new.n_boot == ref.n_boot

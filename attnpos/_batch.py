@@ -91,7 +91,9 @@ def run(subject, sequences: Sequence[Sequence[int]], on_layer: Callable, *, posi
                 on_layer(site, state["index"], w, attention_mask)
         return out, None
 
-    model = subject.model
+    # the stack without its head: the attention layers are the same modules, and no pass here reads the logits
+    # (a vocabulary-sized product per token — a fifth of a forward pass of a small model with a large vocabulary)
+    model = getattr(subject.model, "base_model", None) or subject.model
     with attention_function(subject, attend), torch.no_grad():
         for idx in batches([len(s) for s in sequences], subject.n_heads):
             state["index"], state["seen"] = idx, set()

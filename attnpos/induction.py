@@ -4,7 +4,9 @@ On a sequence ``x_1 … x_n x_1 … x_n`` an induction head, at the second copy 
 token that followed its first copy, ``x_{t+1}``. The score of a head is the mean weight on that key over the
 second copy's queries, averaged over :data:`attnpos.core.settings.INDUCTION_SEQUENCES` random sequences (fixed
 seed) of ordinary tokens (:func:`ordinary_pool`: printable, not special), with the standard error of that mean
-over the sequences. Random tokens carry no meaning, so only copying explains a high score.
+over the sequences. Random tokens carry no meaning, so only copying explains a high score. The sequences have one
+length and run as one batch through the model's own eager attention (:mod:`attnpos._batch`; one recording per
+sequence where that does not apply).
 
 Example::
 

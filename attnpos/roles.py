@@ -9,7 +9,8 @@ resample — the weight statistics, shares and slope recomputed from the resampl
 resampled random sequences, the shift test held as measured — and ``tag_support`` says in what share of resamples
 each criterion holds. The primary role is the most specific role that holds in at least ROLE_SUPPORT of them
 (``role_support`` is that share); when none does, the head keeps its point-estimate role and ``role_between`` names
-the two roles it gets most often across resamples.
+the two roles it gets most often across resamples. The criteria are checked for all heads and resamples at once
+(:func:`attnpos.core.roles.criteria_arrays`, each role's ``holds``), with the same outcome as row by row.
 
 Roles describe where weight goes, which is evidence, not explanation; the shift test (an intervention) is shown
 beside each role.

@@ -23,6 +23,13 @@ SHIFT_RELATIVE of uniform over the allowed keys (in mean total variation) — th
 several shifts is ``absolute`` if any says so, ``relative`` if all do, ``mixed`` otherwise. Thresholds live in
 :mod:`attnpos.core.thresholds`.
 
+**Passes.** The unshifted weights can come from a recording the caller makes anyway (the scan's own): add
+:meth:`ShiftTest.base_reducer` to it and pass its result as ``run(..., base=...)``. In a causal layer a text's
+first rows see only its first keys, so the first rows and keys of the whole text's weights are the weights of the
+shortened text; with a non-causal layer the test runs its own unshifted pass. Each shifted pass runs the texts of
+one length as one batch through the model's own eager attention (:mod:`attnpos._batch`), or one recording per text
+where that does not apply.
+
 Example::
 
     >>> import attnpos

@@ -56,18 +56,26 @@ def _resampled_columns(weights: dict, fit, induction, seed: int = 1) -> dict | N
     per_seq = getattr(induction, "per_sequence", None) or {}
     rng = np.random.default_rng(seed)
     keys = weights["keys"]
+    per_text = {k: v for k, v in weights["per_text"].items()}
+    per_text["slot_w"] = per_text["slot_w"].astype(np.float64)          # once, not once per resample
+    W = np.asarray(fit.boot_weights, dtype=np.float64)
+    # resamples in chunks: the slot means of a chunk are (chunk, sites, heads, slots)
+    step = max(1, (64 * 2 ** 20) // max(1, per_text["slot_w"][0].size * 8 * 3))
     cols: dict[str, list] = {}
-    for w in fit.boot_weights:
-        ws = weight_summary(weights["per_text"], w)
+    for b0 in range(0, len(W), step):
+        ws = weight_summary(per_text, W[b0:b0 + step])
         for m in ("previous", "next", "first", "self"):
             cols.setdefault(f"mass_{m}", []).append(ws["mass"][m])
         for c in ("entropy_ratio", "anchor_slot", "anchor_weight"):
             cols.setdefault(c, []).append(ws[c])
-        if per_seq:
-            R = len(next(iter(per_seq.values())))
+    out = {c: np.concatenate(v).astype(np.float64) for c, v in cols.items()}
+    if per_seq:
+        R = len(next(iter(per_seq.values())))
+        ind = []
+        for _ in range(len(W)):                       # one draw per resample, as the support always drew them
             pick = rng.integers(0, R, R)
-            cols.setdefault("induction", []).append(np.stack([per_seq[k][pick].mean(0) for k in keys]))
-    out = {c: np.stack(v).astype(np.float64) for c, v in cols.items()}
+            ind.append(np.stack([per_seq[k][pick].mean(0) for k in keys]))
+        out["induction"] = np.stack(ind).astype(np.float64)
     for k, part in enumerate(columns.PART_NAMES):
         out[f"share_{part}"] = np.asarray(fit.boot_shares[..., k], dtype=np.float64)
     out["slope"] = np.asarray(fit.boot_slope, dtype=np.float64)

@@ -353,3 +353,18 @@ def test_split_bootstrap_solved_together_equals_one_resample_at_a_time(subjects,
         np.testing.assert_array_equal(np.isnan(a), np.isnan(b), err_msg=k)
         np.testing.assert_allclose(np.nan_to_num(a), np.nan_to_num(b), rtol=1e-7, atol=1e-8, err_msg=k)
     assert new.n_texts == ref.n_texts and new.n_boot == ref.n_boot
+
+
+def test_weight_summary_of_stacked_resamples_equals_one_at_a_time(subjects):
+    s = subjects["ref:rope"]
+    rec = record(s, TEXTS, [WeightStats()])
+    per_text = rec.results["weights"]["per_text"]
+    W = np.random.default_rng(0).integers(0, 3, (7, len(TEXTS))).astype(float)
+    W[2] = 0                                             # nothing drawn: NaN statistics
+    stacked = weight_summary(per_text, W)
+    for b, w in enumerate(W):
+        one = weight_summary(per_text, w)
+        for k in ("entropy_ratio", "slot_mean", "slot_n", "anchor_slot", "anchor_weight"):
+            np.testing.assert_allclose(stacked[k][b], one[k], rtol=1e-12, atol=0, equal_nan=True, err_msg=k)
+        for m in one["mass"]:
+            np.testing.assert_allclose(stacked["mass"][m][b], one["mass"][m], rtol=1e-12, equal_nan=True)

@@ -164,6 +164,8 @@ def head_table(subject, weights: dict, fit=None, shift=None, induction=None) -> 
     causal_of = {(s.stack, s.layer): s.causal for s in subject.sites}
     parts = columns.PART_NAMES
     resampled = _resampled_columns(weights, fit, induction)
+    if shift is not None and shift.measured:
+        change, verdict = shift.change, shift.verdict
     out = []
     for base in weight_rows(subject, weights):
         r: dict = {c: np.nan for c in columns.names()}
@@ -183,7 +185,10 @@ def head_table(subject, weights: dict, fit=None, shift=None, induction=None) -> 
             r[c] = None
         if shift is not None and shift.measured:
             r["shift_kind"], r["shift_offset"] = shift.shift_kind, shift.offset
-            r["shift_change"], r["shift_verdict"] = shift.change_of(key, h), shift.verdict_of(key, h)
+            # what ShiftResult.change_of / verdict_of give without a kind, from the combined tables formed once
+            # (those properties combine every head's verdicts on each call)
+            r["shift_change"] = float(change[key][h]) if change is not None and key in change else np.nan
+            r["shift_verdict"] = verdict[key][h] if key in verdict else None
             for kind, tag in (("position-ids", "ids"), ("prefix", "prefix")):
                 if kind in shift.kinds:
                     r[f"shift_change_{tag}"] = shift.change_of(key, h, kind)

@@ -368,3 +368,16 @@ def test_weight_summary_of_stacked_resamples_equals_one_at_a_time(subjects):
             np.testing.assert_allclose(stacked[k][b], one[k], rtol=1e-12, atol=0, equal_nan=True, err_msg=k)
         for m in one["mass"]:
             np.testing.assert_allclose(stacked["mass"][m][b], one["mass"][m], rtol=1e-12, equal_nan=True)
+
+
+def test_head_table_shift_columns_equal_the_result_lookups(subjects):
+    s = subjects["ref:learned-absolute"]
+    units = prepare(s, as_raw(TEXTS[:3]))
+    rec = record(s, units=units, reducers=[WeightStats()])
+    sh = shift.ShiftTest(kinds=("position-ids", "prefix")).run(s, units)
+    t = roles.head_table(s, rec.results["weights"], shift=sh)
+    for _, r in t.iterrows():
+        key, h = (r["stack"], r["layer"]), int(r["head"])
+        assert r["shift_change"] == sh.change_of(key, h) and r["shift_verdict"] == sh.verdict_of(key, h)
+        assert r["shift_change_ids"] == sh.change_of(key, h, "position-ids")
+        assert r["shift_verdict_prefix"] == sh.verdict_of(key, h, "prefix")

@@ -4,7 +4,9 @@ On a sequence ``x_1 … x_n x_1 … x_n`` an induction head, at the second copy 
 token that followed its first copy, ``x_{t+1}``. The score of a head is the mean weight on that key over the
 second copy's queries, averaged over :data:`attnpos.core.settings.INDUCTION_SEQUENCES` random sequences (fixed
 seed) of ordinary tokens (:func:`ordinary_pool`: printable, not special), with the standard error of that mean
-over the sequences. Random tokens carry no meaning, so only copying explains a high score.
+over the sequences. Random tokens carry no meaning, so only copying explains a high score. The sequences have one
+length and run as one batch through the model's own eager attention (:mod:`attnpos._batch`; one recording per
+sequence where that does not apply).
 
 Example::
 
@@ -23,6 +25,7 @@ import re
 import numpy as np
 import torch
 
+from . import _batch
 from .capture import LayerCapture, Reducer, record
 from .core import settings
 from .results.induction import InductionResult
@@ -56,6 +59,37 @@ class _Induction(Reducer):
     def result(self):
         """Per site: the score of each sequence (R, heads)."""
         return {k: self.sum[k] / np.maximum(self.count[k], 1)[:, None] for k in self.keys}
+
+
+def _recorded(subject, units, n: int, start: int) -> dict:
+    """Per site, the score of each sequence (R, heads), from a recording (one sequence per forward pass)."""
+    return record(subject, units=units, reducers=[_Induction(n, start)], progress=False).results["induction"]
+
+
+def _batched(subject, units, n: int, start: int) -> dict | None:
+    """The same as :func:`_recorded` from batched forward passes of the model's own eager attention (the
+    sequences have one length), or None where that pass does not apply (:mod:`attnpos._batch`)."""
+    keys = [(s.stack, s.layer) for s in subject.sites]
+    R, H = len(units), subject.n_heads
+    total = {k: np.zeros((R, H)) for k in keys}
+    count = {k: np.zeros(R) for k in keys}
+
+    def on_layer(site, index, w, mask):
+        T = w.shape[-1]
+        q = torch.arange(start + n + 1, min(start + 2 * n, T))   # second copy, from its second token
+        target = q - n + 1                                       # the key after the first copy
+        allowed = _batch.allowed_pairs(mask, T, T)
+        if allowed is not None:
+            ok = allowed[q, target]
+            q, target = q[ok], target[ok]
+        vals = w[:, :, q, target].sum(-1).double().numpy()      # (batch, heads)
+        k = (site.stack, site.layer)
+        total[k][index] += vals
+        count[k][index] += len(q)
+
+    if not _batch.run(subject, [u.ids for u in units], on_layer):
+        return None
+    return {k: total[k] / np.maximum(count[k], 1)[:, None] for k in keys}
 
 
 def ordinary_pool(tokenizer, need: int = 1) -> list[int]:
@@ -94,8 +128,9 @@ def induction_scores(subject, *, length: int = 48, repeats: int | None = None, s
             special[-len(suffix):] = True
         units.append(TextUnit(name=f"random-repeat-{r}", source="<induction test>", ids=ids,
                               tokens=display_tokens(subject.tokenizer, ids), special=special))
-    red = _Induction(length, len(prefix))
-    per = record(subject, units=units, reducers=[red], progress=False).results["induction"]
+    per = _batched(subject, units, length, len(prefix))
+    if per is None:
+        per = _recorded(subject, units, length, len(prefix))
     scores = {k: v.mean(0) for k, v in per.items()}
     stderr = {k: (v.std(0, ddof=1) / np.sqrt(len(v)) if len(v) > 1 else np.full(v.shape[1], np.nan))
               for k, v in per.items()}

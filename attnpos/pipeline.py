@@ -69,13 +69,17 @@ def scan(model: Any, texts=None, *, scheme=None, max_tokens: int | None = None, 
                            "or BOS); attention statistics need longer texts. Pass at least one text of a few words.")
     kept = {i for i in range(min(keep_maps, len(units))) if len(units[i]) <= max_map_tokens}
     _progress.note(f"scan: recording {len(units)} text windows of {subject.name}", progress)
-    rec = record(subject, units=units, reducers=[WeightStats(), SplitStats()], keep=lambda k: k[0] in kept,
-                 progress=progress)
+    tester = ShiftTest() if shift else None
+    # the shift test's unshifted pass is part of this recording where it can be (causal layers)
+    shift_base = tester.base_reducer(subject, units) if tester is not None else None
+    reducers = [WeightStats(), SplitStats()] + ([shift_base] if shift_base is not None else [])
+    rec = record(subject, units=units, reducers=reducers, keep=lambda k: k[0] in kept, progress=progress)
     _progress.note(f"scan: fitting the score split ({n_boot} bootstrap resamples)", progress)
     fit = Split(n_boot=n_boot).fit(rec)
     if shift:
         _progress.note("scan: shift test", progress)
-    sh = ShiftTest().run(subject, units) if shift else None
+    sh = tester.run(subject, units, base=rec.results.pop(shift_base.name, None) if shift_base else None) \
+        if tester is not None else None
     if induction:
         _progress.note("scan: induction test", progress)
     ind = induction_scores(subject) if induction else None

@@ -372,20 +372,21 @@ class WeightStats(Reducer):
 def weight_summary(per_text: dict, w: np.ndarray) -> dict:
     """The weight statistics of :class:`WeightStats` from its per-text sums, with text weights ``w`` (ones: the
     plain means; a bootstrap resample's counts: that resample's). Returns ``mass`` (by name, (S, H)),
-    ``entropy_ratio``, ``slot_mean``, ``slot_n``, ``anchor_slot`` and ``anchor_weight``."""
+    ``entropy_ratio``, ``slot_mean``, ``slot_n``, ``anchor_slot`` and ``anchor_weight``. A stack of weightings
+    ``w`` (B, n_texts) gives each statistic with a leading axis of B (one product for all of them)."""
     div = lambda a, n: a / np.where(n > 0, n, np.nan)  # noqa: E731
-    tw = lambda a: np.tensordot(w, a, axes=(0, 0))      # noqa: E731
-    mass = {k: div(tw(per_text["mass"][k]), tw(per_text["mass_n"][k])[:, None]) for k in per_text["mass"]}
+    tw = lambda a: np.tensordot(w, a, axes=(-1, 0))     # noqa: E731
+    mass = {k: div(tw(per_text["mass"][k]), tw(per_text["mass_n"][k])[..., None]) for k in per_text["mass"]}
     slot_n = tw(per_text["slot_n"].astype(np.float64))
-    slot_mean = div(tw(per_text["slot_w"].astype(np.float64)), slot_n[:, None, :])
+    slot_mean = div(tw(per_text["slot_w"].astype(np.float64)), slot_n[..., None, :])
     # anchor: the slot with the highest mean weight among slots seen by at least 8 queries
     enough = slot_n >= 8
-    masked = np.where(enough[:, None, :], slot_mean, -np.inf)
+    masked = np.where(enough[..., None, :], slot_mean, -np.inf)
     anchor_slot = masked.argmax(-1).astype(float)
     anchor_weight = np.take_along_axis(masked, anchor_slot.astype(int)[..., None], -1)[..., 0]
     anchor_slot[~np.isfinite(anchor_weight)] = np.nan
     anchor_weight[~np.isfinite(anchor_weight)] = np.nan
-    return {"mass": mass, "entropy_ratio": div(tw(per_text["entropy"]), tw(per_text["entropy_n"])[:, None]),
+    return {"mass": mass, "entropy_ratio": div(tw(per_text["entropy"]), tw(per_text["entropy_n"])[..., None]),
             "slot_mean": slot_mean, "slot_n": slot_n, "anchor_slot": anchor_slot, "anchor_weight": anchor_weight}
 
 

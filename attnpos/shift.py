@@ -23,6 +23,13 @@ SHIFT_RELATIVE of uniform over the allowed keys (in mean total variation) — th
 several shifts is ``absolute`` if any says so, ``relative`` if all do, ``mixed`` otherwise. Thresholds live in
 :mod:`attnpos.core.thresholds`.
 
+**Passes.** The unshifted weights can come from a recording the caller makes anyway (the scan's own): add
+:meth:`ShiftTest.base_reducer` to it and pass its result as ``run(..., base=...)``. In a causal layer a text's
+first rows see only its first keys, so the first rows and keys of the whole text's weights are the weights of the
+shortened text; with a non-causal layer the test runs its own unshifted pass. Each shifted pass runs the texts of
+one length as one batch through the model's own eager attention (:mod:`attnpos._batch`), or one recording per text
+where that does not apply.
+
 Example::
 
     >>> import attnpos
@@ -45,6 +52,7 @@ from typing import Sequence
 import numpy as np
 import torch
 
+from . import _batch
 from .core import schemes as core_schemes
 from .core import thresholds as th
 from .capture import LayerCapture, Reducer, record
@@ -74,23 +82,41 @@ PREFIX_NOTE = ("The neutral prefix also changes the context the text is read in,
 
 class _Keep(Reducer):
     """The unshifted weights (float16), and per head the mean total-variation distance from uniform over the allowed
-    keys (ordinary queries)."""
+    keys (ordinary queries).
+
+    ``limits`` (one per text): keep only the first ``limits[t]`` queries and keys of text t, and nothing of texts
+    past the list — the unshifted pass of the shift test taken from a recording of the whole texts (the scan's own).
+    In a causal layer those rows see only those keys, so they are the weights of the shortened text; a layer where
+    they see a later key makes the result ``shared: False`` (the test then runs its own unshifted pass)."""
 
     name = "shift-base"
+
+    def __init__(self, limits: Sequence[int] | None = None):
+        self.limits = None if limits is None else list(limits)
 
     def begin(self, subject, units):
         self.maps = {}
         self.keys = [(s.stack, s.layer) for s in subject.sites]
         self.spread = {k: np.zeros(subject.n_heads) for k in self.keys}
         self.n = {k: 0 for k in self.keys}
+        self.shared = True
 
     def update(self, cap: LayerCapture):
+        w, allowed = cap.weights, cap.allowed
+        if self.limits is not None:
+            if cap.text >= len(self.limits) or not self.shared:
+                return
+            L = self.limits[cap.text]
+            if cap.offset or bool(allowed[:L, L:].any()):
+                self.shared = False
+                self.maps = {}
+                return
+            w, allowed = w[:, :L, :L], allowed[:L, :L]
         key = (cap.text, cap.site.stack, cap.site.layer)
-        w = cap.weights
         prev = self.maps.get(key)
         self.maps[key] = w.to(torch.float16) if prev is None else torch.cat([prev, w.to(torch.float16)], 0)
         T = w.shape[-1]
-        A = cap.allowed.to(w.dtype)
+        A = allowed.to(w.dtype)
         uni = A / A.sum(-1, keepdim=True).clamp_min(1.0)
         ordinary = torch.from_numpy(~np.asarray(cap.unit.special[:T], dtype=bool))
         tv = 0.5 * ((w - uni).abs() * A).sum(-1)            # (n, T)
@@ -101,7 +127,7 @@ class _Keep(Reducer):
 
     def result(self):
         spread = {k: self.spread[k] / max(self.n[k], 1) for k in self.keys}
-        return {"maps": self.maps, "spread": spread}
+        return {"maps": self.maps, "spread": spread, "shared": self.shared, "limits": self.limits}
 
 
 class _Compare(Reducer):
@@ -133,6 +159,36 @@ class _Compare(Reducer):
 
     def result(self):
         return {k: self.sum[k] / max(self.n[k], 1) for k in self.keys}
+
+
+def _compare_batched(subject, short: Sequence[TextUnit], base: dict, *, prefix: Sequence[int] = (),
+                     position_offset: int = 0) -> dict | None:
+    """What :class:`_Compare` gives from a recording of the shifted texts, from batched forward passes of the
+    model's own eager attention (texts of one length share a pass); None where that pass does not apply
+    (:mod:`attnpos._batch`)."""
+    keys = [(s.stack, s.layer) for s in subject.sites]
+    total = {k: np.zeros(subject.n_heads) for k in keys}
+    count = {k: 0 for k in keys}
+    o = len(prefix)
+    ordinary = [torch.from_numpy(~np.asarray(u.special, dtype=bool)) for u in short]
+
+    def on_layer(site, index, w, mask):
+        ws = w[:, :, o:, o:]
+        if o:
+            ws = ws / ws.sum(-1, keepdim=True).clamp_min(1e-30)
+        k = (site.stack, site.layer)
+        for b, t in enumerate(index):
+            ref = base[(t, site.stack, site.layer)].float()
+            T = ws.shape[-1]
+            ref = ref[..., :T, :T]
+            tv = 0.5 * (ws[b] - ref).abs().sum(-1)                 # (heads, T)
+            total[k] += tv[:, ordinary[t][:T]].sum(-1).double().numpy()
+            count[k] += int(ordinary[t][:T].sum())
+
+    if not _batch.run(subject, [list(prefix) + list(u.ids) for u in short], on_layer,
+                      position_offset=position_offset):
+        return None
+    return {k: total[k] / max(count[k], 1) for k in keys}
 
 
 def _neutral_prefix(tokenizer, k: int) -> list[int]:
@@ -173,27 +229,51 @@ class ShiftTest:
             kinds.remove("position-ids")
         return kinds or ["prefix"]
 
-    def run(self, subject, units: Sequence[TextUnit]) -> ShiftResult:
-        kinds = self.kinds_for(subject)
-        k = self.offset
+    def _room(self, subject) -> int:
         room = self.max_tokens
         if subject.context_limit:
-            room = min(room, subject.context_limit - k)
+            room = min(room, subject.context_limit - self.offset)
+        return room
+
+    def _short(self, units: Sequence[TextUnit], room: int) -> list[TextUnit]:
+        return [TextUnit(name=u.name, source=u.source, ids=u.ids[:room], tokens=u.tokens[:room],
+                         special=u.special[:room], window=u.window) for u in list(units)[: self.max_texts]]
+
+    def base_reducer(self, subject, units: Sequence[TextUnit]) -> Reducer | None:
+        """A reducer to add to an unshifted recording of ``units`` (the scan's own) that keeps what this test
+        compares with, so that :meth:`run` given its result (``base=``) needs no unshifted pass of its own; None
+        where no layer could share it (a non-causal layer: its first rows read later tokens)."""
+        room = self._room(subject)
+        if room < 4 or not all(s.causal for s in subject.sites):
+            return None
+        return _Keep(limits=[len(u) for u in self._short(units, room)])
+
+    def run(self, subject, units: Sequence[TextUnit], base: dict | None = None) -> ShiftResult:
+        """The test on the first texts of ``units``. ``base``: what the reducer of :meth:`base_reducer` kept in a
+        recording of the same ``units`` (used when it could share the unshifted pass, else ignored)."""
+        kinds = self.kinds_for(subject)
+        k = self.offset
+        room = self._room(subject)
         if room < 4:
             return ShiftResult(kinds=kinds, offset=k, changes=None,
                                note=f"the context limit leaves no room to shift by {k}")
-        short = [TextUnit(name=u.name, source=u.source, ids=u.ids[:room], tokens=u.tokens[:room],
-                          special=u.special[:room], window=u.window) for u in list(units)[: self.max_texts]]
-        kept = record(subject, units=short, reducers=[_Keep()], progress=False).results["shift-base"]
+        short = self._short(units, room)
+        if base is not None and base.get("shared") and base.get("limits") == [len(u) for u in short]:
+            kept = base
+        else:
+            kept = record(subject, units=short, reducers=[_Keep()], progress=False).results["shift-base"]
         changes = {}
         for kind in kinds:
-            cmp_ = _Compare(kept["maps"], subject)
             if kind == "position-ids":
-                record(subject, units=short, reducers=[cmp_], position_offset=k, progress=False)
+                how = {"position_offset": k}
             else:
-                record(subject, units=short, reducers=[cmp_], prefix=_neutral_prefix(subject.tokenizer, k),
-                       progress=False)
-            changes[kind] = cmp_.result()
+                how = {"prefix": _neutral_prefix(subject.tokenizer, k)}
+            got = _compare_batched(subject, short, kept["maps"], **how)
+            if got is None:
+                cmp_ = _Compare(kept["maps"], subject)
+                record(subject, units=short, reducers=[cmp_], progress=False, **how)
+                got = cmp_.result()
+            changes[kind] = got
         spread = kept["spread"]
         verdicts = {kind: {key: [verdict(c, sp, kind) for c, sp in zip(v, spread[key])] for key, v in ch.items()}
                     for kind, ch in changes.items()}

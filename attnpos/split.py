@@ -94,14 +94,34 @@ def _nan_percentiles(arr: np.ndarray, qs) -> list[np.ndarray]:
     return out
 
 
-def _pinv_solve(G: np.ndarray, B: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
-    """Minimum-norm solution of G x = B for symmetric PSD G (eigen-decomposition with a relative cutoff)."""
-    if G.shape[0] == 0:
-        return np.zeros((0,) + B.shape[1:])
+def _pinv_solve(G: np.ndarray, B: np.ndarray, rtol: float = 1e-9, solution: bool = True):
+    """Minimum-norm solutions x of G x = B for a stack of symmetric PSD G (U, k, k) and B (U, k, m) (eigen-
+    decomposition with a relative cutoff per matrix), and the explained sums Bᵀx per column (U, m). Without
+    ``solution`` only the explained sums (x is None): Bᵀ G⁺ B = Σ_k (v_kᵀ B)² / λ_k needs no second product."""
+    if G.shape[-1] == 0:
+        return (np.zeros(B.shape) if solution else None), np.zeros((B.shape[0], B.shape[2]))
     w, V = np.linalg.eigh(G)
-    cut = rtol * max(float(w.max()), 1e-300)
+    cut = rtol * np.maximum(w.max(-1), 1e-300)[:, None]
     inv = np.where(w > cut, 1.0 / np.where(w > cut, w, 1.0), 0.0)
-    return V @ (inv[:, None] * (V.T @ B))
+    y = V.transpose(0, 2, 1) @ B                                # (U, k, m)
+    if not solution:
+        return None, np.einsum("uk,ukm->um", inv, y * y)
+    x = V @ (inv[..., None] * y)
+    return x, np.einsum("ukm,ukm->um", B, x)
+
+
+# resamples solved together: small enough that one chunk's arrays stay in cache, several chunks for the threads
+_CHUNK = 8
+
+
+def _workers() -> int:
+    """Threads for the bootstrap's solves: LAPACK and BLAS release the GIL, and each runs on one BLAS thread
+    (:func:`attnpos.reducers.blas_one_thread`), so two threads use two cores without spin-waiting BLAS threads."""
+    import os
+
+    import torch
+
+    return max(1, min(2, os.cpu_count() or 1, torch.get_num_threads()))
 
 
 class Split:
@@ -110,6 +130,9 @@ class Split:
     Args:
         n_boot: bootstrap resamples over texts for the intervals (0 to skip).
         seed: seed of the bootstrap.
+
+    Axis 0 of the recording's arrays (``b``, ``ssw``, ``pair``, ``gram_key``) is what the bootstrap resamples
+    (texts); nothing else is assumed of it.
     """
 
     def __init__(self, n_boot: int = 100, seed: int = 0):
@@ -119,100 +142,131 @@ class Split:
     # ------------------------------------------------------------------------------------------- core
     @staticmethod
     def _transform(design: Design, G: np.ndarray) -> np.ndarray:
-        """Tm such that slot and key-token features become orthogonal to the linear δ term: X' = X Tm."""
-        p = design.p
-        Tm = np.eye(p)
+        """Tm (U, p, p) such that slot and key-token features become orthogonal to the linear δ term: X' = X Tm,
+        for a stack of Gram matrices G (U, p, p)."""
+        U, p = G.shape[0], design.p
+        Tm = np.broadcast_to(np.eye(p), (U, p, p)).copy()
         L = design.i_lin
-        gll = G[L, L]
-        if gll > 0:
-            keyside = np.concatenate([design.i_slot, design.i_tok])
-            Tm[L, keyside] = -G[L, keyside] / gll
+        gll = G[:, L, L]
+        keyside = np.concatenate([design.i_slot, design.i_tok])
+        pos = gll > 0
+        Tm[np.ix_(np.flatnonzero(pos), [L], keyside)] = \
+            (-G[pos][:, L, keyside] / gll[pos][:, None])[:, None, :]
         return Tm
 
     @staticmethod
-    def _solve(design: Design, G: np.ndarray, B: np.ndarray, ssw: np.ndarray, dist_counts: np.ndarray):
-        """One fit: G (p, p), B (p, m) feature sums for m heads, ssw (m,). Returns shares (m, 4: the three named
-        parts and what they leave), profile (m, n_dist), slope (m,) and the full fit's coefficients (p, m) on the
-        original features."""
+    def _solve(design: Design, G: np.ndarray, B: np.ndarray, ssw: np.ndarray, dist_counts: np.ndarray,
+               reps: np.ndarray | None = None):
+        """Fits of a stack of U weightings at once: G (U, p, p), B (U, p, m) feature sums for m heads, ssw (U, m),
+        dist_counts (U, n_dist). Returns shares (U, m, 4: the three named parts and what they leave), profile
+        (U, m, n_dist), slope (U, m) and the full fit's coefficients (U, p, m) on the original features."""
+        U, m = B.shape[0], B.shape[2]
         Tm = Split._transform(design, G)
-        Gp = Tm.T @ G @ Tm
-        Bp = Tm.T @ B
+        TmT = Tm.transpose(0, 2, 1)
+        Gp = TmT @ G @ Tm
+        Bp = TmT @ B
         groups = [np.concatenate([design.i_dist, [design.i_lin]]), design.i_slot, design.i_tok]
         r2 = {}
         safe = np.where(ssw > 0, ssw, np.nan)
         for S in _SUBSETS:
             idx = np.concatenate([groups[g] for g in sorted(S)])
-            x = _pinv_solve(Gp[np.ix_(idx, idx)], Bp[idx])
-            r2[S] = np.clip(np.einsum("pm,pm->m", Bp[idx], x) / safe, 0.0, 1.0)
+            x, explained = _pinv_solve(Gp[:, idx][:, :, idx], Bp.take(idx, axis=1), solution=len(S) == 3)
+            r2[S] = np.clip(explained / safe, 0.0, 1.0)
             if len(S) == 3:
                 full = x
                 full_idx = idx
-        r2[frozenset()] = np.zeros(B.shape[1])
-        shares = np.zeros((B.shape[1], 4))
+        r2[frozenset()] = np.zeros((U, m))
+        shares = np.zeros((U, m, 4))
         for g in range(3):
             others = [o for o in range(3) if o != g]
-            acc = np.zeros(B.shape[1])
+            acc = np.zeros((U, m))
             for r in range(3):
                 for c in combinations(others, r):
                     S = frozenset(c)
                     wt = {0: 1 / 3, 1: 1 / 6, 2: 1 / 3}[r]
                     acc += wt * np.maximum(r2[S | {g}] - r2[S], 0.0)
-            shares[:, g] = acc
+            shares[..., g] = acc
         total = np.clip(r2[frozenset(range(3))], 0.0, 1.0)
-        sums = shares[:, :3].sum(1)
+        sums = shares[..., :3].sum(-1)
         scale = np.where(sums > 0, total / np.where(sums > 0, sums, 1.0), 0.0)
-        shares[:, :3] *= scale[:, None]
-        shares[:, 3] = 1.0 - shares[:, :3].sum(1)
-        shares[~np.isfinite(ssw) | (ssw <= 0)] = np.nan
+        shares[..., :3] *= scale[..., None]
+        shares[..., 3] = 1.0 - shares[..., :3].sum(-1)
+        bad = ~np.isfinite(ssw) | (ssw <= 0)
+        shares[bad] = np.nan
         # profile: distance-bucket coefficients + linear term × representative δ, anchored at δ = 0
-        coef = np.zeros((design.p, B.shape[1]))
-        coef[full_idx] = full
-        reps = design.bucket_delta()
-        prof = coef[design.i_dist].T + coef[design.i_lin][:, None] * reps[None, :]
-        prof = prof - prof[:, [0]]
-        seen = dist_counts > 0
-        prof[:, ~seen] = np.nan
-        # slope over δ ≥ 0, weighted by pair counts; positive when scores fall with distance
+        coef = np.zeros((U, design.p, m))
+        coef[:, full_idx] = full
+        if reps is None:
+            reps = design.bucket_delta()
+        prof = coef[:, design.i_dist].transpose(0, 2, 1) + coef[:, design.i_lin][:, :, None] * reps[None, None, :]
+        prof = prof - prof[..., [0]]
+        slope = np.full((U, m), np.nan)
         causal = np.arange(design.n_dist) < design.n_pos
-        sel = causal & seen
-        wts = dist_counts[sel]
-        xs = reps[sel]
-        if sel.sum() >= 2 and wts.sum() > 0:
-            xm = np.average(xs, weights=wts)
-            ys = prof[:, sel]
-            ym = (ys * wts).sum(1) / wts.sum()
-            cov = ((xs - xm) * (ys - ym[:, None]) * wts).sum(1)
-            var = ((xs - xm) ** 2 * wts).sum()
-            slope = -cov / var if var > 0 else np.full(B.shape[1], np.nan)
-        else:
-            slope = np.full(B.shape[1], np.nan)
-        slope[~np.isfinite(ssw) | (ssw <= 0)] = np.nan
+        for u in range(U):
+            seen = dist_counts[u] > 0
+            prof[u][:, ~seen] = np.nan
+            # slope over δ ≥ 0, weighted by pair counts; positive when scores fall with distance
+            sel = causal & seen
+            wts = dist_counts[u][sel]
+            xs = reps[sel]
+            if sel.sum() >= 2 and wts.sum() > 0:
+                xm = np.average(xs, weights=wts)
+                ys = prof[u][:, sel]
+                ym = (ys * wts).sum(1) / wts.sum()
+                cov = ((xs - xm) * (ys - ym[:, None]) * wts).sum(1)
+                var = ((xs - xm) ** 2 * wts).sum()
+                if var > 0:
+                    slope[u] = -cov / var
+        slope[bad] = np.nan
         return shares, prof, slope, Tm @ coef
 
     def _fit_weights(self, res: dict, w: np.ndarray):
-        """Fit every site with text weights w (n_texts,). Sites that share a mask pattern share one solve.
-        Returns shares of the three named parts and what they leave (S, H, 4), profile, slope, and the full fit's
-        coefficients (S, p, H)."""
+        """Fit every site with unit weights w (U, n_units): one fit per row of w. Sites that share a mask
+        pattern share one solve. Returns shares of the three named parts and what they leave (U, S, H, 4),
+        profile (U, S, H, n_dist), slope (U, S, H), and the full fit's coefficients (U, S, p, H)."""
         design: Design = res["design"]
         b, ssw, gk = res["b"], res["ssw"], res["gram_key"]
-        grams, counts = res["grams"], res["dist_counts"]
+        grams, counts = np.stack(res["grams"]), np.stack(res["dist_counts"])
+        w = np.atleast_2d(np.asarray(w, dtype=np.float64))
+        U = w.shape[0]
         S, H = b.shape[1], b.shape[2]
-        shares = np.zeros((S, H, 4))
-        prof = np.zeros((S, H, design.n_dist))
-        slope = np.zeros((S, H))
-        coef = np.zeros((S, design.p, H))
+        shares = np.zeros((U, S, H, 4))
+        prof = np.zeros((U, S, H, design.n_dist))
+        slope = np.zeros((U, S, H))
+        coef = np.zeros((U, S, design.p, H))
+        reps = design.bucket_delta()
         groups: dict = {}
         for si in range(S):
             groups.setdefault(tuple(gk[:, si]), []).append(si)
         for sig, sites in groups.items():
-            G = sum(w[t] * grams[sig[t]] for t in range(len(w)) if w[t])
-            dc = sum(w[t] * counts[sig[t]] for t in range(len(w)) if w[t])
-            B = np.concatenate([np.tensordot(w, b[:, si], axes=(0, 0)) for si in sites])   # (len*H, p)
-            ss = np.concatenate([w @ ssw[:, si] for si in sites])
-            sh, pr, sl, co = self._solve(design, G, B.T, ss, dc)
-            for k, si in enumerate(sites):
-                part = slice(k * H, (k + 1) * H)
-                shares[si], prof[si], slope[si], coef[si] = sh[part], pr[part], sl[part], co[:, part]
+            sig = np.asarray(sig)
+            G = np.tensordot(w, grams[sig], axes=(1, 0))                          # (U, p, p)
+            dc = np.tensordot(w, counts[sig], axes=(1, 0))                        # (U, n_dist)
+            m = len(sites) * H
+            bs, ws = b[:, sites], ssw[:, sites]
+
+            def chunk(u0, G=G, dc=dc, bs=bs, ws=ws, m=m):
+                wu = w[u0:u0 + _CHUNK]
+                Bm = np.tensordot(wu, bs, axes=(1, 0)).reshape(len(wu), m, design.p)   # (U, len·H, p)
+                ss = np.tensordot(wu, ws, axes=(1, 0)).reshape(len(wu), m)
+                return u0, self._solve(design, G[u0:u0 + _CHUNK], Bm.transpose(0, 2, 1), ss, dc[u0:u0 + _CHUNK],
+                                       reps)
+
+            starts = range(0, U, _CHUNK)
+            n_workers = min(_workers(), len(starts))
+            if n_workers > 1:
+                from concurrent.futures import ThreadPoolExecutor
+
+                with ThreadPoolExecutor(n_workers) as pool:
+                    done = list(pool.map(chunk, starts))
+            else:
+                done = [chunk(u0) for u0 in starts]
+            for u0, (sh, pr, sl, co) in done:
+                us = slice(u0, u0 + sh.shape[0])
+                for k, si in enumerate(sites):
+                    part = slice(k * H, (k + 1) * H)
+                    shares[us, si], prof[us, si], slope[us, si] = sh[:, part], pr[:, part], sl[:, part]
+                    coef[us, si] = co[:, :, part]
         return shares, prof, slope, coef
 
     @staticmethod
@@ -322,7 +376,7 @@ class Split:
 
     def _fit(self, res: dict) -> SplitResult:
         n = res["b"].shape[0]                   # resampling units: texts, or blocks of windows (pair_groups)
-        shares4, prof, slope, coef = self._fit_weights(res, np.ones(n))
+        shares4, prof, slope, coef = (x[0] for x in self._fit_weights(res, np.ones((1, n))))
         within = None
         if "pair_groups" in res:
             P, V, Pw, Vw = self._pair_products_blocks(res, coef)
@@ -335,26 +389,19 @@ class Split:
                    slope_lo=lo(slope), slope_hi=lo(slope))
         if self.n_boot > 0 and n >= 2:
             rng = np.random.default_rng(self.seed)
-            bs = {"shares": [], "profile": [], "slope": []}
-            weights = []
-            seen: dict[bytes, tuple] = {}        # a resample drawn again (likely with few texts) is not refitted
-            for _ in range(self.n_boot):
-                w = np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
-                weights.append(w)
-                key = w.tobytes()
-                if key not in seen:
-                    s4, p_, l_, _ = self._fit_weights(res, w)
-                    seen[key] = (self._with_pair(s4, P, V, w, within), p_, l_)
-                s_, p_, l_ = seen[key]
-                bs["shares"].append(s_)
-                bs["profile"].append(p_)
-                bs["slope"].append(l_)
-            for k, stack in bs.items():
-                arr = np.stack(stack)
+            weights = np.stack([np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
+                                for _ in range(self.n_boot)])
+            # a resample drawn again (likely with few units) is not refitted; all others are solved together
+            distinct, which = np.unique(weights, axis=0, return_inverse=True)
+            s4, p_, l_, _ = self._fit_weights(res, distinct)
+            sh = np.stack([self._with_pair(s4[u], P, V, distinct[u], within) for u in range(len(distinct))])
+            which = np.asarray(which).reshape(-1)
+            bs = {"shares": sh[which], "profile": p_[which], "slope": l_[which]}
+            for k, arr in bs.items():
                 out[f"{k}_lo"], out[f"{k}_hi"] = _nan_percentiles(arr, (5, 95))
-            out["boot_weights"] = np.stack(weights)
-            out["boot_shares"] = np.stack(bs["shares"])
-            out["boot_slope"] = np.stack(bs["slope"])
+            out["boot_weights"] = weights
+            out["boot_shares"] = bs["shares"]
+            out["boot_slope"] = bs["slope"]
         design: Design = res["design"]
         return SplitResult(keys=res["keys"], distance=design.bucket_delta(), shares=shares, profile=prof, slope=slope,
                         n_texts=int(res.get("n_windows", n)), n_boot=max(self.n_boot, 0) if n >= 2 else 0, **out)

@@ -26,6 +26,8 @@ import math
 from dataclasses import dataclass
 from typing import Any, Callable, ContextManager, Mapping
 
+import numpy as np
+
 from . import thresholds as th
 from ._registry import temporarily
 
@@ -56,6 +58,11 @@ class RoleSpec:
         code: one or two letters for dense grids and greyscale prints.
         strength: the head-table column that measures how strongly a head has the role (larger = stronger), or None.
         rank: precedence; when several criteria hold, the smallest rank is the primary role.
+        holds: optional, the same criterion for many rows at once: ``holds(cols, causal) -> bool array`` where
+            ``cols`` maps columns to arrays of one shape (numbers, or objects for text columns; a missing column
+            reads as NaN) and ``causal`` is a bool array of that shape. It must hold exactly where ``check`` gives
+            a sentence (the bootstrap's support checks every resample of every head with it); without it the
+            check runs row by row.
     """
 
     name: str
@@ -67,6 +74,7 @@ class RoleSpec:
     code: str
     strength: str | None
     rank: int
+    holds: Callable[[Mapping[str, Any], Any], Any] | None = None
 
 
 def _num(row: Mapping[str, Any], key: str) -> float:
@@ -100,6 +108,84 @@ def _at_least(column: str, threshold_name: str, label: str):
 _induction = _at_least("induction", "INDUCTION_SCORE", "induction score")
 _previous = _at_least("mass_previous", "NEIGHBOUR_MASS", "mass.previous")
 _next = _at_least("mass_next", "NEIGHBOUR_MASS", "mass.next")
+
+
+# the same criteria over arrays of rows (RoleSpec.holds): NaN, ±inf, None and text read as in _num / _ok
+def _as_float(v) -> float:
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+_AS_FLOAT = np.frompyfunc(_as_float, 1, 1)
+
+
+def _col(cols: Mapping[str, Any], key: str, shape) -> np.ndarray:
+    v = cols.get(key)
+    if v is None:
+        return np.full(shape, np.nan)
+    a = np.asarray(v)
+    if a.dtype.kind not in "fiub":
+        a = _AS_FLOAT(a).astype(np.float64)
+    return np.broadcast_to(a.astype(np.float64, copy=False), shape)
+
+
+def _text_is(cols: Mapping[str, Any], key: str, value: str, shape) -> np.ndarray:
+    v = cols.get(key)
+    if v is None:
+        return np.zeros(shape, dtype=bool)
+    a = np.asarray(v, dtype=object)
+    return np.broadcast_to(np.frompyfunc(lambda x: x == value, 1, 1)(a).astype(bool), shape)
+
+
+def _fin(*xs) -> np.ndarray:
+    out = np.isfinite(xs[0])
+    for x in xs[1:]:
+        out = out & np.isfinite(x)
+    return out
+
+
+def _at_least_v(column: str, threshold_name: str):
+    def holds(cols, causal):
+        x = _col(cols, column, np.shape(causal))
+        return _fin(x) & (x >= getattr(th, threshold_name))
+    return holds
+
+
+def _anchor_v(cols, causal):
+    sh = np.shape(causal)
+    w, slot = _col(cols, "anchor_weight", sh), _col(cols, "anchor_slot", sh)
+    return _fin(w, slot) & (w >= th.ANCHOR_WEIGHT)
+
+
+def _local_v(cols, causal):
+    sh = np.shape(causal)
+    s, d = _col(cols, "slope", sh), _col(cols, "share_distance", sh)
+    return _fin(s, d) & (s >= th.LOCAL_SLOPE) & (d >= th.LOCAL_SHARE)
+
+
+def _counting_v(cols, causal):
+    e = _col(cols, "entropy_ratio", np.shape(causal))
+    return np.asarray(causal, dtype=bool) & _fin(e) & (e >= th.COUNTING_ENTROPY)
+
+
+def _pair_v(cols, sh) -> np.ndarray:
+    x = _col(cols, "share_pair", sh)
+    return np.where(np.isfinite(x), x, 0.0)
+
+
+def _positional_v(cols, causal):
+    sh = np.shape(causal)
+    return _text_is(cols, "shift_verdict", "absolute", sh) | (_pair_v(cols, sh) >= th.POSITIONAL_PAIR_SHARE)
+
+
+def _content_v(cols, causal):
+    sh = np.shape(causal)
+    pos = _col(cols, "share_distance", sh) + _col(cols, "share_slot", sh) + _pair_v(cols, sh)
+    cont = _col(cols, "share_content", sh) + _col(cols, "share_residual", sh)
+    return (~_text_is(cols, "shift_verdict", "absolute", sh) & _fin(pos, cont) & (pos < th.CONTENT_MAX_POSITIONAL)
+            & (cont >= th.CONTENT_MIN_SHARE))
 
 
 def _anchor(row, ctx):
@@ -158,28 +244,31 @@ def _content(row, ctx):
 _BUILTIN = (
     RoleSpec("induction", f"induction score ≥ {th.INDUCTION_SCORE} on repeated random tokens",
              "copies: attends to the token after the earlier copy of the current token",
-             _induction, "#F0E442", "induct", "In", "induction", 10),
+             _induction, "#F0E442", "induct", "In", "induction", 10,
+             _at_least_v("induction", "INDUCTION_SCORE")),
     RoleSpec("previous-token", f"mass.previous ≥ {th.NEIGHBOUR_MASS}", "at least half the weight on the token just before",
-             _previous, "#0072B2", "prev", "Pv", "mass_previous", 20),
+             _previous, "#0072B2", "prev", "Pv", "mass_previous", 20,
+             _at_least_v("mass_previous", "NEIGHBOUR_MASS")),
     RoleSpec("next-token", f"mass.next ≥ {th.NEIGHBOUR_MASS}", "at least half the weight on the token just after (encoders)",
-             _next, "#56B4E9", "next", "Nx", "mass_next", 30),
+             _next, "#56B4E9", "next", "Nx", "mass_next", 30,
+             _at_least_v("mass_next", "NEIGHBOUR_MASS")),
     RoleSpec("anchor", f"mean weight on one slot (queries ≥ {th.ANCHOR_MIN_DISTANCE} tokens away) ≥ {th.ANCHOR_WEIGHT}",
              "a large share of weight on one fixed slot whatever the query (first token, template slot)",
-             _anchor, "#D55E00", "anchor", "An", "anchor_weight", 40),
+             _anchor, "#D55E00", "anchor", "An", "anchor_weight", 40, _anchor_v),
     RoleSpec("local", f"slope ≥ {th.LOCAL_SLOPE} per token and shares.distance ≥ {th.LOCAL_SHARE}",
              "scores fall with distance, and distance explains much of their variance",
-             _local, "#009E73", "local", "Lo", "share_distance", 50),
+             _local, "#009E73", "local", "Lo", "share_distance", 50, _local_v),
     RoleSpec("positional", f"shift test absolute, or shares.pair ≥ {th.POSITIONAL_PAIR_SHARE}",
              "scores follow the absolute positions of query and key (a learned absolute table's p_iᵀ W p_j): the "
              "head keeps its places when the text moves",
-             _positional, "#882255", "posn", "Ps", "share_pair", 55),
+             _positional, "#882255", "posn", "Ps", "share_pair", 55, _positional_v),
     RoleSpec("counting", f"entropy ≥ {th.COUNTING_ENTROPY} × log(visible keys) (causal models)",
              "near-uniform over the causal prefix — the architecture's default; compare with an untrained copy",
-             _counting, "#E69F00", "count", "Ct", "entropy_ratio", 60),
+             _counting, "#E69F00", "count", "Ct", "entropy_ratio", 60, _counting_v),
     RoleSpec("content", (f"shares.distance + shares.slot + shares.pair < {th.CONTENT_MAX_POSITIONAL} and "
                          f"shares.content + shares.residual ≥ {th.CONTENT_MIN_SHARE}, and the shift test not absolute"),
              "position explains little; key content and query–key interaction explain most",
-             _content, "#CC79A7", "content", "Co", "share_content", 70),
+             _content, "#CC79A7", "content", "Co", "share_content", 70, _content_v),
     RoleSpec(FALLBACK, "none of the above", "no criterion holds", None, "#8C8C8C", "mixed", "Mx",
              "share_residual", 1000),
 )
@@ -233,6 +322,25 @@ def criteria(row: Mapping[str, Any], causal: bool = True) -> dict[str, str]:
             if ev:
                 out[s.name] = ev
     return out
+
+
+def criteria_arrays(cols: Mapping[str, Any], causal, row_at: Callable[[tuple], Mapping[str, Any]] | None = None):
+    """For many rows at once: ``(names, holds)`` with the roles whose criteria are checked (precedence order, the
+    fallback left out) and a bool array ``holds[..., r]`` — whether role r's criterion holds — of the shape of
+    ``causal`` plus one axis. ``cols`` as for :attr:`RoleSpec.holds`; a role without ``holds`` runs its check on
+    ``row_at(index)`` for every index (needed then). Agrees with :func:`criteria` row by row."""
+    causal = np.asarray(causal, dtype=bool)
+    checked = [s for s in specs() if s.check is not None]
+    out = np.zeros(causal.shape + (len(checked),), dtype=bool)
+    for r, s in enumerate(checked):
+        if s.holds is not None:
+            out[..., r] = s.holds(cols, causal)
+        else:
+            if row_at is None:
+                raise ValueError(f"the role {s.name!r} has no array form of its check; pass row_at")
+            for idx in np.ndindex(causal.shape):
+                out[idx + (r,)] = bool(s.check(row_at(idx), HeadContext(causal=bool(causal[idx]))))
+    return [s.name for s in checked], out
 
 
 def assign(row: Mapping[str, Any], causal: bool = True) -> tuple[str, list[str], str]:

@@ -133,6 +133,9 @@ class Reducer:
     """Base class: keep statistics from each :class:`LayerCapture`; ``result()`` is stored in the recording."""
 
     name = "reducer"
+    # True: the reducer takes its captures in any order of texts (several texts may share one forward pass, so
+    # layer l of texts 0, 1, 2 comes before layer l + 1 of text 0). Texts are batched only when every reducer says so.
+    any_order = False
 
     def begin(self, subject: Subject, units: Sequence[TextUnit]) -> None:  # noqa: D401
         pass
@@ -178,6 +181,8 @@ class _Run:
             self.sites_of.setdefault(id(site.module), []).append(site)
         self.calls: dict[int, int] = {}                 # id(module) → times called in this forward pass
         self.text = 0
+        self.batch_row = 0
+        self.batch: tuple[tuple[int, int], ...] = ((0, 0),)   # (text, length) of each row of the forward pass
         self.seen: set = set()                          # (stack, layer) of the sites delivered in this forward
         self.maps: dict = {}
         self.score_maps: dict = {}
@@ -187,20 +192,29 @@ class _Run:
         self._masks: dict[tuple, tuple] = {}
         self.rotary: dict[int, tuple] = {}              # id(attention module) → (cos, sin) it was handed this forward
 
-    def mask_facts(self, attention_mask, q_len: int, k_len: int, causal: bool) -> tuple:
+    def mask_facts(self, attention_mask, q_len: int, k_len: int, causal: bool, row: int | None = None) -> tuple:
         """:func:`_mask_facts`, once per mask: transformers hands every layer of a forward the same mask tensor, so
         its layers share one ``allowed`` tensor (reducers may cache what they derive from it). The entry keeps a
-        reference to the mask, so the identity test cannot match a different tensor at a reused address."""
-        key = (id(attention_mask), q_len, k_len, causal)
+        reference to the mask, so the identity test cannot match a different tensor at a reused address. ``row``:
+        a batched pass's row, whose text takes the mask's first ``q_len`` queries and ``k_len`` keys."""
+        key = (id(attention_mask), q_len, k_len, causal, row)
         hit = self._masks.get(key)
         if hit is None or hit[0] is not attention_mask:
-            if len(self._masks) >= 8:
+            if len(self._masks) >= 8 + 2 * len(self.batch):
                 self._masks.clear()
-            hit = self._masks[key] = (attention_mask, _mask_facts(attention_mask, q_len, k_len, causal))
+            m = attention_mask
+            if row is not None and m is not None:
+                m = _row_mask(m, row, q_len, k_len)
+            hit = self._masks[key] = (attention_mask, _mask_facts(m, q_len, k_len, causal))
         return hit[1]
 
     def start_text(self, t: int) -> None:
-        self.text = t
+        self.start_batch(((t, 0),))
+
+    def start_batch(self, rows) -> None:
+        """A forward pass over the texts ``rows`` ((text, length incl. any prefix) per batch row, right-padded)."""
+        self.batch = tuple(rows)
+        self.text = self.batch[0][0]
         self.seen = set()
         self.calls = {}
 
@@ -262,10 +276,15 @@ class _Run:
         unit = self.units[self.text]
         if site.stack == "decoder":
             unit = _decoder_view(self.subject, unit)
+        rotary = self.rotary.get(id(site.module))
+        if rotary is not None and len(self.batch) > 1:      # this text's row and positions of a batched pass
+            T = weights.shape[-1]
+            rotary = tuple(r[min(self.batch_row, r.shape[0] - 1)][None, :T] if r.dim() == 3 else r[..., :T, :]
+                           for r in rotary)
         cap = LayerCapture(site=site, text=self.text, unit=unit, head0=head0, n_heads=n,
                            scores=scores, weights=weights, allowed=allowed, score_kind=self.score_kind,
                            offset=self.offset, zeroed=zeroed, row_blocks=blocks, query=query, key=key,
-                           rotary=self.rotary.get(id(site.module)))
+                           rotary=rotary)
         for r in self.reducers:
             r.update(cap)
         if self.keep is not None:
@@ -281,6 +300,13 @@ def _zero_outside(x: torch.Tensor, blocks: tuple) -> None:
     """Set ``x[:, r0:r1, k1:]`` to 0 for every row block."""
     for r0, r1, k1 in blocks:
         x[:, r0:r1, k1:].zero_()
+
+
+def _row_mask(mask: torch.Tensor, row: int, q_len: int, k_len: int) -> torch.Tensor:
+    """Batch row ``row`` of a (batch, heads, q, k) mask, cut to a text's first ``q_len`` queries and ``k_len`` keys
+    (texts are right-padded, so a text's queries and keys come first)."""
+    m = mask[min(row, mask.shape[0] - 1)][None] if mask.dim() == 4 else mask
+    return m[..., :q_len, :k_len]
 
 
 def _all_finite(x: torch.Tensor) -> bool:
@@ -378,35 +404,48 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
     softcap = kwargs.get("softcap")
     # a module attnpos does not record (cross-attention) gets exactly eager attention: the model's mask, no other
     causal = site.causal if site is not None else False
-    facts = (run.mask_facts if run is not None else _mask_facts)(attention_mask, q_len, k_len, causal)
-    allowed, pattern, empty_rows, has_values = facts
-    mask_add = attention_mask[..., :k_len] if has_values else None
-    not_allowed = ~allowed if pattern == "general" else None
-    per_head = q_len * k_len * 4
-    n_chunks = -(-n_heads // max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1))))
-    chunk = -(-n_heads // n_chunks)          # equal chunks: 12 heads in 3 × 4 rather than 5 + 5 + 2
-    out = torch.empty(bsz, n_heads, q_len, value.shape[-1], dtype=value.dtype) if own is None else None
+    # several texts in one pass (right-padded): each row is computed on its own text's queries and keys only
+    rows = run.batch if run is not None and len(run.batch) > 1 and len(run.batch) == bsz else None
+    out = None
+    if own is None:
+        out = (torch.zeros if rows is not None else torch.empty)(bsz, n_heads, q_len, value.shape[-1],
+                                                                  dtype=value.dtype)
     neg_inf = torch.tensor(float("-inf"))
-    # causal and square (the usual case): row blocks, each forming only the keys it may see
-    blocks = causal_blocks(q_len) if pattern == "causal" and q_len == k_len else None
     for b in range(bsz):
+        if rows is not None:
+            run.text, run.batch_row = rows[b][0], b
+            ql = kl = rows[b][1] if site is not None else None
+            if ql is None or ql > q_len or q_len != k_len:
+                ql, kl = q_len, k_len
+            facts = run.mask_facts(attention_mask, ql, kl, causal, row=b)
+        else:
+            ql, kl = q_len, k_len
+            facts = (run.mask_facts if run is not None else _mask_facts)(attention_mask, q_len, k_len, causal)
+        allowed, pattern, empty_rows, has_values = facts
+        not_allowed = ~allowed if pattern == "general" else None
+        per_head = ql * kl * 4
+        n_chunks = -(-n_heads // max(1, min(n_heads, CHUNK_BYTES // max(per_head, 1))))
+        chunk = -(-n_heads // n_chunks)          # equal chunks: 12 heads in 3 × 4 rather than 5 + 5 + 2
+        # causal and square (the usual case): row blocks, each forming only the keys it may see
+        blocks = causal_blocks(ql) if pattern == "causal" and ql == kl else None
         pb = ma = None
         if bias is not None:
-            pb = bias[min(b, bias.shape[0] - 1)]
-        if mask_add is not None:
-            ma = mask_add[min(b, mask_add.shape[0] - 1)]
+            pb = bias[min(b, bias.shape[0] - 1)][..., :ql, :kl]
+        if has_values:
+            ma = (attention_mask[min(b, attention_mask.shape[0] - 1)][..., :kl] if rows is None else
+                  _row_mask(attention_mask, b, ql, kl)[0])
         for h0 in range(0, n_heads, chunk):
             h1 = min(n_heads, h0 + chunk)
-            shape = (h1 - h0, q_len, k_len)
+            shape = (h1 - h0, ql, kl)
             if run is not None:
                 s, w = run.buffer("scores", shape, blocks), run.buffer("weights", shape, blocks)
             else:
                 s, w = torch.zeros(shape), torch.zeros(shape)
-            qb, kb, vb = query[b, h0:h1].float(), key[b, h0:h1].float(), value[b, h0:h1]
+            qb, kb, vb = query[b, h0:h1, :ql].float(), key[b, h0:h1, :kl].float(), value[b, h0:h1, :kl]
             pbh = None if pb is None else (pb[h0:h1] if pb.shape[0] > 1 else pb)
             mah = None if ma is None else (ma[h0:h1] if ma.shape[0] > 1 else ma)
             finite = True
-            for r0, r1, k1 in blocks or ((0, q_len, k_len),):
+            for r0, r1, k1 in blocks or ((0, ql, kl),):
                 # c: this block's scores, in a contiguous scratch when blocked (a strided view of s would slow
                 # the softmax below), then the weights in place
                 if blocks is None:
@@ -425,7 +464,7 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
                 if blocks is not None:
                     c[:, :, r0:r1].tril_()
                 elif pattern == "causal":
-                    c.tril_(k_len - q_len)
+                    c.tril_(kl - ql)
                 elif pattern == "general":
                     c.masked_fill_(not_allowed, 0.0)
                 # NaN anywhere, or ±inf on an allowed pair (min and max propagate NaN and show ±inf)
@@ -446,7 +485,7 @@ def capture_attention(module, query, key, value, attention_mask, scaling=None, d
                     w[:, r0:r1, :k1].copy_(wb)
                 if own is None:
                     torch.matmul(wb.to(value.dtype), vb[:, :k1], out=out[b, h0:h1, r0:r1])
-            if site is not None and b == 0:
+            if site is not None and (b == 0 or rows is not None):
                 run.deliver(site, None, w, allowed, h0, zeroed=s, weights_checked=True, blocks=blocks,
                             finite=finite, query=qb, key=kb)
     if own is not None:
@@ -624,22 +663,49 @@ def _weights_path(subject: Subject, run_ref: list):
             c._attn_implementation_internal = v
 
 
-def forward(subject: Subject, ids: list[int], *, offset: int, want_weights: bool, hidden: bool):
+@functools.lru_cache(maxsize=64)
+def _takes_logits_to_keep(cls) -> bool:
+    import inspect
+
+    try:
+        return "logits_to_keep" in inspect.signature(cls.forward).parameters
+    except (TypeError, ValueError):
+        return False
+
+
+def forward(subject: Subject, ids: list[int], *, offset: int, want_weights: bool, hidden: bool,
+            logits: bool = True):
+    """One forward pass of ``subject`` over ``ids``. ``logits=False``: the caller reads no logits, so a model whose
+    forward takes ``logits_to_keep`` (transformers' causal LMs) computes them for the last position only — the
+    output head is skipped for the others (on a 49k-token vocabulary that is about a sixth of a small model's
+    forward pass); everything before it, attention included, runs exactly as in a plain call."""
     model = subject.model
-    x = torch.tensor([ids], dtype=torch.long)
-    kw: dict[str, Any] = {"input_ids": x, "attention_mask": torch.ones_like(x)}
+    rows = [list(r) for r in ids] if len(ids) and isinstance(ids[0], (list, tuple)) else [list(ids)]
+    T = max(len(r) for r in rows)
+    if len(rows) == 1:
+        x = torch.tensor(rows, dtype=torch.long)
+        mask = torch.ones_like(x)
+    else:   # several texts: right-padded (any token id; the mask hides it)
+        x = torch.zeros(len(rows), T, dtype=torch.long)
+        mask = torch.zeros(len(rows), T, dtype=torch.long)
+        for i, r in enumerate(rows):
+            x[i, :len(r)] = torch.tensor(r, dtype=torch.long)
+            mask[i, :len(r)] = 1
+    kw: dict[str, Any] = {"input_ids": x, "attention_mask": mask}
     if subject.is_encoder_decoder:
         kw["decoder_input_ids"] = torch.tensor([[_decoder_start(subject)] + ids[:-1]], dtype=torch.long)
     else:
         kw["use_cache"] = False
     if offset:
         limit = subject.context_limit
-        if limit and len(ids) + offset > limit and any(s.scheme == "learned-absolute" for s in subject.sites):
-            raise AttnposError(f"Offsetting positions by {offset} needs {len(ids) + offset} positions, more than the "
+        if limit and T + offset > limit and any(s.scheme == "learned-absolute" for s in subject.sites):
+            raise AttnposError(f"Offsetting positions by {offset} needs {T + offset} positions, more than the "
                                f"model's table of {limit}. Use a smaller offset or shorter texts.")
-        kw["position_ids"] = torch.arange(offset, offset + len(ids)).unsqueeze(0)
+        kw["position_ids"] = torch.arange(offset, offset + T).unsqueeze(0).expand(len(rows), T).contiguous()
     if want_weights:
         kw["output_attentions"] = True
+    if not logits and not subject.is_encoder_decoder and _takes_logits_to_keep(type(model)):
+        kw["logits_to_keep"] = 1
     if hidden:
         kw["output_hidden_states"] = True
     try:
@@ -660,10 +726,37 @@ def next_token_loss(outputs, ids: list[int]) -> np.ndarray | None:
     return (-lp.gather(1, tgt[:, None])[:, 0]).numpy()
 
 
+BATCH_TOKENS = 2048
+"""Padded tokens per forward pass when texts are batched (rows × longest text): enough for the model's matrix
+products to run at full speed on a CPU, while its activations stay small (the capture's own buffers do not grow
+with the batch: it computes one text at a time inside each attention call)."""
+
+BATCH_PADDING = 0.75
+"""A text joins a batch only if it is at least this fraction of the batch's longest text (padded tokens are
+computed by the model's projections and MLPs for nothing)."""
+
+
+def batches(lengths: Sequence[int], budget: int | None = None) -> list[list[int]]:
+    """Group texts (by index) into forward passes: longest first, each pass of texts no shorter than
+    :data:`BATCH_PADDING` × its longest and at most ``budget`` (:data:`BATCH_TOKENS`) padded tokens."""
+    budget = budget or BATCH_TOKENS
+    order = sorted(range(len(lengths)), key=lambda i: (-lengths[i], i))
+    out: list[list[int]] = []
+    for i in order:
+        if out:
+            cur = out[-1]
+            top = lengths[cur[0]]
+            if (len(cur) + 1) * top <= budget and lengths[i] >= BATCH_PADDING * top:
+                cur.append(i)
+                continue
+        out.append([i])
+    return out
+
+
 def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, keep=None, keep_scores: bool = False,
            position_offset: int = 0, prefix: Sequence[int] | None = None, hidden_states: bool = False,
            token_loss: bool = False, max_tokens: int | None = None, units: Sequence[TextUnit] | None = None,
-           progress: bool | None = None, path: str | None = None) -> Recording:
+           progress: bool | None = None, path: str | None = None, batch: bool | None = None) -> Recording:
     """Run ``subject`` on ``texts`` and feed every self-attention layer to ``reducers``.
 
     Args:
@@ -676,6 +769,11 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
             ``offset = len(prefix)``.
         hidden_states / token_loss: also keep per-text hidden states and next-token losses.
         path: force ``"registry"`` or ``"eager-weights"``; by default the registry path is tried first.
+        batch: run texts of similar length together in one forward pass (right-padded, see :func:`batches`);
+            by default (None) wherever it applies: the registry path, a model without a decoder stack, no hidden
+            states or token losses asked for, and every reducer taking its captures in any order
+            (:attr:`Reducer.any_order`). Each reducer still gets one capture per text, layer and chunk of heads,
+            computed on that text's own tokens only, so the statistics are those of one text per pass.
     """
     if units is None:
         units = prepare(subject, as_raw(texts), max_tokens=max_tokens)
@@ -706,25 +804,34 @@ def record(subject: Subject, texts=None, reducers: Iterable[Reducer] = (), *, ke
                     prefix=prefix)
     # a bar for more than a few texts (a terminal or a notebook; core.progress), or when asked for
     show = progress if progress is not None else (len(units) > 3 and _progress.wanted())
-    iterator = _progress.bar(range(len(units)), desc=f"recording {subject.name}", unit="text", show=show)
+    together = (batch is not False and chosen == "registry" and not subject.is_encoder_decoder
+                and not hidden_states and not token_loss and all(getattr(r, "any_order", False) for r in reducers))
+    if batch and not together:
+        raise AttnposError("Texts can be batched only on the registry path, for a model without a decoder stack, "
+                           "without hidden states or token losses, and with reducers that take any order of texts.")
+    passes = batches([len(prefix) + len(u) for u in units]) if together else [[t] for t in range(len(units))]
+    iterator = _progress.bar(passes, desc=f"recording {subject.name}", unit="pass", show=show)
     try:
         _ACTIVE.append(run)
         ctx = _registry_path(subject, run) if chosen == "registry" else _weights_path(subject, _ACTIVE)
         with ctx, torch.no_grad():
-            for t in iterator:
-                run.start_text(t)
-                ids = prefix + list(units[t].ids)
+            for n_pass, texts_of_pass in enumerate(iterator):
+                t = texts_of_pass[0]
+                rows = [prefix + list(units[i].ids) for i in texts_of_pass]
+                run.start_batch([(i, len(r)) for i, r in zip(texts_of_pass, rows)])
+                ids = rows[0] if len(rows) == 1 else rows
                 out = forward(subject, ids, offset=position_offset, want_weights=(chosen != "registry"),
-                               hidden=hidden_states)
+                               hidden=hidden_states, logits=token_loss)
                 missing = [s for s in subject.sites if (s.stack, s.layer) not in run.seen]
                 if missing:
-                    if chosen == "registry" and t == 0 and len(missing) == len(subject.sites) and path is None:
+                    if chosen == "registry" and n_pass == 0 and len(missing) == len(subject.sites) and path is None:
                         # the architecture does not call the registry: switch paths for this subject
                         subject.capture_path = "eager-weights"
                         _ACTIVE.pop()
                         return record(subject, units=units, reducers=reducers, keep=keep, keep_scores=keep_scores,
                                       position_offset=position_offset, prefix=prefix, hidden_states=hidden_states,
-                                      token_loss=token_loss, progress=progress, path="eager-weights")
+                                      token_loss=token_loss, progress=progress, path="eager-weights",
+                                      batch=False if batch is False else None)
                     names = ", ".join(f"{s.stack}:L{s.layer}" for s in missing[:4])
                     raise AttnposError(f"The capture saw no attention for {len(missing)} layers ({names}) of "
                                        f"{subject.architecture}. This architecture computes attention in a way "

@@ -269,6 +269,7 @@ class WeightStats(Reducer):
     """Masses, entropy ratio, anchor slot and weight-by-distance per head (weights only)."""
 
     name = "weights"
+    any_order = True
 
     def __init__(self, max_units: int = BOOT_UNITS):
         self.max_units = max_units
@@ -290,7 +291,7 @@ class WeightStats(Reducer):
         self.slot_n = np.zeros((n, S, self.max_t), dtype=slot_dtype)
         self.near_w = z(S, H, 2 * NEAR + 1)
         self.near_n = z(S, 2 * NEAR + 1)
-        self._counted: set = set()
+        self._masks: dict = {}
         self._mask = None
 
     def update(self, cap: LayerCapture) -> None:
@@ -306,11 +307,8 @@ class WeightStats(Reducer):
         si = self.ph.index[_site_key(cap)]
         hs = slice(cap.head0, cap.head0 + cap.n_heads)
         ordf, n_allowed, qe, okf = self._queries(cap, A)
-        if (si, cap.text) not in self._counted:    # head-independent counts, once per layer and text
-            if self._counted and next(iter(self._counted))[1] != cap.text:
-                self._counted.clear()              # texts come one after another: only the current one's
-            self._counted.add((si, cap.text))
-            self._count(si, cap.text // self.per_unit, A, ordf, qe, okf)
+        if cap.head0 == 0:                         # head-independent counts, once per layer and text (the
+            self._add_counts(si, cap.text // self.per_unit, A, ordf, qe, okf)   # first chunk of heads; any order)
         # mean weight by distance, |δ| ≤ NEAR, over ordinary queries (weights are 0 on disallowed pairs); the
         # previous / next / self masses are its δ = 1, −1, 0 entries
         nb = band(w, NEAR)                          # (n, T, 2·NEAR+1)
@@ -332,8 +330,10 @@ class WeightStats(Reducer):
         queries (≥ 4 keys), first-token queries. Kept while the capture hands over the same mask tensor (every
         chunk and layer of a text); the reference held keeps the identity test sound."""
         key = (cap.text, cap.site.stack, cap.offset)
-        hit = self._mask
-        if hit is None or hit[0] is not cap.allowed or hit[1] != key:
+        hit = self._masks.get(key)
+        if hit is None or hit[0] is not cap.allowed:
+            if len(self._masks) >= 64:
+                self._masks.clear()
             T = A.shape[-1]
             ordinary = torch.from_numpy(~np.asarray(cap.unit.special[:T], dtype=bool))
             n_allowed = A.sum(-1)
@@ -341,24 +341,36 @@ class WeightStats(Reducer):
             okf = ordinary & A[:, 0]               # first: ordinary queries that see slot 0 …
             if T > 1:
                 okf[0] = False                     # … except the first token looking at itself (that is `self`)
-            hit = self._mask = (cap.allowed, key, (ordinary.to(torch.float32), n_allowed, qe, okf))
+            hit = self._masks[key] = [cap.allowed, key, (ordinary.to(torch.float32), n_allowed, qe, okf), None]
+        self._mask = hit
         return hit[2]
 
-    def _count(self, si: int, t: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor,
-               okf: torch.Tensor) -> None:
-        """How many (ordinary query, allowed key) pairs enter each mean: the same sums as above, over the mask."""
+    def _add_counts(self, si: int, t: int, A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor,
+                    okf: torch.Tensor) -> None:
+        """Add the counts of this layer and text (:meth:`_count`); every layer handed the same mask tensor shares
+        them, so they are computed once per mask."""
+        hit = self._mask                           # the entry _queries just returned
+        if hit[3] is None:
+            hit[3] = self._count(A, ordf, qe, okf)
+        near_n, first_n, ent_n, slot_n = hit[3]
         T = A.shape[-1]
-        Af = A.to(ordf.dtype)[None]
-        nb = band(Af, NEAR)
-        near_n = torch.matmul(ordf, nb)[0].double().numpy()
         self.near_n[si] += near_n
         for name, d in (("previous", 1), ("next", -1), ("self", 0)):
             self.mass_n[name][t, si] += near_n[NEAR + d]
-        self.mass_n["first"][t, si] += int(okf.sum())
-        self.ent_n[t, si] += int(qe.sum())
-        self.slot_n[t, si, :T] += _far_column_sums(Af, ordf, nb)[0].numpy()
+        self.mass_n["first"][t, si] += first_n
+        self.ent_n[t, si] += ent_n
+        self.slot_n[t, si, :T] += slot_n
+
+    @staticmethod
+    def _count(A: torch.Tensor, ordf: torch.Tensor, qe: torch.Tensor, okf: torch.Tensor) -> tuple:
+        """How many (ordinary query, allowed key) pairs enter each mean: the same sums as above, over the mask."""
+        Af = A.to(ordf.dtype)[None]
+        nb = band(Af, NEAR)
+        near_n = torch.matmul(ordf, nb)[0].double().numpy()
+        return near_n, int(okf.sum()), int(qe.sum()), _far_column_sums(Af, ordf, nb)[0].numpy()
 
     def result(self) -> dict:
+        self._masks.clear()
         self._mask = None
         per_text = {"mass": self.mass, "mass_n": self.mass_n, "entropy": self.ent, "entropy_n": self.ent_n,
                     "slot_w": self.slot_w, "slot_n": self.slot_n}
@@ -538,6 +550,7 @@ class SplitStats(Reducer):
     row-centred scores on the pair region (queries and keys below PAIR_MAX) for the position-pair part."""
 
     name = "split"
+    any_order = True
 
     def __init__(self, heads_only: set | None = None, max_units: int = BOOT_UNITS):
         self.heads_only = heads_only
@@ -570,7 +583,9 @@ class SplitStats(Reducer):
     def _features(self, cap: LayerCapture, T: int):
         fk = (cap.text, cap.site.stack)
         if fk not in self._fj:
-            self._fj = {fk: torch.from_numpy(self.design.key_features(cap.unit, T))}
+            if len(self._fj) >= 64:                   # texts of a batched pass come layer by layer, interleaved
+                self._fj.clear()
+            self._fj[fk] = torch.from_numpy(self.design.key_features(cap.unit, T))
         if T not in self._fd:
             self._fd = {T: torch.from_numpy(self.design.delta_features(T))}
         return self._fd[T], self._fj[fk]

@@ -6,11 +6,12 @@ reference implementation. Every matrix of the tiny models is drawn from N(0, 0.1
 uniform and a wrong mask, a mixed-up layer or a sum over shared applications shows.
 """
 
+import numpy as np
 import pytest
 import torch
 
 import attnpos
-from attnpos.capture import forward, record
+from attnpos.capture import forward, next_token_loss, record
 
 import tiny
 
@@ -49,27 +50,43 @@ def _eager_maps(subject, out):
     return {"main": list(out.attentions)}
 
 
-@pytest.mark.parametrize("arch", tiny.FAMILIES)
-def test_capture_never_changes_the_model(arch):
-    s = _subject(arch)
+def _recorded_outputs(s, **kw):
+    """The recording's own forward output (the last forward pass: an architecture that never calls the registry is
+    run again on the eager-weights path) and the recording."""
     grabbed = []
     hook = s.model.register_forward_hook(lambda m, a, out: grabbed.append(out))
     try:
-        rec = record(s, [TEXT], keep="all", hidden_states=True)
+        rec = record(s, [TEXT], keep="all", hidden_states=True, **kw)
     finally:
         hook.remove()
+    assert 1 <= len(grabbed) <= 2
+    return _tensors(grabbed[-1]), rec
+
+
+@pytest.mark.parametrize("arch", tiny.FAMILIES)
+def test_capture_never_changes_the_model(arch):
+    s = _subject(arch)
+    got, rec = _recorded_outputs(s)
     ids = rec.units[0].ids
     with torch.no_grad():
         plain = forward(s, ids, offset=0, want_weights=False, hidden=True)
         eager = forward(s, ids, offset=0, want_weights=True, hidden=False)
-    # the last forward pass is the recording's (an architecture that never calls the registry is run again on the
-    # eager-weights path)
-    assert 1 <= len(grabbed) <= 2
-    got, ref = _tensors(grabbed[-1]), _tensors(plain)
+    ref = _tensors(plain)
     assert set(ref) <= set(got) and any("hidden_states" in k for k in ref)
     for name, r in ref.items():
-        diff = float((got[name] - r).abs().max())
+        g = got[name]
+        if name == "logits" and g.shape != r.shape:
+            # a recording that reads no logits asks a causal LM for the last position's only (logits_to_keep)
+            assert g.shape[1] == 1 and g.shape[0] == r.shape[0] and g.shape[2:] == r.shape[2:], (arch, g.shape)
+            r = r[:, -1:]
+        diff = float((g - r).abs().max())
         assert diff <= TOL, f"{arch}: {name} moved by {diff:.3g} under capture"
+    # with token losses asked for, every position's logits are computed, and they are the plain run's
+    full, rec_tl = _recorded_outputs(s, token_loss=True)
+    if "logits" in ref:
+        assert full["logits"].shape == ref["logits"].shape
+        assert float((full["logits"] - ref["logits"]).abs().max()) <= TOL
+        np.testing.assert_allclose(rec_tl.token_loss[0], next_token_loss(plain, list(ids)), atol=1e-5)
     maps = _eager_maps(s, eager)
     for stack, n in s.stacks:
         assert len(maps[stack]) == n, f"{arch}: {len(maps[stack])} eager maps for {n} {stack} sites"
@@ -200,7 +217,8 @@ def test_low_precision_weights_outputs_unchanged_scores_in_float32(arch, dtype):
 
     hook = s.model.register_forward_hook(lambda m, a, out: grabbed.append(out))
     try:
-        rec = record(s, [TEXT], [keep, Rows()], hidden_states=True)
+        # token_loss: every position's logits are computed (a recording without it asks for the last one only)
+        rec = record(s, [TEXT], [keep, Rows()], hidden_states=True, token_loss=True)
     finally:
         hook.remove()
     with torch.no_grad():

@@ -14,7 +14,8 @@ import attnpos
 from attnpos.cli import main as cli_main
 from attnpos import probes, texts as texts_mod
 from attnpos.core import thresholds
-from attnpos.bands import rope_bands
+from attnpos import bands as bands_mod
+from attnpos.bands import BandEnergy, rope_bands
 
 import tiny
 
@@ -262,3 +263,56 @@ def test_single_live_pair_takes_all_energy(pair):
 def test_bands_refuse_models_without_rope():
     with pytest.raises(attnpos.AttnposError):
         rope_bands(tiny.subject("gpt2"), TEXTS)
+
+
+class _PairLoopBands(BandEnergy):
+    """The pair energies and band parts as the reducer first computed them: one (T, T) tensor per rotary pair (the
+    reference for the faster products of :meth:`BandEnergy.update`)."""
+
+    name = "bands-loop"
+
+    def update(self, cap):
+        key_ = (cap.site.stack, cap.site.layer)
+        if key_ not in self.rope or cap.query is None:
+            return
+        q, k = cap.query.float(), cap.key.float()
+        n, T, d = q.shape
+        rd = cap.rotary[0].shape[-1]
+        layout, theta = bands_mod._layout(*cap.rotary)
+        if self.layout is None:
+            self.layout, self.rotary_dims, self.head_dim, self.theta = layout, rd, d, theta
+        pairs = bands_mod.pairs_of(layout, rd)
+        P = len(pairs)
+        A = cap.allowed.float()
+        acc = self.energy.setdefault(key_, np.zeros((self.H, P + 1)))
+        hs = slice(cap.head0, cap.head0 + n)
+        member = bands_mod.band_of_pairs(theta)
+        parts = {b: torch.zeros(n, T, T) for b in bands_mod.BANDS}
+        for m, (a, b) in enumerate(pairs):
+            c = q[:, :, a, None] * k[:, None, :, a] + q[:, :, b, None] * k[:, None, :, b]
+            acc[hs, m] += ((c * c) * A).sum((-1, -2)).double().numpy()
+            parts[member[m]] += c
+        self._remove(cap, key_, hs, q, k, parts, A)
+        if rd < d:
+            c = q[:, :, rd:] @ k[:, :, rd:].transpose(-1, -2)
+            acc[hs, P] += ((c * c) * A).sum((-1, -2)).double().numpy()
+        if cap.head0 == 0:
+            self.count[key_] = self.count.get(key_, 0.0) + float(A.sum())
+        self.max_t = max(self.max_t, T)
+
+
+@pytest.mark.parametrize("rotary", [1.0, 0.5], ids=["full", "partial"])
+def test_band_products_equal_the_pair_loop(rotary):
+    # the same recording reduced twice: by the reducer and by the per-pair loop above; energies and the removal
+    # statistics must agree to float tolerance
+    from attnpos.capture import record
+
+    model = tiny.build("llama", layers=2, heads=4, hidden=64, num_key_value_heads=2, partial_rotary_factor=rotary)
+    s = attnpos.from_model(model, tiny.tokenizer())
+    rec = record(s, TEXTS, [BandEnergy(), _PairLoopBands()])
+    fast, loop = rec.results["bands"], rec.results["bands-loop"]
+    assert fast.energy.keys() == loop.energy.keys() and fast.energy
+    for key in fast.energy:
+        np.testing.assert_allclose(fast.energy[key], loop.energy[key], rtol=1e-4, atol=1e-8)
+        np.testing.assert_allclose(fast.removal[key], loop.removal[key], rtol=1e-4, atol=1e-6)
+        assert fast.count[key] == loop.count[key]

@@ -63,6 +63,73 @@ def test_alpha_choice_matches_sklearn_ridge():
     assert got == alphas[int(np.argmin(sse))]
 
 
+def _reference_cross_validated(X, Y, groups, alphas, folds):
+    """The probe's fit as it was first written (standardised copies of every fold, an eigen-decomposition per inner
+    fold, scikit-learn's Ridge for the outer fit): the reference for the faster path from per-fold sums."""
+    from sklearn.linear_model import Ridge
+    from sklearn.model_selection import GroupKFold
+
+    def standardise(Xtr, *others):
+        mu, sd = Xtr.mean(0), Xtr.std(0)
+        sd = np.where(sd > 1e-8 * max(float(sd.max()), 1e-30), sd, 1.0)
+        return [(Xtr - mu) / sd] + [(o - mu) / sd for o in others]
+
+    def choose(X, Y, groups):
+        n_groups = len(np.unique(groups))
+        if n_groups < 2:
+            return np.full(Y.shape[1], alphas[len(alphas) // 2])
+        sse = np.zeros((len(alphas), Y.shape[1]))
+        for tr, te in GroupKFold(n_splits=min(probes.INNER_FOLDS, n_groups)).split(X, Y, groups):
+            Xtr, Xte = standardise(X[tr], X[te])
+            ym = Y[tr].mean(0)
+            lam, V = np.linalg.eigh(Xtr.T @ Xtr)
+            lam = np.clip(lam, 0.0, None)
+            Vb = V.T @ (Xtr.T @ (Y[tr] - ym))
+            P = Xte @ V
+            for a_i, a in enumerate(alphas):
+                sse[a_i] += ((Y[te] - (P @ (Vb / (lam + a)[:, None]) + ym)) ** 2).sum(0)
+        return np.asarray(alphas)[sse.argmin(0)]
+
+    pred, chosen = np.zeros_like(Y), []
+    for tr, te in GroupKFold(n_splits=min(folds, len(np.unique(groups)))).split(X, Y, groups):
+        a = choose(X[tr], Y[tr], groups[tr])
+        chosen.append(a)
+        Xtr, Xte = standardise(X[tr], X[te])
+        pred[te] = Ridge(alpha=a, fit_intercept=True).fit(Xtr, Y[tr]).predict(Xte)
+    sst = ((Y - Y.mean(0)) ** 2).sum(0)
+    return {"pred": pred, "r2": 1.0 - ((Y - pred) ** 2).sum(0) / sst, "alpha": np.median(np.stack(chosen), 0)}
+
+
+def _hidden_dataset():
+    """Hidden states of a tiny Llama over a few invented texts of different lengths, with position targets."""
+    s = tiny.subject("llama", layers=2, heads=4, hidden=64)
+    units = texts_mod.prepare(s, texts_mod.from_strings(TEXTS + [
+        "The lighthouse keeper logs each passing boat, its colour, its flag and the hour it went by.",
+        "Two buckets of river clay, one of sand, and a spoon of ash make the glaze for the blue jars.",
+        "At the market the cheese stall opens last and closes first, yet it sells out every week."]))
+    rec = probes._record(s, units, False)
+    X, pos, shuf, unit_of = probes._dataset(units, rec.hidden, 0)
+    Y = np.stack([pos, np.log1p(pos), shuf], 1).astype(np.float64)
+    return X, Y, unit_of
+
+
+@pytest.mark.parametrize("layer", [0, 2])
+def test_fit_from_sums_equals_the_reference_fit(layer):
+    # the probe's fit (per-fold sums, Cholesky per penalty) against the first implementation: the same penalties
+    # and the same held-out predictions to float tolerance, on hidden states of a real forward pass and on
+    # features with a large common offset and a constant column (where sums lose digits first)
+    X, Y, groups = _hidden_dataset()
+    rng = np.random.default_rng(3)
+    offset = np.concatenate([X[layer], np.full((len(Y), 1), 7.5)], 1) + 300.0 * rng.normal(size=X.shape[2] + 1)
+    for feats in (X[layer], offset):
+        for folds, alphas in ((5, probes.ALPHAS), (3, probes.ALPHAS[2:5]), (2, (1.0,))):
+            want = _reference_cross_validated(feats.astype(np.float64), Y, groups, list(alphas), folds)
+            got = probes.cross_validated(feats, Y, groups, alphas=alphas, folds=folds)
+            np.testing.assert_array_equal(got["alpha"], want["alpha"])
+            np.testing.assert_allclose(got["pred"], want["pred"], rtol=1e-6, atol=1e-6 * np.abs(Y).max())
+            np.testing.assert_allclose(got["r2"], want["r2"], rtol=1e-7, atol=1e-9)
+
+
 def test_cross_validated_signal_and_noise():
     rng = np.random.default_rng(1)
     groups = np.repeat(np.arange(5), 80)

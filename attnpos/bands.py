@@ -214,20 +214,33 @@ def rope_bands(subject, texts=None, *, units=None, max_tokens: int | None = None
 
     if not isinstance(subject, Subject):
         subject = load(subject)
-    rope_sites = [s for s in subject.sites if s.scheme == "rope"]
-    if not rope_sites:
-        raise AttnposError(f"{subject.name} has no RoPE layers (schemes: {', '.join(sorted(set(subject.schemes)))}); "
-                           "frequency bands only exist for rotary position embeddings.")
+    rope_sites_of(subject)
     if units is None:
         units = prepare(subject, as_raw(texts), max_tokens=max_tokens, warn=False)
     units = [u for u in units if len(u) >= 2]
     if not units:
         raise AttnposError("The bands need texts of at least two tokens.")
     run = record(subject, units=units, reducers=[BandEnergy()], progress=False).results["bands"]
+    return bands_from(subject, run, len(units))
+
+
+def rope_sites_of(subject) -> list:
+    """The subject's RoPE attention sites; a clear error when it has none."""
+    rope_sites = [s for s in subject.sites if s.scheme == "rope"]
+    if not rope_sites:
+        raise AttnposError(f"{subject.name} has no RoPE layers (schemes: {', '.join(sorted(set(subject.schemes)))}); "
+                           "frequency bands only exist for rotary position embeddings.")
+    return rope_sites
+
+
+def bands_from(subject, run: BandEnergy, n_texts: int) -> BandsResult:
+    """The bands result of a :class:`BandEnergy` reducer that a recording of ``n_texts`` texts (each of two
+    tokens or more) has filled — for a stage that records those texts anyway and adds the reducer to its own
+    recording (the probe) instead of calling :func:`rope_bands`."""
     if not run.energy:
         raise AttnposError(f"No RoPE attention call of {subject.architecture} reached attnpos (the architecture does "
                            "not use transformers' attention-function registry), so the bands cannot be measured.")
-    return _bands(subject, run, rope_sites, len(units))
+    return _bands(subject, run, rope_sites_of(subject), n_texts)
 
 
 def _bands(subject, run: BandEnergy, rope_sites, n_texts: int) -> BandsResult:

@@ -215,22 +215,28 @@ def _group_keys(units) -> tuple[np.ndarray, int, list[str]]:
 
 
 def _dataset(units, hidden: list[np.ndarray], seed: int):
-    """Stack ordinary tokens: X per layer, position, log-position, shuffled position, group per token."""
+    """Stack ordinary tokens: X per layer, position, log-position, shuffled position, group per token. The
+    entries of ``hidden`` are released (set to None) as they are copied into X."""
     rng = np.random.default_rng(seed)
-    xs, pos, shuf, unit_of = [], [], [], []
+    pos, shuf, unit_of, keep_idx = [], [], [], []
     for k, (u, h) in enumerate(zip(units, hidden)):
         T = min(len(u), h.shape[1])
-        keep = ~np.asarray(u.special[:T], dtype=bool)
-        idx = np.flatnonzero(keep)
+        idx = np.flatnonzero(~np.asarray(u.special[:T], dtype=bool))
+        keep_idx.append(idx)
         if len(idx) == 0:
             continue
-        xs.append(h[:, idx])
         pos.append(idx)
         shuf.append(rng.permutation(idx))           # positions shuffled within the text (control)
         unit_of.append(np.full(len(idx), k))
-    if not xs:
+    if not pos:
         raise AttnposError("The texts have no ordinary tokens (all special) to probe.")
-    X = np.concatenate(xs, axis=1)                  # (layers+1, n, d)
+    first = next(h for h in hidden if h is not None)
+    X = np.empty((first.shape[0], sum(len(i) for i in keep_idx), first.shape[2]), dtype=first.dtype)  # (layers+1, n, d)
+    at = 0
+    for k, idx in enumerate(keep_idx):
+        X[:, at: at + len(idx)] = hidden[k][:, idx]
+        at += len(idx)
+        hidden[k] = None
     return X, np.concatenate(pos), np.concatenate(shuf), np.concatenate(unit_of)
 
 
@@ -324,12 +330,32 @@ def _counting_check(subject, table, table_untrained, layers: list[dict]) -> dict
             "sources": "Haviv et al. 2022; Kazemnejad et al. 2023"}
 
 
-def _record(subject, units, want_weights: bool, progress: bool | None = None):
+def _record(subject, units, want_weights: bool, progress: bool | None = None, bands=None):
     from .capture import record
     from .reducers import WeightStats
 
-    reducers = [WeightStats()] if want_weights else []
+    reducers = ([WeightStats()] if want_weights else []) + ([bands] if bands is not None else [])
     return record(subject, units=units, reducers=reducers, hidden_states=True, progress=progress)
+
+
+#: the RoPE bands are measured on the first texts only (up to this many windows)
+BAND_TEXTS = 8
+
+
+def _band_reducer(units):
+    """A :class:`~attnpos.bands.BandEnergy` that reduces only the texts :func:`attnpos.bands.rope_bands` would be
+    given (the first :data:`BAND_TEXTS` windows of two tokens or more), so the bands come from the probe's own
+    recording instead of a second one; returns (reducer, number of those texts)."""
+    from .bands import BandEnergy
+
+    chosen = {t for t, u in enumerate(units[: max(2, min(len(units), BAND_TEXTS))]) if len(u) >= 2}
+
+    class _SomeTexts(BandEnergy):
+        def update(self, cap) -> None:
+            if cap.text in chosen:
+                super().update(cap)
+
+    return _SomeTexts(), len(chosen)
 
 
 #: the layers' probes run in this many threads (numpy's LAPACK releases the GIL; each thread's LAPACK on one core)
@@ -402,7 +428,13 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
                            "be split into windows). Pass more texts with --text.")
     want_counting = counting and subject.causal
     _progress.note(f"probe: {len(units)} text windows; hidden states of {subject.name}", progress)
-    rec = _record(subject, units, want_counting and heads is None, progress)
+    band_run, band_texts = None, 0
+    if bands and "rope" in subject.schemes:
+        from .bands import rope_sites_of
+
+        rope_sites_of(subject)
+        band_run, band_texts = _band_reducer(units)
+    rec = _record(subject, units, want_counting and heads is None, progress, bands=band_run)
     X, pos, shuf, unit_of = _dataset(units, rec.hidden, seed)
     groups = groups_u[unit_of]
     layers = _probe_layers(X, pos, shuf, groups, alphas, folds, desc="ridge probes", show=progress)
@@ -445,10 +477,12 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
             table = _counting_heads(subject, rec.results["weights"])
         count_info = _counting_check(subject, table, table_u, layers)
     band_info = None
-    if bands and "rope" in subject.schemes:
-        from .bands import rope_bands
+    if band_run is not None:
+        from .bands import bands_from
 
-        _progress.note("probe: RoPE frequency bands", progress)
-        band_info = rope_bands(subject, units=units[: max(2, min(len(units), 8))])
+        if not band_texts:
+            raise AttnposError("The bands need texts of at least two tokens.")
+
+        band_info = bands_from(subject, band_run, band_texts)
     return ProbeResult(model=subject.describe(), layers=layers, positions=positions, settings=settings,
                        counting=count_info, bands=band_info, notes=notes)

@@ -383,3 +383,19 @@ def test_band_products_equal_the_pair_loop(rotary):
         np.testing.assert_allclose(fast.energy[key], loop.energy[key], rtol=1e-4, atol=1e-8)
         np.testing.assert_allclose(fast.removal[key], loop.removal[key], rtol=1e-4, atol=1e-6)
         assert fast.count[key] == loop.count[key]
+
+
+def test_probe_bands_equal_a_recording_of_their_own():
+    # the probe adds the band reducer to its own recording: the same result as rope_bands on the same texts
+    s = tiny.subject("llama", layers=2, heads=4, hidden=64)
+    texts = TEXTS + ["The kettle sang twice before the baker noticed the rising loaves by the window."]
+    res = probes.probe(s, texts, untrained=False, counting=True)
+    units = texts_mod.prepare(s, texts_mod.as_raw(texts), warn=False)
+    alone = rope_bands(s, units=units)
+    assert res.bands.to_json()["heads"] and len(res.bands.heads) == len(alone.heads)
+    for a, b in zip(res.bands.heads, alone.heads):
+        assert (a["layer"], a["head"], a["band"], a["used_band"]) == (b["layer"], b["head"], b["band"], b["used_band"])
+        np.testing.assert_allclose(a["shares"], b["shares"], rtol=1e-6, atol=1e-9)
+        for band in b["removal"]:
+            np.testing.assert_allclose(list(a["removal"][band].values()), list(b["removal"][band].values()),
+                                       rtol=1e-6, atol=1e-9)

@@ -147,11 +147,18 @@ class BandEnergy(Reducer):
         acc = self.energy.setdefault(key_, np.zeros((self.H, P + 1)))
         hs = slice(cap.head0, cap.head0 + n)
         member = band_of_pairs(theta if theta is not None else np.full(P, np.nan))
-        parts = {b: torch.zeros(n, T, T) for b in BANDS}
-        for m, (a, b) in enumerate(pairs):
-            c = q[:, :, a, None] * k[:, None, :, a] + q[:, :, b, None] * k[:, None, :, b]      # (n, T, T)
-            acc[hs, m] += ((c * c) * A).sum((-1, -2)).double().numpy()
-            parts[member[m]] += c
+        # Σ_ij A_ij (q_ia k_ja + q_ib k_jb)² = Σ_i [q_ia² (A k_a²)_i + 2 q_ia q_ib (A k_a k_b)_i + q_ib² (A k_b²)_i]:
+        # one (T, T) @ (T, 3P) product per head instead of a (T, T) tensor per pair (in float64)
+        ia = torch.tensor([a for a, _ in pairs])
+        ib = torch.tensor([b for _, b in pairs])
+        qa, qb, ka, kb = q[..., ia].double(), q[..., ib].double(), k[..., ia].double(), k[..., ib].double()
+        ak = A.double() @ torch.cat([ka * ka, ka * kb, kb * kb], -1)                             # (n, T, 3P)
+        energy = (qa * qa * ak[..., :P] + 2 * qa * qb * ak[..., P:2 * P] + qb * qb * ak[..., 2 * P:]).sum(1)
+        acc[hs, :P] += energy.numpy()
+        parts = {}
+        for band in BANDS:     # Σ over a band's pairs of q_i^(m)·k_j^(m): one product over the band's dimensions
+            dims = [d_ for m, (a, b) in enumerate(pairs) if member[m] == band for d_ in (a, b)]
+            parts[band] = (q[..., dims] @ k[..., dims].transpose(-1, -2) if dims else torch.zeros(n, T, T))
         self._remove(cap, key_, hs, q, k, parts, A)
         if rd < d:
             c = q[:, :, rd:] @ k[:, :, rd:].transpose(-1, -2)
@@ -207,20 +214,33 @@ def rope_bands(subject, texts=None, *, units=None, max_tokens: int | None = None
 
     if not isinstance(subject, Subject):
         subject = load(subject)
-    rope_sites = [s for s in subject.sites if s.scheme == "rope"]
-    if not rope_sites:
-        raise AttnposError(f"{subject.name} has no RoPE layers (schemes: {', '.join(sorted(set(subject.schemes)))}); "
-                           "frequency bands only exist for rotary position embeddings.")
+    rope_sites_of(subject)
     if units is None:
         units = prepare(subject, as_raw(texts), max_tokens=max_tokens, warn=False)
     units = [u for u in units if len(u) >= 2]
     if not units:
         raise AttnposError("The bands need texts of at least two tokens.")
     run = record(subject, units=units, reducers=[BandEnergy()], progress=False).results["bands"]
+    return bands_from(subject, run, len(units))
+
+
+def rope_sites_of(subject) -> list:
+    """The subject's RoPE attention sites; a clear error when it has none."""
+    rope_sites = [s for s in subject.sites if s.scheme == "rope"]
+    if not rope_sites:
+        raise AttnposError(f"{subject.name} has no RoPE layers (schemes: {', '.join(sorted(set(subject.schemes)))}); "
+                           "frequency bands only exist for rotary position embeddings.")
+    return rope_sites
+
+
+def bands_from(subject, run: BandEnergy, n_texts: int) -> BandsResult:
+    """The bands result of a :class:`BandEnergy` reducer that a recording of ``n_texts`` texts (each of two
+    tokens or more) has filled — for a stage that records those texts anyway and adds the reducer to its own
+    recording (the probe) instead of calling :func:`rope_bands`."""
     if not run.energy:
         raise AttnposError(f"No RoPE attention call of {subject.architecture} reached attnpos (the architecture does "
                            "not use transformers' attention-function registry), so the bands cannot be measured.")
-    return _bands(subject, run, rope_sites, len(units))
+    return _bands(subject, run, rope_sites_of(subject), n_texts)
 
 
 def _bands(subject, run: BandEnergy, rope_sites, n_texts: int) -> BandsResult:

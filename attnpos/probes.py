@@ -61,37 +61,89 @@ DECODABLE_R2 = 0.5
 
 # --------------------------------------------------------------------------------------------------- the fit
 
-def _standardise(Xtr: np.ndarray, *others: np.ndarray):
-    mu = Xtr.mean(0)
-    sd = Xtr.std(0)
-    sd = np.where(sd > 1e-8 * max(float(sd.max()), 1e-30), sd, 1.0)
-    return [(Xtr - mu) / sd] + [(o - mu) / sd for o in others]
+class _Sums:
+    """Sums of the features and targets of a set of rows — count, Σx, Σxxᵀ, Σy, Σxyᵀ — after centring every
+    column on its mean over all rows (so the sums stay small and a column that is constant everywhere is exactly 0).
+    A fold's training sums are the sums of all rows less those of its held-out rows: each row is read once per
+    fold it is held out of, not once per fold it is trained on, and nothing of size n × d is copied."""
+
+    __slots__ = ("n", "sx", "sxx", "sy", "sxy")
+
+    def __init__(self, n, sx, sxx, sy, sxy):
+        self.n, self.sx, self.sxx, self.sy, self.sxy = n, sx, sxx, sy, sxy
+
+    @classmethod
+    def of(cls, Xc: np.ndarray, Yc: np.ndarray, rows=None) -> "_Sums":
+        x, y = (Xc, Yc) if rows is None else (Xc[rows], Yc[rows])
+        return cls(len(x), x.sum(0), x.T @ x, y.sum(0), x.T @ y)
+
+    def __sub__(self, other: "_Sums") -> "_Sums":
+        return _Sums(self.n - other.n, self.sx - other.sx, self.sxx - other.sxx, self.sy - other.sy,
+                     self.sxy - other.sxy)
+
+    def standardised(self):
+        """What ridge on these rows needs after standardising them (each feature to mean 0 and standard deviation
+        1 over the rows; a feature with no spread, below 1e-8 of the largest, is only centred): the features' means
+        and standard deviations, the targets' mean, the standardised Gram matrix X̃ᵀX̃ and X̃ᵀ(y − ȳ)."""
+        n = self.n
+        mu, ym = self.sx / n, self.sy / n
+        C = self.sxx - n * np.outer(mu, mu)
+        sd = np.sqrt(np.clip(np.diag(C) / n, 0.0, None))
+        sd = np.where(sd > 1e-8 * max(float(sd.max()), 1e-30), sd, 1.0)
+        G = C / sd[:, None] / sd[None, :]
+        B = (self.sxy - n * np.outer(mu, ym)) / sd[:, None]
+        return mu, sd, ym, G, B
+
+
+def _ridge_weights(G: np.ndarray, B: np.ndarray, alpha: float) -> np.ndarray:
+    """(G + αI)⁻¹ B by a Cholesky factorisation (G a Gram matrix, α > 0); an eigen-decomposition if rounding makes
+    the factorisation fail."""
+    from scipy.linalg import lapack
+
+    M = G.copy()
+    M.flat[:: M.shape[0] + 1] += alpha
+    c, info = lapack.dpotrf(M, lower=1, overwrite_a=1, clean=0)
+    if info == 0:
+        W, info = lapack.dpotrs(c, B, lower=1)
+        if info == 0:
+            return W
+    lam, V = np.linalg.eigh(G)
+    return V @ ((V.T @ B) / (np.clip(lam, 0.0, None) + alpha)[:, None])
+
+
+def _centred(X: np.ndarray, Y: np.ndarray):
+    return X - X.mean(0), Y - Y.mean(0)
 
 
 def _choose_alpha(X: np.ndarray, Y: np.ndarray, groups: np.ndarray, alphas: Sequence[float]) -> np.ndarray:
-    """Per target column, the penalty with the lowest pooled squared error over an inner GroupKFold.
+    """Per target column, the penalty with the lowest pooled squared error over an inner GroupKFold (on
+    standardised features; see :func:`_choose_alpha_in`)."""
+    Xc, Yc = _centred(np.asarray(X, dtype=np.float64), np.asarray(Y, dtype=np.float64))
+    return _choose_alpha_in(Xc, Yc, groups, np.arange(len(Xc)), _Sums.of(Xc, Yc), alphas)
 
-    Exact ridge for every penalty at once from one eigen-decomposition of the (standardised, centred) training
-    Gram matrix per inner fold."""
+
+def _choose_alpha_in(Xc, Yc, groups, rows, sums: "_Sums", alphas: Sequence[float]) -> np.ndarray:
+    """The penalty per target column chosen on the rows ``rows`` (whose sums are ``sums``) by an inner GroupKFold
+    over their groups: exact ridge for every penalty, fitted on each inner fold's standardised training rows and
+    scored on its held-out rows."""
     from sklearn.model_selection import GroupKFold
 
     alphas = np.asarray(alphas, dtype=float)
+    k = Yc.shape[1]
     if len(alphas) == 1:
-        return np.full(Y.shape[1], alphas[0])
-    n_groups = len(np.unique(groups))
+        return np.full(k, alphas[0])
+    g = groups[rows]
+    n_groups = len(np.unique(g))
     if n_groups < 2:
-        return np.full(Y.shape[1], alphas[len(alphas) // 2])
-    sse = np.zeros((len(alphas), Y.shape[1]))
-    for tr, te in GroupKFold(n_splits=min(INNER_FOLDS, n_groups)).split(X, Y, groups):
-        Xtr, Xte = _standardise(X[tr], X[te])
-        ym = Y[tr].mean(0)
-        lam, V = np.linalg.eigh(Xtr.T @ Xtr)
-        lam = np.clip(lam, 0.0, None)
-        Vb = V.T @ (Xtr.T @ (Y[tr] - ym))                      # (d, k)
-        P = Xte @ V                                             # (n_te, d)
+        return np.full(k, alphas[len(alphas) // 2])
+    sse = np.zeros((len(alphas), k))
+    for _, te in GroupKFold(n_splits=min(INNER_FOLDS, n_groups)).split(rows, rows, g):
+        te_rows = rows[te]
+        mu, sd, ym, G, B = (sums - _Sums.of(Xc, Yc, te_rows)).standardised()
+        Xte = (Xc[te_rows] - mu) / sd
         for a_i, a in enumerate(alphas):
-            pred = P @ (Vb / (lam + a)[:, None]) + ym
-            sse[a_i] += ((Y[te] - pred) ** 2).sum(0)
+            pred = Xte @ _ridge_weights(G, B, a) + ym
+            sse[a_i] += ((Yc[te_rows] - pred) ** 2).sum(0)
     return alphas[sse.argmin(0)]
 
 
@@ -101,34 +153,43 @@ def cross_validated(X: np.ndarray, Y: np.ndarray, groups: np.ndarray, *, alphas:
 
     Returns ``{"pred": (n, k), "r2": (k,), "alpha": (k,) median chosen penalty}``. R² is pooled over all held-out
     predictions: 1 − Σ(y − ŷ)² / Σ(y − ȳ)²; it is negative when the probe does worse than the mean."""
-    from threadpoolctl import threadpool_limits
+    from .reducers import blas_one_thread
 
     # small matrices: one BLAS thread is faster, and much faster on a busy machine (scoped to this call)
-    with threadpool_limits(limits=1, user_api="blas"):
+    with blas_one_thread():
         return _cross_validated(X, Y, groups, alphas, folds)
 
 
 def _cross_validated(X, Y, groups, alphas, folds) -> dict:
-    from sklearn.linear_model import Ridge
+    """The outer GroupKFold: per fold, the penalty chosen on the training texts only, then ridge on the
+    standardised training rows (what scikit-learn's ``Ridge(fit_intercept=True)`` fits on them, solved here from
+    the fold's sums) predicts the held-out rows."""
     from sklearn.model_selection import GroupKFold
 
     X = np.asarray(X, dtype=np.float64)
     Y = np.asarray(Y, dtype=np.float64)
     if Y.ndim == 1:
         Y = Y[:, None]
+    groups = np.asarray(groups)
     n_groups = len(np.unique(groups))
     if n_groups < 2:
         raise AttnposError("The probe needs at least two texts to hold one out; pass more texts.")
-    pred = np.zeros_like(Y)
+    y_mean = Y.mean(0)
+    Xc, Yc = X - X.mean(0), Y - y_mean
+    del X
+    total = _Sums.of(Xc, Yc)
+    pred = np.zeros_like(Yc)
     chosen = []
-    for tr, te in GroupKFold(n_splits=min(folds, n_groups)).split(X, Y, groups):
-        a = _choose_alpha(X[tr], Y[tr], groups[tr], alphas)
+    for tr, te in GroupKFold(n_splits=min(folds, n_groups)).split(Xc, Yc, groups):
+        train = total - _Sums.of(Xc, Yc, te)
+        a = _choose_alpha_in(Xc, Yc, groups, tr, train, alphas)
         chosen.append(a)
-        Xtr, Xte = _standardise(X[tr], X[te])
-        model = Ridge(alpha=a if Y.shape[1] > 1 else float(a[0]), fit_intercept=True)
-        model.fit(Xtr, Y[tr] if Y.shape[1] > 1 else Y[tr, 0])
-        p = model.predict(Xte)
-        pred[te] = p if p.ndim == 2 else p[:, None]
+        mu, sd, ym, G, B = train.standardised()
+        Xte = (Xc[te] - mu) / sd
+        for value in np.unique(a):
+            cols = np.flatnonzero(a == value)
+            pred[np.ix_(te, cols)] = Xte @ _ridge_weights(G, B[:, cols], float(value)) + ym[cols]
+    pred += y_mean
     sst = ((Y - Y.mean(0)) ** 2).sum(0)
     r2 = 1.0 - ((Y - pred) ** 2).sum(0) / np.where(sst > 0, sst, np.nan)
     return {"pred": pred, "r2": r2, "alpha": np.median(np.stack(chosen), axis=0)}
@@ -154,22 +215,28 @@ def _group_keys(units) -> tuple[np.ndarray, int, list[str]]:
 
 
 def _dataset(units, hidden: list[np.ndarray], seed: int):
-    """Stack ordinary tokens: X per layer, position, log-position, shuffled position, group per token."""
+    """Stack ordinary tokens: X per layer, position, log-position, shuffled position, group per token. The
+    entries of ``hidden`` are released (set to None) as they are copied into X."""
     rng = np.random.default_rng(seed)
-    xs, pos, shuf, unit_of = [], [], [], []
+    pos, shuf, unit_of, keep_idx = [], [], [], []
     for k, (u, h) in enumerate(zip(units, hidden)):
         T = min(len(u), h.shape[1])
-        keep = ~np.asarray(u.special[:T], dtype=bool)
-        idx = np.flatnonzero(keep)
+        idx = np.flatnonzero(~np.asarray(u.special[:T], dtype=bool))
+        keep_idx.append(idx)
         if len(idx) == 0:
             continue
-        xs.append(h[:, idx])
         pos.append(idx)
         shuf.append(rng.permutation(idx))           # positions shuffled within the text (control)
         unit_of.append(np.full(len(idx), k))
-    if not xs:
+    if not pos:
         raise AttnposError("The texts have no ordinary tokens (all special) to probe.")
-    X = np.concatenate(xs, axis=1)                  # (layers+1, n, d)
+    first = next(h for h in hidden if h is not None)
+    X = np.empty((first.shape[0], sum(len(i) for i in keep_idx), first.shape[2]), dtype=first.dtype)  # (layers+1, n, d)
+    at = 0
+    for k, idx in enumerate(keep_idx):
+        X[:, at: at + len(idx)] = hidden[k][:, idx]
+        at += len(idx)
+        hidden[k] = None
     return X, np.concatenate(pos), np.concatenate(shuf), np.concatenate(unit_of)
 
 
@@ -263,27 +330,60 @@ def _counting_check(subject, table, table_untrained, layers: list[dict]) -> dict
             "sources": "Haviv et al. 2022; Kazemnejad et al. 2023"}
 
 
-def _record(subject, units, want_weights: bool, progress: bool | None = None):
+def _record(subject, units, want_weights: bool, progress: bool | None = None, bands=None):
     from .capture import record
     from .reducers import WeightStats
 
-    reducers = [WeightStats()] if want_weights else []
+    reducers = ([WeightStats()] if want_weights else []) + ([bands] if bands is not None else [])
     return record(subject, units=units, reducers=reducers, hidden_states=True, progress=progress)
+
+
+#: the RoPE bands are measured on the first texts only (up to this many windows)
+BAND_TEXTS = 8
+
+
+def _band_reducer(units):
+    """A :class:`~attnpos.bands.BandEnergy` that reduces only the texts :func:`attnpos.bands.rope_bands` would be
+    given (the first :data:`BAND_TEXTS` windows of two tokens or more), so the bands come from the probe's own
+    recording instead of a second one; returns (reducer, number of those texts)."""
+    from .bands import BandEnergy
+
+    chosen = {t for t, u in enumerate(units[: max(2, min(len(units), BAND_TEXTS))]) if len(u) >= 2}
+
+    class _SomeTexts(BandEnergy):
+        def update(self, cap) -> None:
+            if cap.text in chosen:
+                super().update(cap)
+
+    return _SomeTexts(), len(chosen)
+
+
+#: the layers' probes run in this many threads (numpy's LAPACK releases the GIL; each thread's LAPACK on one core)
+PROBE_THREADS = 2
 
 
 def _probe_layers(X: np.ndarray, pos: np.ndarray, shuf: np.ndarray, groups: np.ndarray, alphas, folds: int,
                   with_targets: bool = True, desc: str = "ridge probes", show: bool | None = None) -> list[dict]:
-    out = []
+    from concurrent.futures import ThreadPoolExecutor
+
+    from .reducers import blas_one_thread
+
     Y = np.stack([pos, np.log1p(pos), shuf], axis=1).astype(np.float64) if with_targets else pos[:, None]
-    for layer in _progress.bar(range(X.shape[0]), desc=desc, unit="layer", show=show):
-        cv = cross_validated(X[layer], Y, groups, alphas=alphas, folds=folds)
+
+    def one(layer: int) -> dict:
+        cv = _cross_validated(X[layer], Y, groups, alphas, folds)
         r = {"layer": layer, "r2": float(cv["r2"][0])}
         if with_targets:
             r.update(r2_log=float(cv["r2"][1]), control_r2=float(cv["r2"][2]),
                      selectivity=float(cv["r2"][0] - cv["r2"][2]),
                      mae=float(np.abs(cv["pred"][:, 0] - pos).mean()), alpha=float(cv["alpha"][0]))
-        out.append(r)
-    return out
+        return r
+
+    # one BLAS thread per worker, set once around the pool (the limit is process-wide: nested limits in the
+    # workers would restore each other's setting)
+    with blas_one_thread(), ThreadPoolExecutor(max_workers=PROBE_THREADS) as pool:
+        return list(_progress.bar(pool.map(one, range(X.shape[0])), desc=desc, unit="layer", total=X.shape[0],
+                                  show=show))
 
 
 def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, seed: int = 0, folds: int = FOLDS,
@@ -328,7 +428,13 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
                            "be split into windows). Pass more texts with --text.")
     want_counting = counting and subject.causal
     _progress.note(f"probe: {len(units)} text windows; hidden states of {subject.name}", progress)
-    rec = _record(subject, units, want_counting and heads is None, progress)
+    band_run, band_texts = None, 0
+    if bands and "rope" in subject.schemes:
+        from .bands import rope_sites_of
+
+        rope_sites_of(subject)
+        band_run, band_texts = _band_reducer(units)
+    rec = _record(subject, units, want_counting and heads is None, progress, bands=band_run)
     X, pos, shuf, unit_of = _dataset(units, rec.hidden, seed)
     groups = groups_u[unit_of]
     layers = _probe_layers(X, pos, shuf, groups, alphas, folds, desc="ridge probes", show=progress)
@@ -371,10 +477,12 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
             table = _counting_heads(subject, rec.results["weights"])
         count_info = _counting_check(subject, table, table_u, layers)
     band_info = None
-    if bands and "rope" in subject.schemes:
-        from .bands import rope_bands
+    if band_run is not None:
+        from .bands import bands_from
 
-        _progress.note("probe: RoPE frequency bands", progress)
-        band_info = rope_bands(subject, units=units[: max(2, min(len(units), 8))])
+        if not band_texts:
+            raise AttnposError("The bands need texts of at least two tokens.")
+
+        band_info = bands_from(subject, band_run, band_texts)
     return ProbeResult(model=subject.describe(), layers=layers, positions=positions, settings=settings,
                        counting=count_info, bands=band_info, notes=notes)

@@ -144,10 +144,25 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         return _load_gguf(loc, torch_dtype, scheme=scheme, training_length=training_length,
                           allow_missing_weights=allow_missing_weights)
     p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
+    reader = None
     if use_safetensors:
         problem = position_tensor_problem(p)
         if problem:
             raise AttnposError(f"{p}: {problem}")
+        # the weight files are hashed and checked for NaN/inf in a thread of their own while transformers is
+        # imported and builds the model (see WeightFiles); the result is awaited below
+        reader = WeightFiles(weight_files(p))
+    try:
+        return _load_folder(loc, torch_dtype, reader, scheme=scheme, trust_remote_code=trust_remote_code,
+                            training_length=training_length, allow_missing_weights=allow_missing_weights)
+    finally:
+        if reader is not None:
+            reader.stop()
+
+
+def _load_folder(loc, torch_dtype, reader, *, scheme, trust_remote_code, training_length,
+                 allow_missing_weights) -> Subject:
+    p, name, cfg_raw, use_safetensors = loc.path, loc.name, loc.config, loc.safetensors
     from transformers import AutoConfig, AutoTokenizer
 
     if loc.reference or str(cfg_raw.get("model_type", "")).startswith("attnpos-"):
@@ -194,8 +209,17 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
     if getattr(tokenizer, "vocab_size", 1) == 0:
         raise AttnposError(f"The tokenizer in {p} has an empty vocabulary, so no text can be turned into tokens. Save "
                            "the model's tokenizer into the folder again with `tokenizer.save_pretrained(folder)`.")
-    subject = from_model(model, tokenizer, name=safe_text(name), path=safe_text(str(p)), scheme=scheme,
-                         training_length=training_length)
+    digest = None
+    if reader is not None:
+        files = reader.result()
+        bad = sorted(set(files.nonfinite) - set(unused))     # a tensor the model does not use is never measured
+        if bad:
+            raise nonfinite_error(bad)
+        digest = files.digest
+        if not files.covers(torch_dtype):      # a narrower dtype than the files' can overflow to inf: check it
+            _refuse_nonfinite(model)
+    subject = _wrap(model, tokenizer, name=safe_text(name), path=safe_text(str(p)), scheme=scheme,
+                    training_length=training_length, weights=digest)
     subject.missing_weights = random_init
     if random_init:
         subject.notes.append(f"{len(random_init)} tensor(s) missing from the weights or of another shape were left "
@@ -380,18 +404,20 @@ def _model_class(config):
 def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "", scheme: str | list[str] | None = None,
                training_length: int | None = None) -> Subject:
     """Wrap a model already in memory (e.g. built from a config in a test) as a :class:`Subject`."""
+    return _wrap(model, tokenizer, name=name, path=path, scheme=scheme, training_length=training_length)
+
+
+def _wrap(model, tokenizer, *, name: str, path: str, scheme, training_length, weights: str | None = None) -> Subject:
+    """:func:`from_model`; ``weights``: the digest of the weight files the model was loaded from, whose tensors
+    were already checked for NaN/inf (:class:`WeightFiles`), else the parameters are checked and hashed here."""
     model.eval()
     config = model.config
     devices = sorted({str(t.device) for t in list(model.parameters()) + list(model.buffers())} - {"cpu"})
     if devices:
         raise AttnposError(f"The model's weights are on {', '.join(devices)}; attnpos records on the CPU. "
                            "Move the model first with `model.to('cpu')`, or load it with attnpos.load(folder).")
-    bad = has_nonfinite_weights(model)
-    if bad:
-        raise AttnposError(f"The checkpoint holds NaN or infinite values in {len(bad)} parameter(s) "
-                           f"({', '.join(bad[:4])}{', …' if len(bad) > 4 else ''}), so its attention cannot be "
-                           "measured. Repair or re-export the checkpoint (a NaN often comes from a diverged "
-                           "training run or a failed conversion).")
+    if weights is None:
+        _refuse_nonfinite(model)
     cfg_dict = config.to_dict()
     problem = position_config_problem(cfg_dict)
     if problem:
@@ -453,7 +479,7 @@ def from_model(model, tokenizer, *, name: str = "in-memory model", path: str = "
                    architecture=type(model).__name__, sites=sites, causal=causal,
                    context_limit=int(limit) if limit else None,
                    training_length=int(train_len) if train_len else None,
-                   fingerprint=fingerprint(model), uses_position_ids=uses_pos, n_heads=n_heads,
+                   fingerprint=fingerprint(model, weights=weights), uses_position_ids=uses_pos, n_heads=n_heads,
                    is_encoder_decoder=is_ed, notes=notes, excluded=excluded, rope_fraction=fraction)
 
 
@@ -611,24 +637,187 @@ def _uses_position_ids(model, sites) -> bool:
 
 # ---------------------------------------------------------------------------------------------------- fingerprint
 
-def fingerprint(model) -> str:
-    """blake2b over the config (as JSON, minus volatile fields) and every parameter and buffer's bytes."""
+def fingerprint(model, *, weights: str | None = None) -> str:
+    """blake2b over the config (as JSON, minus volatile fields) and the weights: every parameter and buffer's bytes,
+    or — for a model loaded from safetensors files — ``weights``, the digest of those files' bytes
+    (:class:`WeightFiles`) and the dtype the model keeps them in."""
     h = hashlib.blake2b(digest_size=20)
     cfg = model.config.to_dict()
     for k in ("_name_or_path", "transformers_version", "_attn_implementation_autoset", "attn_implementation",
               "_attn_implementation", "dtype", "torch_dtype", "architectures"):
         cfg.pop(k, None)
     h.update(json.dumps(cfg, sort_keys=True, default=str).encode())
+    if weights is not None:
+        p = next(iter(model.parameters()), None)
+        h.update(f"safetensors files {weights} kept in {p.dtype if p is not None else None}".encode())
+        return h.hexdigest()
     for n, t in sorted(list(model.state_dict().items()), key=lambda kv: kv[0]):
         h.update(n.encode())
         a = t.detach().cpu().contiguous()
         if a.dtype == torch.bfloat16:
             a = a.float()
-        h.update(a.numpy().tobytes())
+        h.update(memoryview(a.numpy().reshape(-1)).cast("B"))     # the bytes without a copy
     return h.hexdigest()
 
 
 def has_nonfinite_weights(model) -> list[str]:
     """Names of parameters holding NaN or inf."""
-    return [n for n, p in model.named_parameters() if not torch.isfinite(p).all()]
+    return [n for n, p in model.named_parameters() if p.is_floating_point() and not _all_finite(p.detach())]
 
+
+def _all_finite(t: torch.Tensor) -> bool:
+    # a sum is finite only if every term is (NaN and ±inf never cancel); an overflowing sum of finite values is
+    # told apart by the exact check
+    with torch.no_grad():
+        return bool(torch.isfinite(t.sum())) or bool(torch.isfinite(t).all())
+
+
+def nonfinite_error(bad: list[str]) -> AttnposError:
+    return AttnposError(f"The checkpoint holds NaN or infinite values in {len(bad)} parameter(s) "
+                        f"({', '.join(bad[:4])}{', …' if len(bad) > 4 else ''}), so its attention cannot be "
+                        "measured. Repair or re-export the checkpoint (a NaN often comes from a diverged "
+                        "training run or a failed conversion).")
+
+
+def _refuse_nonfinite(model) -> None:
+    bad = has_nonfinite_weights(model)
+    if bad:
+        raise nonfinite_error(bad)
+
+
+def weight_files(folder) -> list:
+    """The safetensors files transformers loads from ``folder``: those its index names, else ``model.safetensors``,
+    else every ``*.safetensors`` file."""
+    from pathlib import Path
+
+    folder = Path(folder)
+    for index in sorted(folder.glob("*.safetensors.index.json")):
+        try:
+            names = sorted(set(json.loads(index.read_text(encoding="utf-8"))["weight_map"].values()))
+        except (OSError, ValueError, KeyError, TypeError, AttributeError):
+            continue
+        if names and all((folder / n).is_file() for n in names):
+            return [folder / n for n in names]
+    if (folder / "model.safetensors").is_file():
+        return [folder / "model.safetensors"]
+    return sorted(folder.glob("*.safetensors"))
+
+
+# safetensors dtype → (numpy dtype of its bits, exponent mask or None for a float type checked by its sum)
+_FLOATS = {"F64": ("<f8", None), "F32": ("<f4", None), "F16": ("<u2", 0x7C00), "BF16": ("<u2", 0x7F80)}
+# dtypes a file's floats may be loaded into without a finite value becoming infinite (exact or wider range)
+_COVERED_BY = {torch.float32: {"F32", "F16", "BF16"}, torch.bfloat16: {"F16", "BF16"}, torch.float16: {"F16"}}
+
+
+@dataclass
+class WeightsRead:
+    digest: str                  # sha256 over the files' names and bytes
+    nonfinite: list[str]         # tensors holding NaN or ±inf
+    float_dtypes: set            # safetensors dtypes of the floating-point tensors
+
+    def covers(self, dtype: torch.dtype) -> bool:
+        """Whether the finite check of the files holds for the model's weights kept in ``dtype``."""
+        return self.float_dtypes <= _COVERED_BY.get(dtype, set())
+
+
+class WeightFiles:
+    """Reads safetensors files once, in large chunks, in a thread of its own: the sha256 of their bytes (the
+    fingerprint's weights part; any changed weight changes it) and the names of tensors holding NaN or ±inf. It
+    runs beside transformers' own loading of the same files, so a load costs little more than transformers'
+    ``from_pretrained``. A file that cannot be read is left to transformers' loading to report."""
+
+    CHUNK = 8 << 20
+
+    def __init__(self, files: list) -> None:
+        import threading
+
+        self.files = list(files)
+        self._stop = threading.Event()
+        self._out: WeightsRead | None = None
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, name="attnpos-weights", daemon=True)
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._stop.set()
+
+    def result(self) -> WeightsRead:
+        self._thread.join()
+        if self._error is not None:
+            raise AttnposError(f"Could not read the weights: {type(self._error).__name__}: "
+                               f"{_one_line(self._error)}. Re-save the checkpoint with "
+                               "`model.save_pretrained(folder)`.")
+        return self._out
+
+    def _run(self) -> None:
+        try:
+            self._out = read_weight_files(self.files, stop=self._stop, chunk=self.CHUNK)
+        except BaseException as exc:  # noqa: BLE001 - handed to the caller by result()
+            self._error = exc
+
+
+def read_weight_files(files, *, stop=None, chunk: int = 8 << 20) -> WeightsRead:
+    """sha256 over the names and bytes of safetensors ``files`` and the tensors among them holding NaN or ±inf,
+    reading each file once from the start to the end (see :class:`WeightFiles`)."""
+    from .sizes import read_header
+
+    h = hashlib.sha256()
+    bad: list[str] = []
+    kinds: set = set()
+    buf = bytearray(chunk)
+    view = memoryview(buf)
+    for path in files:
+        h.update(f"{os.path.basename(path)}\0".encode())
+        header = read_header(path)
+        with open(path, "rb") as f:
+            n = int.from_bytes(f.read(8), "little")
+            h.update(n.to_bytes(8, "little"))
+            h.update(f.read(n))
+            start = 8 + n
+            spans = sorted((int(v["data_offsets"][0]), int(v["data_offsets"][1]), k, v.get("dtype"))
+                           for k, v in header.items() if k != "__metadata__" and isinstance(v, dict))
+            at = 0                                            # position in the data section
+            for b0, b1, name, dt in spans:
+                kind = _FLOATS.get(dt)
+                if kind is not None:
+                    kinds.add(dt)
+                if b0 > at:                                   # bytes between tensors: hashed all the same
+                    _hash_span(f, h, view, b0 - at, None, stop)
+                    at = b0
+                if b1 > at:
+                    if not _hash_span(f, h, view, b1 - at, kind, stop):
+                        bad.append(name)
+                    at = b1
+            while True:                                       # anything after the last tensor
+                got = f.readinto(view)
+                if not got:
+                    break
+                h.update(view[:got])
+    return WeightsRead(digest=h.hexdigest(), nonfinite=sorted(bad), float_dtypes=kinds)
+
+
+def _hash_span(f, h, view, length: int, kind, stop) -> bool:
+    """Read ``length`` bytes of ``f`` in chunks into ``view``, hash them, and (``kind`` given) check they hold no
+    NaN or ±inf; False when they do."""
+    import numpy as np
+
+    finite = True
+    size = np.dtype(kind[0]).itemsize if kind is not None else 1
+    step = (len(view) // size) * size
+    while length > 0:
+        if stop is not None and stop.is_set():
+            raise AttnposError("the weights reader was stopped")
+        want = min(step, length)
+        got = f.readinto(view[:want])
+        if got != want:
+            raise AttnposError("a weights file is shorter than its header says")
+        h.update(view[:got])
+        length -= got
+        if kind is not None and finite:
+            a = np.frombuffer(view[:got], dtype=kind[0])
+            if kind[1] is None:
+                with np.errstate(all="ignore"):
+                    finite = bool(np.isfinite(a.sum())) or bool(np.isfinite(a).all())
+            else:
+                finite = not bool(((a & kind[1]) == kind[1]).any())
+    return finite

@@ -214,3 +214,81 @@ def test_folder_with_only_a_gguf_file_points_at_the_file(tmp_path):
     with pytest.raises(attnpos.AttnposError, match="give the .gguf file itself"):
         locate(tmp_path)
     assert str(f) in str(pytest.raises(attnpos.AttnposError, locate, tmp_path).value)
+
+
+# ------------------------------------------------------------------------------------- weights read at load
+
+def _saved(model, folder):
+    model.save_pretrained(folder)
+    tiny.tokenizer().save_pretrained(folder)
+    return folder
+
+
+def test_fingerprint_is_stable_and_follows_every_weight(tmp_path):
+    # same folder → same fingerprint; one weight changed by one float32 step → another; another dtype → another
+    import torch
+
+    model = tiny.build("llama", layers=2)
+    a = _saved(model, tmp_path / "a")
+    first = attnpos.load(a).fingerprint
+    assert attnpos.load(a).fingerprint == first
+    assert _saved(model, tmp_path / "again") and attnpos.load(tmp_path / "again").fingerprint == first
+    assert attnpos.load(a, dtype="bfloat16").fingerprint != first
+    for name in ("model.layers.1.mlp.down_proj.weight", "model.norm.weight", "model.embed_tokens.weight"):
+        changed = tiny.build("llama", layers=2)
+        p = dict(changed.named_parameters())[name]
+        with torch.no_grad():
+            flat = p.view(-1)
+            flat[-1] = torch.nextafter(flat[-1], torch.tensor(float("inf")))
+        b = _saved(changed, tmp_path / name.replace(".", "_"))
+        assert attnpos.load(b).fingerprint != first, name
+
+
+def test_weight_file_check_finds_every_nonfinite_value_in_each_float_type(tmp_path):
+    # the file check against torch.isfinite over the same tensors (the check a loaded model had before), across
+    # chunk boundaries (a chunk of 64 bytes here), in float32, float16 and bfloat16, with sums that overflow
+    import torch
+    from safetensors.torch import save_file
+
+    from attnpos.subject import read_weight_files
+
+    rng = np.random.default_rng(0)
+    tensors = {}
+    for dt in (torch.float32, torch.float16, torch.bfloat16):
+        tag = str(dt).replace("torch.", "")
+        top = float(torch.finfo(dt).max)
+        tensors[f"{tag}.plain"] = torch.from_numpy(rng.normal(size=(7, 5))).to(dt)
+        tensors[f"{tag}.huge"] = torch.full((9,), top, dtype=dt)        # finite, but the sum overflows
+        for i, bad in enumerate((float("nan"), float("inf"), float("-inf"))):
+            t = torch.from_numpy(rng.normal(size=(37,))).to(dt)
+            t[(11 * i + 5) % 37] = bad
+            tensors[f"{tag}.bad{i}"] = t
+    tensors["ints"] = torch.arange(10)
+    path = tmp_path / "w.safetensors"
+    save_file(tensors, str(path))
+    out = read_weight_files([path], chunk=64)
+    want = sorted(n for n, t in tensors.items() if t.is_floating_point() and not torch.isfinite(t).all())
+    assert out.nonfinite == want and len(want) == 9
+    assert out.float_dtypes == {"F32", "F16", "BF16"}
+    assert read_weight_files([path]).digest == out.digest                # chunking changes nothing
+    import hashlib
+    raw = path.read_bytes()
+    assert out.digest == hashlib.sha256(b"w.safetensors\0" + raw).hexdigest()   # every byte of the file
+
+
+def test_narrower_dtype_than_the_files_is_checked_after_loading(tmp_path):
+    # float32 weights above float16's largest value (65504, IEEE 754 binary16) become inf in float16: the file
+    # holds no inf, the loaded model does, and the load is refused
+    import torch
+
+    model = tiny.build("llama", layers=1)
+    with torch.no_grad():
+        model.model.layers[0].mlp.up_proj.weight[0, 0] = 1e6
+    d = _saved(model, tmp_path / "big")
+    assert attnpos.load(d).fingerprint                                   # fine in float32
+    try:
+        attnpos.subject.weights_dtype("float16")
+    except attnpos.AttnposError:
+        pytest.skip("this CPU build of torch cannot compute in float16")
+    with pytest.raises(attnpos.AttnposError, match=r"NaN or infinite.*up_proj"):
+        attnpos.load(d, dtype="float16")

@@ -14,7 +14,8 @@ import attnpos
 from attnpos.cli import main as cli_main
 from attnpos import probes, texts as texts_mod
 from attnpos.core import thresholds
-from attnpos.bands import rope_bands
+from attnpos import bands as bands_mod
+from attnpos.bands import BandEnergy, rope_bands
 
 import tiny
 
@@ -60,6 +61,73 @@ def test_alpha_choice_matches_sklearn_ridge():
             s += ((m.predict((X[te] - mu) / sd) - y[te]) ** 2).sum()
         sse.append(s)
     assert got == alphas[int(np.argmin(sse))]
+
+
+def _reference_cross_validated(X, Y, groups, alphas, folds):
+    """The probe's fit as it was first written (standardised copies of every fold, an eigen-decomposition per inner
+    fold, scikit-learn's Ridge for the outer fit): the reference for the faster path from per-fold sums."""
+    from sklearn.linear_model import Ridge
+    from sklearn.model_selection import GroupKFold
+
+    def standardise(Xtr, *others):
+        mu, sd = Xtr.mean(0), Xtr.std(0)
+        sd = np.where(sd > 1e-8 * max(float(sd.max()), 1e-30), sd, 1.0)
+        return [(Xtr - mu) / sd] + [(o - mu) / sd for o in others]
+
+    def choose(X, Y, groups):
+        n_groups = len(np.unique(groups))
+        if n_groups < 2:
+            return np.full(Y.shape[1], alphas[len(alphas) // 2])
+        sse = np.zeros((len(alphas), Y.shape[1]))
+        for tr, te in GroupKFold(n_splits=min(probes.INNER_FOLDS, n_groups)).split(X, Y, groups):
+            Xtr, Xte = standardise(X[tr], X[te])
+            ym = Y[tr].mean(0)
+            lam, V = np.linalg.eigh(Xtr.T @ Xtr)
+            lam = np.clip(lam, 0.0, None)
+            Vb = V.T @ (Xtr.T @ (Y[tr] - ym))
+            P = Xte @ V
+            for a_i, a in enumerate(alphas):
+                sse[a_i] += ((Y[te] - (P @ (Vb / (lam + a)[:, None]) + ym)) ** 2).sum(0)
+        return np.asarray(alphas)[sse.argmin(0)]
+
+    pred, chosen = np.zeros_like(Y), []
+    for tr, te in GroupKFold(n_splits=min(folds, len(np.unique(groups)))).split(X, Y, groups):
+        a = choose(X[tr], Y[tr], groups[tr])
+        chosen.append(a)
+        Xtr, Xte = standardise(X[tr], X[te])
+        pred[te] = Ridge(alpha=a, fit_intercept=True).fit(Xtr, Y[tr]).predict(Xte)
+    sst = ((Y - Y.mean(0)) ** 2).sum(0)
+    return {"pred": pred, "r2": 1.0 - ((Y - pred) ** 2).sum(0) / sst, "alpha": np.median(np.stack(chosen), 0)}
+
+
+def _hidden_dataset():
+    """Hidden states of a tiny Llama over a few invented texts of different lengths, with position targets."""
+    s = tiny.subject("llama", layers=2, heads=4, hidden=64)
+    units = texts_mod.prepare(s, texts_mod.from_strings(TEXTS + [
+        "The lighthouse keeper logs each passing boat, its colour, its flag and the hour it went by.",
+        "Two buckets of river clay, one of sand, and a spoon of ash make the glaze for the blue jars.",
+        "At the market the cheese stall opens last and closes first, yet it sells out every week."]))
+    rec = probes._record(s, units, False)
+    X, pos, shuf, unit_of = probes._dataset(units, rec.hidden, 0)
+    Y = np.stack([pos, np.log1p(pos), shuf], 1).astype(np.float64)
+    return X, Y, unit_of
+
+
+@pytest.mark.parametrize("layer", [0, 2])
+def test_fit_from_sums_equals_the_reference_fit(layer):
+    # the probe's fit (per-fold sums, Cholesky per penalty) against the first implementation: the same penalties
+    # and the same held-out predictions to float tolerance, on hidden states of a real forward pass and on
+    # features with a large common offset and a constant column (where sums lose digits first)
+    X, Y, groups = _hidden_dataset()
+    rng = np.random.default_rng(3)
+    offset = np.concatenate([X[layer], np.full((len(Y), 1), 7.5)], 1) + 300.0 * rng.normal(size=X.shape[2] + 1)
+    for feats in (X[layer], offset):
+        for folds, alphas in ((5, probes.ALPHAS), (3, probes.ALPHAS[2:5]), (2, (1.0,))):
+            want = _reference_cross_validated(feats.astype(np.float64), Y, groups, list(alphas), folds)
+            got = probes.cross_validated(feats, Y, groups, alphas=alphas, folds=folds)
+            np.testing.assert_array_equal(got["alpha"], want["alpha"])
+            np.testing.assert_allclose(got["pred"], want["pred"], rtol=1e-6, atol=1e-6 * np.abs(Y).max())
+            np.testing.assert_allclose(got["r2"], want["r2"], rtol=1e-7, atol=1e-9)
 
 
 def test_cross_validated_signal_and_noise():
@@ -262,3 +330,72 @@ def test_single_live_pair_takes_all_energy(pair):
 def test_bands_refuse_models_without_rope():
     with pytest.raises(attnpos.AttnposError):
         rope_bands(tiny.subject("gpt2"), TEXTS)
+
+
+class _PairLoopBands(BandEnergy):
+    """The pair energies and band parts as the reducer first computed them: one (T, T) tensor per rotary pair (the
+    reference for the faster products of :meth:`BandEnergy.update`)."""
+
+    name = "bands-loop"
+
+    def update(self, cap):
+        key_ = (cap.site.stack, cap.site.layer)
+        if key_ not in self.rope or cap.query is None:
+            return
+        q, k = cap.query.float(), cap.key.float()
+        n, T, d = q.shape
+        rd = cap.rotary[0].shape[-1]
+        layout, theta = bands_mod._layout(*cap.rotary)
+        if self.layout is None:
+            self.layout, self.rotary_dims, self.head_dim, self.theta = layout, rd, d, theta
+        pairs = bands_mod.pairs_of(layout, rd)
+        P = len(pairs)
+        A = cap.allowed.float()
+        acc = self.energy.setdefault(key_, np.zeros((self.H, P + 1)))
+        hs = slice(cap.head0, cap.head0 + n)
+        member = bands_mod.band_of_pairs(theta)
+        parts = {b: torch.zeros(n, T, T) for b in bands_mod.BANDS}
+        for m, (a, b) in enumerate(pairs):
+            c = q[:, :, a, None] * k[:, None, :, a] + q[:, :, b, None] * k[:, None, :, b]
+            acc[hs, m] += ((c * c) * A).sum((-1, -2)).double().numpy()
+            parts[member[m]] += c
+        self._remove(cap, key_, hs, q, k, parts, A)
+        if rd < d:
+            c = q[:, :, rd:] @ k[:, :, rd:].transpose(-1, -2)
+            acc[hs, P] += ((c * c) * A).sum((-1, -2)).double().numpy()
+        if cap.head0 == 0:
+            self.count[key_] = self.count.get(key_, 0.0) + float(A.sum())
+        self.max_t = max(self.max_t, T)
+
+
+@pytest.mark.parametrize("rotary", [1.0, 0.5], ids=["full", "partial"])
+def test_band_products_equal_the_pair_loop(rotary):
+    # the same recording reduced twice: by the reducer and by the per-pair loop above; energies and the removal
+    # statistics must agree to float tolerance
+    from attnpos.capture import record
+
+    model = tiny.build("llama", layers=2, heads=4, hidden=64, num_key_value_heads=2, partial_rotary_factor=rotary)
+    s = attnpos.from_model(model, tiny.tokenizer())
+    rec = record(s, TEXTS, [BandEnergy(), _PairLoopBands()])
+    fast, loop = rec.results["bands"], rec.results["bands-loop"]
+    assert fast.energy.keys() == loop.energy.keys() and fast.energy
+    for key in fast.energy:
+        np.testing.assert_allclose(fast.energy[key], loop.energy[key], rtol=1e-4, atol=1e-8)
+        np.testing.assert_allclose(fast.removal[key], loop.removal[key], rtol=1e-4, atol=1e-6)
+        assert fast.count[key] == loop.count[key]
+
+
+def test_probe_bands_equal_a_recording_of_their_own():
+    # the probe adds the band reducer to its own recording: the same result as rope_bands on the same texts
+    s = tiny.subject("llama", layers=2, heads=4, hidden=64)
+    texts = TEXTS + ["The kettle sang twice before the baker noticed the rising loaves by the window."]
+    res = probes.probe(s, texts, untrained=False, counting=True)
+    units = texts_mod.prepare(s, texts_mod.as_raw(texts), warn=False)
+    alone = rope_bands(s, units=units)
+    assert res.bands.to_json()["heads"] and len(res.bands.heads) == len(alone.heads)
+    for a, b in zip(res.bands.heads, alone.heads):
+        assert (a["layer"], a["head"], a["band"], a["used_band"]) == (b["layer"], b["head"], b["band"], b["used_band"])
+        np.testing.assert_allclose(a["shares"], b["shares"], rtol=1e-6, atol=1e-9)
+        for band in b["removal"]:
+            np.testing.assert_allclose(list(a["removal"][band].values()), list(b["removal"][band].values()),
+                                       rtol=1e-6, atol=1e-9)

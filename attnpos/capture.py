@@ -134,7 +134,8 @@ class Reducer:
 
     name = "reducer"
     # True: the reducer takes its captures in any order of texts (several texts may share one forward pass, so
-    # layer l of texts 0, 1, 2 comes before layer l + 1 of text 0). Texts are batched only when every reducer says so.
+    # layer l of texts 0, 1, 2 comes before layer l + 1 of text 0). Texts are batched only when every reducer says so
+    # (read after ``begin``, which may decide it from the units).
     any_order = False
 
     def begin(self, subject: Subject, units: Sequence[TextUnit]) -> None:  # noqa: D401

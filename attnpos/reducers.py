@@ -564,6 +564,8 @@ class SplitStats(Reducer):
         # axis 0 of b, ssw, gram_key (and of pair) is the resampling unit: a text, or past max_units texts a block
         # of consecutive windows whose sums are added up (see windows_per_unit and _BlockSums)
         self.per_unit, n = windows_per_unit(len(units), self.max_units)
+        # blocks of windows are closed window by window: then the windows must come one after another
+        self.any_order = self.per_unit == 1
         p = self.design.p
         self.b = np.zeros((n, S, H, p))
         self.ssw = np.zeros((n, S, H))

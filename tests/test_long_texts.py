@@ -44,8 +44,10 @@ def units(rope):
 
 
 def _record(rope, units, max_units):
+    # one text per forward pass on both sides (blocks of windows never batch texts), so the sums are the same
+    # arithmetic; batched against one-at-a-time is tests/test_batching.py's question
     return record(rope, units=units, reducers=[WeightStats(max_units=max_units), SplitStats(max_units=max_units)],
-                  progress=False)
+                  progress=False, batch=False)
 
 
 def test_blocks_of_windows_keep_every_point_estimate(rope, units):
@@ -84,11 +86,11 @@ def test_a_block_resample_is_the_per_window_fit_with_its_windows_weighted(rope, 
     assert fit.boot_weights.shape == (12, 5) and (fit.boot_weights.sum(1) == 5).all()
     m = blocks.results["split"]["windows_per_unit"]
     ref = Split()
-    _, _, _, coef = ref._fit_weights(per_window, np.ones(26))
+    _, _, _, coef = (x[0] for x in ref._fit_weights(per_window, np.ones((1, 26))))   # one row per weighting
     P, V = ref._pair_products(per_window, coef)
     for k in range(12):
         w = fit.boot_weights[k][np.arange(26) // m]
-        s4, _, slope, _ = ref._fit_weights(per_window, w)
+        s4, _, slope, _ = (x[0] for x in ref._fit_weights(per_window, w[None]))
         np.testing.assert_allclose(fit.boot_shares[k], ref._with_pair(s4, P, V, w), rtol=0, atol=1e-9)
         np.testing.assert_allclose(fit.boot_slope[k], slope, rtol=1e-9, atol=1e-12)
     assert (fit.shares_hi - fit.shares_lo > 1e-3).any()

@@ -345,7 +345,7 @@ def combine(runs: list[dict]) -> dict:
     out["peak_rss_mb"] = max(r["peak_rss_mb"] for r in runs)
     out["base_rss_mb"] = min(r["base_rss_mb"] for r in runs if r.get("base_rss_mb") is not None) \
         if any(r.get("base_rss_mb") is not None for r in runs) else None
-    for k in ("shift_seconds", "induction_seconds", "record_seconds"):
+    for k in ("shift_seconds", "induction_seconds", "record_seconds", "first_seconds"):
         if k in best:
             out[k] = min(r[k] for r in runs)
     out["rounds"] = len(runs)

@@ -60,7 +60,7 @@ def test_quick_bench_runs_and_writes_every_field(tmp_path):
         assert isinstance(entry["seconds"], float) and entry["seconds"] > 0
         assert isinstance(entry["peak_rss_mb"], float) and entry["peak_rss_mb"] > 0
     assert isinstance(shape["cases"]["C"]["record_seconds"], float)
-    for key in ("C/A", "C/A'", "C+/A", "C+/A'", "P/A", "L/A", "B/C", "record/A", "load/load_tf", "P_rss/A_rss",
+    for key in ("C/A", "C/A'", "C+/A", "C+/A'", "P/A", "L/A", "B/C", "record/A", "load/load_tf", "first load/load_tf", "P_rss/A_rss",
                 "C_rss/A_rss", "record_cpu/wall"):
         assert isinstance(shape["ratios"][key], float), key
     # B (output_attentions, per query head) and the scan agree on a grouped-query model too

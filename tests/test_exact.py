@@ -269,7 +269,19 @@ def test_families_table_matches_what_attnpos_does():
         assert kind == spec.kind, spec.name
         assert "/".join(sorted(set(s.schemes), key=spec.scheme.split("/").index)) == spec.scheme, spec.name
         assert s.rope_fraction == spec.rope_fraction, spec.name
-        assert record(s, [TEXT]).score_kind == spec.score_kind, spec.name
+        expected = spec.score_kind
+        if spec.name == "falcon" and _transformers_before(5, 25):
+            # transformers' own change: falcon reaches the attention functions from 5.25 on (its
+            # modeling_falcon.py); before, it computed attention inside the module
+            expected = "log-weights"
+        assert record(s, [TEXT]).score_kind == expected, spec.name
+
+
+def _transformers_before(major: int, minor: int) -> bool:
+    import transformers
+
+    got = tuple(int(x) for x in transformers.__version__.split(".")[:2])
+    return got < (major, minor)
 
 
 def test_readme_families_table_is_generated():

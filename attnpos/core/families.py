@@ -46,7 +46,9 @@ FAMILIES: tuple[FamilySpec, ...] = (
     FamilySpec("opt", "opt", "causal", "learned-absolute", "scores"),
     FamilySpec("bloom", "bloom", "causal", "alibi", "log-weights", "attention computed inside the module"),
     FamilySpec("mpt", "mpt", "causal", "alibi", "log-weights", "ALiBi flag in the nested `attn_config`"),
-    FamilySpec("falcon", "falcon", "causal", "rope", "log-weights", "attention computed inside the module"),
+    FamilySpec("falcon", "falcon", "causal", "rope", "scores",
+               "multi-query heads repeated as the model does; before transformers 5.25 its attention was computed "
+               "inside the module (log-weights)"),
     FamilySpec("bert", "bert", "encoder", "learned-absolute", "scores"),
     FamilySpec("distilbert", "distilbert", "encoder", "learned-absolute", "scores"),
     FamilySpec("albert", "albert", "encoder", "learned-absolute", "scores",

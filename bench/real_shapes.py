@@ -136,7 +136,7 @@ def make_texts(shape: str, seed: int = 0) -> list[str]:
     return [" ".join(f"w{i}" for i in rng.integers(3, s["vocab"], s["T"] - 1)) for _ in range(s["texts"])]
 
 
-def run_shape_case(case: str, shape: str, folder: Path, args, hand_written_stats, rss_mb, peak_rss_mb) -> dict:
+def run_shape_case(case: str, shape: str, folder: Path, args, forward_case, rss_mb, peak_rss_mb) -> dict:
     """One case of one shape in this (fresh) process."""
     import numpy as np
     import torch
@@ -181,24 +181,7 @@ def run_shape_case(case: str, shape: str, folder: Path, args, hand_written_stats
         tok = AutoTokenizer.from_pretrained(folder)
         ids = [torch.tensor([tok(t)["input_ids"]]) for t in texts]
         assert all(x.shape[1] == s["T"] for x in ids), [x.shape for x in ids]
-        if case == "B":
-            def once():
-                per_text = []
-                with torch.no_grad():
-                    for x in ids:
-                        out = model(input_ids=x, use_cache=False, output_attentions=True)
-                        per_text.append(hand_written_stats([a.float() for a in out.attentions], s["T"]))
-                        del out
-                return {k: np.mean([r[k] for r in per_text], axis=0) for k in per_text[0]}
-        else:
-            def once():
-                with torch.no_grad():
-                    for x in ids:
-                        model(input_ids=x, use_cache=False)
-
-        def warm():
-            with torch.no_grad():
-                model(input_ids=ids[0][:, :64], use_cache=False)
+        once, warm = forward_case(case, model, ids, s["T"])
     else:
         subject = attnpos.load(folder, dtype=s["dtype"])
         warm_texts = [" ".join(f"w{i}" for i in range(3, 66))]

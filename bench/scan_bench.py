@@ -162,6 +162,36 @@ def hand_written_stats(attentions, T: int):
 
 # ------------------------------------------------------------------------------------------------ a child
 
+def forward_case(case: str, model, ids, T: int):
+    """The timed call and the warm-up of cases A / A' (the plain forward over the texts one at a time) and B (the
+    same with ``output_attentions`` and the hand-written statistics, averaged over texts) — for the grid and for
+    the real shapes alike."""
+    import numpy as np
+    import torch
+
+    if case == "B":
+        def once():
+            per_text = []
+            with torch.no_grad():
+                for x in ids:
+                    out = model(input_ids=x, use_cache=False, output_attentions=True)
+                    per_text.append(hand_written_stats([a.float() for a in out.attentions], T))  # bf16 → float32
+                    del out
+            # texts have equal length, so the mean over texts equals the scan's pooled mean over queries
+            return {k: np.mean([r[k] for r in per_text], axis=0) for k in per_text[0]}
+    else:
+        def once():
+            with torch.no_grad():
+                for x in ids:
+                    model(input_ids=x, use_cache=False)
+
+    def warm():
+        with torch.no_grad():
+            model(input_ids=ids[0][:, :64], use_cache=False)
+
+    return once, warm
+
+
 def run_case(case: str, T: int, args) -> dict:
     import numpy as np
     import torch
@@ -181,30 +211,8 @@ def run_case(case: str, T: int, args) -> dict:
     warm_texts = make_texts(1, 64, seed=1)
     extra: dict = {}
 
-    if case in ("A", "A_sdpa"):
-        def once():
-            with torch.no_grad():
-                for x in ids:
-                    model(input_ids=x, use_cache=False)
-
-        def warm():
-            with torch.no_grad():
-                model(input_ids=ids[0][:, :64], use_cache=False)
-    elif case == "B":
-        def once():
-            per_text = []
-            with torch.no_grad():
-                for x in ids:
-                    out = model(input_ids=x, use_cache=False, output_attentions=True)
-                    per_text.append(hand_written_stats(out.attentions, T))
-                    del out
-            # texts have equal length, so the mean over texts equals the scan's pooled mean over queries
-            return {k: np.mean([r[k] for r in per_text], axis=0) for k in per_text[0]}
-
-        def warm():
-            with torch.no_grad():
-                out = model(input_ids=ids[0][:, :64], use_cache=False, output_attentions=True)
-                hand_written_stats(out.attentions, 64)
+    if case in ("A", "A_sdpa", "B"):
+        once, warm = forward_case(case, model, ids, T)
     else:
         def once():
             return attnpos.scan(subject, texts, n_boot=args.boot, shift=False, induction=False, progress=False)
@@ -282,7 +290,7 @@ def profile_scan(T: int | str, args) -> int:
 def child_main(args) -> None:
     try:
         if args.shape:
-            res = real_shapes.run_shape_case(args.child, args.shape, Path(args.folder), args, hand_written_stats,
+            res = real_shapes.run_shape_case(args.child, args.shape, Path(args.folder), args, forward_case,
                                              rss_mb, peak_rss_mb)
         else:
             res = run_case(args.child, args.T, args)

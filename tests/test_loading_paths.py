@@ -245,7 +245,10 @@ def test_fingerprint_is_stable_and_follows_every_weight(tmp_path):
 
 
 def test_weight_file_check_finds_every_nonfinite_value_in_each_float_type(tmp_path):
-    # the file check against torch.isfinite over the same tensors (the check a loaded model had before), across
+    # reference: torch.isfinite (a function of the general-purpose library) over the same tensors, read by
+    # safetensors' own loader; float16 / bfloat16 are IEEE 754 binary16 and the top half of binary32 (common
+    # practice, the safetensors dtype names F16/BF16). The file check against it (the check a loaded model had
+    # before), across
     # chunk boundaries (a chunk of 64 bytes here), in float32, float16 and bfloat16, with sums that overflow
     import torch
     from safetensors.torch import save_file
@@ -273,7 +276,8 @@ def test_weight_file_check_finds_every_nonfinite_value_in_each_float_type(tmp_pa
     assert read_weight_files([path]).digest == out.digest                # chunking changes nothing
     import hashlib
     raw = path.read_bytes()
-    assert out.digest == hashlib.sha256(b"w.safetensors\0" + raw).hexdigest()   # every byte of the file
+    # reference: hashlib's SHA-256 (FIPS 180-4) of the file name and every byte of the file
+    assert out.digest == hashlib.sha256(b"w.safetensors\0" + raw).hexdigest()
 
 
 def test_narrower_dtype_than_the_files_is_checked_after_loading(tmp_path):

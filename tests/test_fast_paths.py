@@ -381,3 +381,49 @@ def test_head_table_shift_columns_equal_the_result_lookups(subjects):
         assert r["shift_change"] == sh.change_of(key, h) and r["shift_verdict"] == sh.verdict_of(key, h)
         assert r["shift_change_ids"] == sh.change_of(key, h, "position-ids")
         assert r["shift_verdict_prefix"] == sh.verdict_of(key, h, "prefix")
+
+
+# ------------------------------------------------------------------ the induction test's pool of ordinary tokens
+
+def _pool_by_batch_decode(tok):
+    """The pool as first written: every non-special id decoded by the tokenizer's own ``batch_decode``."""
+    special = set(tok.all_special_ids) | set(tok.added_tokens_decoder)
+    ids = [i for i in range(min(len(tok), 50000)) if i not in special]
+    texts = tok.batch_decode([[i] for i in ids])
+    return [i for i, t in zip(ids, texts)
+            if t.strip() and t.isprintable() and "\ufffd" not in t and not induction._UNUSED.match(t.strip())]
+
+
+def _byte_level_tokenizer():
+    """A byte-level BPE trained here on the bundled sample texts: its single bytes decode to partial UTF-8."""
+    from pathlib import Path
+
+    from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
+    from transformers import PreTrainedTokenizerFast
+
+    corpus = [p.read_text() for p in sorted((Path(__file__).parent.parent / "sample_text").glob("*.txt"))]
+    bpe = Tokenizer(models.BPE())
+    bpe.pre_tokenizer = pre_tokenizers.ByteLevel(add_prefix_space=False)
+    bpe.decoder = decoders.ByteLevel()
+    bpe.train_from_iterator(corpus + ["naïve café — 東京"], trainers.BpeTrainer(
+        vocab_size=600, special_tokens=["<s>", "</s>"], initial_alphabet=pre_tokenizers.ByteLevel.alphabet()))
+    return PreTrainedTokenizerFast(tokenizer_object=bpe, bos_token="<s>", eos_token="</s>")
+
+
+@pytest.mark.parametrize("which", ["wordpiece", "byte-level"])
+def test_ordinary_pool_from_the_backend_equals_batch_decode(which, monkeypatch):
+    import copy
+
+    tok = copy.deepcopy(tiny.tokenizer()) if which == "wordpiece" else _byte_level_tokenizer()   # changed below
+    induction._POOLS.pop(tok, None)
+    want = _pool_by_batch_decode(tok)
+    assert 100 < len(want) < len(tok)               # something is left out, most is kept
+    assert induction.ordinary_pool(tok, 48) == want
+    # the second call in the process reads the cache and decodes nothing
+    monkeypatch.setattr(induction, "_decode_each", lambda *a: pytest.fail("decoded the vocabulary again"))
+    assert induction.ordinary_pool(tok, 48) == want
+    # a tokenizer whose special tokens changed is decoded again
+    tok.add_special_tokens({"additional_special_tokens": [tok.convert_ids_to_tokens(want[0])]})
+    monkeypatch.undo()
+    again = induction.ordinary_pool(tok, 48)
+    assert want[0] not in again and again == want[1:]

@@ -266,6 +266,8 @@ def shape_ratios(cases: dict, agreement) -> dict:
             "first load/load_tf": r(first("load"), first("load_tf")), "P_rss/A_rss": r(rss("P"), rss("A")),
             "C_rss/A_rss": r(rss("C"), rss("A")),
             "record_cpu/wall": c.get("record_cpu_per_wall") if c.get("status") == "ok" else None,
+            # the plain forward's own thread use: the floor the record's is compared with
+            "A_cpu/wall": (cases.get("A") or {}).get("cpu_per_wall") if sec("A") is not None else None,
             "agreement_B_vs_C": agreement(cases.get("B") or {}, c)}
 
 
@@ -280,7 +282,7 @@ def shape_targets(shape_results: list[dict]) -> dict:
 
 def shape_table(shape_results: list[dict]) -> str:
     cols = ("shape", "texts×T", "A s", "A' s", "C s", "C+ s", "P s", "L s", "load s", "load_tf s",
-            "C/A", "C/A'", "C+/A", "P/A", "L/A", "load ratio", "1st load", "rec cpu/wall", "A MB", "C MB", "P MB")
+            "C/A", "C/A'", "C+/A", "P/A", "L/A", "load ratio", "1st load", "rec cpu/wall", "A cpu/wall", "A MB", "C MB", "P MB")
 
     def f(x, nd=2):
         return "—" if x is None else f"{x:.{nd}f}"
@@ -300,7 +302,7 @@ def shape_table(shape_results: list[dict]) -> str:
         s = SHAPES[r["shape"]]
         rows.append((r["shape"], f"{s['texts']}×{s['T']}", sec("A"), sec("A_sdpa"), sec("C"), sec("Cplus"), sec("P"),
                      sec("L"), sec("load"), sec("load_tf"), f(q["C/A"]), f(q["C/A'"]), f(q["C+/A"]), f(q["P/A"]),
-                     f(q["L/A"]), f(q["load/load_tf"]), f(q["first load/load_tf"]), f(q["record_cpu/wall"]), mb("A"), mb("C"), mb("P")))
+                     f(q["L/A"]), f(q["load/load_tf"]), f(q["first load/load_tf"]), f(q["record_cpu/wall"]), f(q.get("A_cpu/wall")), mb("A"), mb("C"), mb("P")))
     widths = [max(len(row[k]) for row in rows) for k in range(len(cols))]
     lines = ["  ".join(c.rjust(w) for c, w in zip(row, widths)) for row in rows]
     lines.insert(1, "  ".join("-" * w for w in widths))

@@ -150,8 +150,9 @@ def load(path_or_name: str | os.PathLike, *, scheme: str | list[str] | None = No
         if problem:
             raise AttnposError(f"{p}: {problem}")
         # the weight files are hashed and checked for NaN/inf in a thread of their own while transformers is
-        # imported and builds the model (see WeightFiles); the result is awaited below
-        reader = WeightFiles(weight_files(p))
+        # imported and builds the model (see WeightFiles; files read before and unchanged since are not read
+        # again, see ReadCache); the result is awaited below
+        reader = WeightFiles.for_files(weight_files(p))
     try:
         return _load_folder(loc, torch_dtype, reader, scheme=scheme, trust_remote_code=trust_remote_code,
                             training_length=training_length, allow_missing_weights=allow_missing_weights)
@@ -728,21 +729,36 @@ class WeightFiles:
 
     CHUNK = 8 << 20
 
-    def __init__(self, files: list) -> None:
+    def __init__(self, files: list, *, cache: "ReadCache | None" = None, known: WeightsRead | None = None) -> None:
         import threading
 
         self.files = list(files)
         self._stop = threading.Event()
-        self._out: WeightsRead | None = None
+        self._out: WeightsRead | None = known
         self._error: BaseException | None = None
-        self._thread = threading.Thread(target=self._run, name="attnpos-weights", daemon=True)
-        self._thread.start()
+        self._cache = cache
+        self._thread = None
+        if known is None:
+            self._thread = threading.Thread(target=self._run, name="attnpos-weights", daemon=True)
+            self._thread.start()
+
+    @classmethod
+    def for_files(cls, files: list) -> "WeightFiles":
+        """The reader of ``files``: the stored result when :data:`READ_CACHE` knows these files unchanged, else a
+        thread that reads them (and stores what it found)."""
+        known = READ_CACHE.get(files)
+        return cls(files, known=known) if known is not None else cls(files, cache=READ_CACHE)
+
+    @property
+    def from_cache(self) -> bool:
+        return self._thread is None
 
     def stop(self) -> None:
         self._stop.set()
 
     def result(self) -> WeightsRead:
-        self._thread.join()
+        if self._thread is not None:
+            self._thread.join()
         if self._error is not None:
             raise AttnposError(f"Could not read the weights: {type(self._error).__name__}: "
                                f"{_one_line(self._error)}. Re-save the checkpoint with "
@@ -751,9 +767,136 @@ class WeightFiles:
 
     def _run(self) -> None:
         try:
+            before = self._cache.key(self.files) if self._cache is not None else None
             self._out = read_weight_files(self.files, stop=self._stop, chunk=self.CHUNK)
+            if before is not None:
+                self._cache.put(self.files, before, self._out)
         except BaseException as exc:  # noqa: BLE001 - handed to the caller by result()
             self._error = exc
+
+
+class ReadCache:
+    """What reading a set of weight files found (:class:`WeightsRead`: the sha256, the tensors holding NaN/±inf),
+    kept against the files' identity and status — path, device, inode, size, modification and status-change times
+    in nanoseconds — so that loading the same unchanged files again reads none of their bytes, the way a version
+    control system trusts a file's status before hashing it again (common practice).
+
+    Any write to a file changes its status-change time (which a program cannot set back), so a changed file is
+    always read again. Files modified less than :attr:`SETTLE` seconds before they were read are not stored (they
+    may still be being written). Kept in memory for the process and, unless ``ATTNPOS_WEIGHTS_CACHE=0``, in
+    ``weights-read.json`` under ``ATTNPOS_CACHE_DIR`` (default ``$XDG_CACHE_HOME/attnpos``, else
+    ``~/.cache/attnpos``) for later processes; a cache that cannot be read or written is ignored."""
+
+    FORMAT = "attnpos.weights-read/1"
+    SETTLE = 2.0
+    KEEP = 256
+
+    def __init__(self) -> None:
+        import threading
+
+        self._memory: dict[str, WeightsRead] = {}
+        self._lock = threading.Lock()
+
+    @staticmethod
+    def enabled() -> bool:
+        return os.environ.get("ATTNPOS_WEIGHTS_CACHE", "1").strip().lower() not in ("0", "off", "no", "false")
+
+    @staticmethod
+    def path():
+        from pathlib import Path
+
+        base = os.environ.get("ATTNPOS_CACHE_DIR") or os.path.join(
+            os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache"), "attnpos")
+        return Path(base) / "weights-read.json"
+
+    @staticmethod
+    def key(files) -> str | None:
+        """The files' identity and status as one key (None when a file cannot be looked at)."""
+        parts = []
+        try:
+            for f in files:
+                st = os.stat(f)
+                parts.append([os.path.abspath(f), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns])
+        except OSError:
+            return None
+        return hashlib.sha256(json.dumps(parts).encode()).hexdigest()
+
+    def get(self, files) -> WeightsRead | None:
+        if not self.enabled():
+            return None
+        k = self.key(files)
+        if k is None:
+            return None
+        with self._lock:
+            if k in self._memory:
+                return self._memory[k]
+        entry = self._read_disk().get(k)
+        if not isinstance(entry, dict):
+            return None
+        try:
+            found = WeightsRead(digest=str(entry["digest"]), nonfinite=[str(x) for x in entry["nonfinite"]],
+                                float_dtypes={str(x) for x in entry["float_dtypes"]})
+        except (KeyError, TypeError):
+            return None
+        if len(found.digest) != 64:
+            return None
+        with self._lock:
+            self._memory[k] = found
+        return found
+
+    def put(self, files, before: str, found: WeightsRead) -> None:
+        """Store ``found`` if the files' status is the one taken before reading them (``before``) and they have
+        settled."""
+        import time
+
+        if not self.enabled() or self.key(files) != before:
+            return
+        try:
+            newest = max(max(os.stat(f).st_mtime, os.stat(f).st_ctime) for f in files)
+        except (OSError, ValueError):
+            return
+        if time.time() - newest < self.SETTLE:
+            return
+        with self._lock:
+            self._memory[before] = found
+        self._write_disk(before, found)
+
+    def clear(self) -> None:
+        """Forget what this process keeps in memory (the file is left as it is)."""
+        with self._lock:
+            self._memory.clear()
+
+    def _read_disk(self) -> dict:
+        try:
+            data = json.loads(self.path().read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return {}
+        if not isinstance(data, dict) or data.get("format") != self.FORMAT or not isinstance(data.get("entries"), dict):
+            return {}
+        return data["entries"]
+
+    def _write_disk(self, k: str, found: WeightsRead) -> None:
+        import time
+
+        from .files import write_atomic
+
+        try:
+            entries = self._read_disk()
+            entries[k] = {"digest": found.digest, "nonfinite": list(found.nonfinite),
+                          "float_dtypes": sorted(found.float_dtypes), "stored": time.time()}
+            if len(entries) > self.KEEP:        # the most recently stored ones
+                keep = sorted(entries, key=lambda e: entries[e].get("stored", 0) if isinstance(entries[e], dict)
+                              else 0)[-self.KEEP:]
+                entries = {e: entries[e] for e in keep}
+            path = self.path()
+            path.parent.mkdir(parents=True, exist_ok=True)
+            write_atomic(path, json.dumps({"format": self.FORMAT, "entries": entries}, indent=0))
+        except Exception:  # noqa: BLE001 - a cache that cannot be written is only a slower next load
+            pass
+
+
+#: the process's :class:`ReadCache`
+READ_CACHE = ReadCache()
 
 
 def read_weight_files(files, *, stop=None, chunk: int = 8 << 20) -> WeightsRead:

@@ -6,6 +6,10 @@ os.environ.setdefault("HF_HUB_OFFLINE", "1")
 os.environ.setdefault("TRANSFORMERS_OFFLINE", "1")
 os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")   # before torch: no spinning threads on a shared machine
+if "ATTNPOS_CACHE_DIR" not in os.environ:             # the weights-read cache of the tests: never the user's own
+    import tempfile
+
+    os.environ["ATTNPOS_CACHE_DIR"] = tempfile.mkdtemp(prefix="attnpos-test-cache-")
 
 import pytest  # noqa: E402
 import torch  # noqa: E402

@@ -296,3 +296,91 @@ def test_narrower_dtype_than_the_files_is_checked_after_loading(tmp_path):
         pytest.skip("this CPU build of torch cannot compute in float16")
     with pytest.raises(attnpos.AttnposError, match=r"NaN or infinite.*up_proj"):
         attnpos.load(d, dtype="float16")
+
+
+# ------------------------------------------------------------------ the weights-read cache
+
+@pytest.fixture
+def read_cache(tmp_path, monkeypatch):
+    """An empty cache of its own (memory and file), files counted as settled at once, and a counter of reads."""
+    from attnpos import subject as subj
+
+    monkeypatch.setenv("ATTNPOS_CACHE_DIR", str(tmp_path / "cache"))
+    monkeypatch.delenv("ATTNPOS_WEIGHTS_CACHE", raising=False)
+    monkeypatch.setattr(subj.ReadCache, "SETTLE", 0.0)
+    subj.READ_CACHE.clear()
+    reads = []
+    real = subj.read_weight_files
+
+    def counted(files, **kw):
+        reads.append([Path(f).name for f in files])
+        return real(files, **kw)
+
+    monkeypatch.setattr(subj, "read_weight_files", counted)
+    yield reads
+    subj.READ_CACHE.clear()
+
+
+def test_unchanged_weight_files_are_not_read_again(tmp_path, read_cache):
+    # the cache's answer must equal reading the files (the fingerprint and the NaN/inf check), in this process and
+    # in the next (memory cleared: the cache file), and it must never answer for a file that changed
+    from attnpos import subject as subj
+
+    d = _saved(tiny.build("llama", layers=2), tmp_path / "m")
+    first = attnpos.load(d).fingerprint
+    assert len(read_cache) == 1 and subj.ReadCache.path().is_file()
+    assert attnpos.load(d).fingerprint == first and len(read_cache) == 1          # memory
+    subj.READ_CACHE.clear()
+    assert attnpos.load(d).fingerprint == first and len(read_cache) == 1          # the file, as a new process
+    # another folder with the same bytes is read on its own, and gives the same fingerprint
+    other = tmp_path / "copy"
+    other.mkdir()
+    for f in d.iterdir():
+        (other / f.name).write_bytes(f.read_bytes())
+    assert attnpos.load(other).fingerprint == first and len(read_cache) == 2
+
+
+def test_a_weight_file_changed_in_place_is_read_again_even_with_its_old_times(tmp_path, read_cache):
+    # a NaN written into the bytes of one weight (same size) with the modification time put back: the status-change
+    # time still moves (POSIX: utime sets it too), so the file is read and the load refused, as without a cache
+    import torch
+    from safetensors import safe_open
+
+    d = _saved(tiny.build("llama", layers=1), tmp_path / "m")
+    attnpos.load(d)
+    f = d / "model.safetensors"
+    st = os.stat(f)
+    with safe_open(str(f), "pt") as h:
+        name = next(k for k in h.keys() if k.endswith("q_proj.weight"))
+    header = json.loads(f.read_bytes()[8: 8 + int.from_bytes(f.read_bytes()[:8], "little")])
+    at = 8 + int.from_bytes(f.read_bytes()[:8], "little") + header[name]["data_offsets"][0]
+    with open(f, "r+b") as fh:
+        fh.seek(at)
+        fh.write(torch.tensor([float("nan")], dtype=torch.float32).numpy().tobytes())
+    os.utime(f, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert os.stat(f).st_size == st.st_size and os.stat(f).st_mtime_ns == st.st_mtime_ns
+    with pytest.raises(attnpos.AttnposError, match=r"NaN or infinite.*q_proj"):
+        attnpos.load(d)
+    assert len(read_cache) == 2
+
+
+def test_weights_cache_can_be_turned_off_and_survives_a_damaged_file(tmp_path, read_cache, monkeypatch):
+    from attnpos import subject as subj
+
+    d = _saved(tiny.build("llama", layers=1), tmp_path / "m")
+    monkeypatch.setenv("ATTNPOS_WEIGHTS_CACHE", "0")
+    fp = attnpos.load(d).fingerprint
+    attnpos.load(d)
+    assert len(read_cache) == 2 and not subj.ReadCache.path().exists()
+    monkeypatch.delenv("ATTNPOS_WEIGHTS_CACHE")
+    subj.ReadCache.path().parent.mkdir(parents=True)
+    subj.ReadCache.path().write_text("{ not json")                                # damaged: ignored, then replaced
+    assert attnpos.load(d).fingerprint == fp and len(read_cache) == 3
+    subj.READ_CACHE.clear()
+    assert attnpos.load(d).fingerprint == fp and len(read_cache) == 3
+    # files modified moments ago are not stored (they may still be being written)
+    monkeypatch.setattr(subj.ReadCache, "SETTLE", 3600.0)
+    fresh = _saved(tiny.build("llama", layers=1, seed=1), tmp_path / "fresh")
+    attnpos.load(fresh)
+    attnpos.load(fresh)
+    assert len(read_cache) == 5

@@ -16,7 +16,9 @@ every case loads the same folder the way a user's checkpoint is loaded:
 Cases, each in a fresh child process, in rounds:
 
   load_tf  ``AutoModelForCausalLM.from_pretrained`` + ``AutoTokenizer.from_pretrained`` of the folder
-  load     ``attnpos.load`` of the same folder (its checks included)
+  load     ``attnpos.load`` of the same folder (its checks included), with the weights-read cache in a folder of
+           the bench's own (the first round fills it, so later first loads find the files already read)
+  load_cold  the same with the cache off (``ATTNPOS_WEIGHTS_CACHE=0``): every load reads and hashes every byte
   A / A'   plain forward over the texts one at a time, eager / SDPA attention, no capture
   B        the hand-written path (``output_attentions=True`` + numpy statistics), for the agreement check
   C        ``attnpos.scan(..., shift=False, induction=False)``: capture, split with 100 resamples, roles
@@ -38,8 +40,9 @@ import tempfile
 import time
 from pathlib import Path
 
-SHAPE_CASES = ("load_tf", "load", "A", "A_sdpa", "B", "C", "Cplus", "P", "L")
-SHAPE_LABEL = {"load_tf": "load (transformers)", "load": "load (attnpos)", "A": "A eager", "A_sdpa": "A' sdpa",
+SHAPE_CASES = ("load_tf", "load", "load_cold", "A", "A_sdpa", "B", "C", "Cplus", "P", "L")
+SHAPE_LABEL = {"load_tf": "load (transformers)", "load": "load (attnpos)", "load_cold": "load (attnpos, no cache)",
+               "A": "A eager", "A_sdpa": "A' sdpa",
                "B": "B by hand", "C": "C scan", "Cplus": "C+ full scan", "P": "P probe", "L": "L length"}
 
 SMOL = dict(layers=30, heads=9, kv_heads=3, hidden=576, mlp=1536, vocab=49152, max_pos=8192, rope_theta=100000.0,
@@ -57,13 +60,14 @@ SHAPES = {
 FULL_SHAPES = ("smol-a", "smol-b", "1b")
 # the 1B shape's forward alone takes minutes on 2 cores: the probe and length cases are left out there by default
 DEFAULT_CASES = {"smol-a": SHAPE_CASES, "smol-b": SHAPE_CASES, "mini": SHAPE_CASES,
-                 "1b": ("load_tf", "load", "A", "A_sdpa", "C", "Cplus")}
+                 "1b": ("load_tf", "load", "load_cold", "A", "A_sdpa", "C", "Cplus")}
 # the issue's targets on these shapes (for the benchmark, not for unit tests)
 TARGETS = {
     "C/A <= 1.3 on smol-a": ("smol-a", "C/A", 1.3, "le"),
     "C+/A <= 2.0 on smol-a": ("smol-a", "C+/A", 2.0, "le"),
     "load/load_tf <= 1.0 on smol-a": ("smol-a", "load/load_tf", 1.0, "le"),
     "first load/load_tf <= 1.0 on smol-a": ("smol-a", "first load/load_tf", 1.0, "le"),
+    "uncached first load/load_tf <= 1.0 on smol-a": ("smol-a", "cold first load/load_tf", 1.0, "le"),
     "C/A <= 1.2 on smol-b": ("smol-b", "C/A", 1.2, "le"),
     "P/A <= 3 on smol-a": ("smol-a", "P/A", 3.0, "le"),
     "P peak RSS <= 1.5x A's on smol-a": ("smol-a", "P_rss/A_rss", 1.5, "le"),
@@ -150,11 +154,20 @@ def run_shape_case(case: str, shape: str, folder: Path, args, forward_case, rss_
     dtype = getattr(torch, s["dtype"])
     extra: dict = {}
 
-    if case in ("load", "load_tf"):
+    if case in ("load", "load_cold", "load_tf"):
         from transformers import AutoModelForCausalLM, AutoTokenizer
 
+        if case == "load_cold":
+            os.environ["ATTNPOS_WEIGHTS_CACHE"] = "0"
+        elif case == "load":
+            os.environ["ATTNPOS_CACHE_DIR"] = str(folder) + ".cache"
+        hits = []
+
         def once():
-            if case == "load":
+            if case in ("load", "load_cold"):
+                from attnpos.subject import READ_CACHE, weight_files
+
+                hits.append(READ_CACHE.get(weight_files(folder)) is not None)
                 return attnpos.load(folder, dtype=s["dtype"])
             m = AutoModelForCausalLM.from_pretrained(folder, dtype=dtype, attn_implementation="eager")
             return m.eval(), AutoTokenizer.from_pretrained(folder)
@@ -171,7 +184,8 @@ def run_shape_case(case: str, shape: str, folder: Path, args, forward_case, rss_
             once()
             runs.append(time.perf_counter() - t0)
         return {"status": "ok", "seconds": min(runs), "runs": runs, "first_seconds": first, "base_rss_mb": base,
-                "peak_rss_mb": peak_rss_mb(), "torch_threads": torch.get_num_threads()}
+                "peak_rss_mb": peak_rss_mb(), "torch_threads": torch.get_num_threads(),
+                **({"first_from_cache": hits[0], "later_from_cache": hits[1:]} if hits else {})}
 
     if case in ("A", "A_sdpa", "B"):
         from transformers import AutoModelForCausalLM, AutoTokenizer
@@ -263,7 +277,9 @@ def shape_ratios(cases: dict, agreement) -> dict:
             "C+/A'": r(sec("Cplus"), sec("A_sdpa")), "P/A": r(sec("P"), a), "L/A": r(sec("L"), a),
             "B/C": r(sec("B"), sec("C")), "record/A": r(c.get("record_seconds"), a),
             "load/load_tf": r(sec("load"), sec("load_tf")),
-            "first load/load_tf": r(first("load"), first("load_tf")), "P_rss/A_rss": r(rss("P"), rss("A")),
+            "first load/load_tf": r(first("load"), first("load_tf")),
+            "cold load/load_tf": r(sec("load_cold"), sec("load_tf")),
+            "cold first load/load_tf": r(first("load_cold"), first("load_tf")), "P_rss/A_rss": r(rss("P"), rss("A")),
             "C_rss/A_rss": r(rss("C"), rss("A")),
             "record_cpu/wall": c.get("record_cpu_per_wall") if c.get("status") == "ok" else None,
             # the plain forward's own thread use: the floor the record's is compared with
@@ -282,7 +298,7 @@ def shape_targets(shape_results: list[dict]) -> dict:
 
 def shape_table(shape_results: list[dict]) -> str:
     cols = ("shape", "texts×T", "A s", "A' s", "C s", "C+ s", "P s", "L s", "load s", "load_tf s",
-            "C/A", "C/A'", "C+/A", "P/A", "L/A", "load ratio", "1st load", "rec cpu/wall", "A cpu/wall", "A MB", "C MB", "P MB")
+            "C/A", "C/A'", "C+/A", "P/A", "L/A", "load ratio", "1st load", "1st cold", "rec cpu/wall", "A cpu/wall", "A MB", "C MB", "P MB")
 
     def f(x, nd=2):
         return "—" if x is None else f"{x:.{nd}f}"
@@ -302,7 +318,7 @@ def shape_table(shape_results: list[dict]) -> str:
         s = SHAPES[r["shape"]]
         rows.append((r["shape"], f"{s['texts']}×{s['T']}", sec("A"), sec("A_sdpa"), sec("C"), sec("Cplus"), sec("P"),
                      sec("L"), sec("load"), sec("load_tf"), f(q["C/A"]), f(q["C/A'"]), f(q["C+/A"]), f(q["P/A"]),
-                     f(q["L/A"]), f(q["load/load_tf"]), f(q["first load/load_tf"]), f(q["record_cpu/wall"]), f(q.get("A_cpu/wall")), mb("A"), mb("C"), mb("P")))
+                     f(q["L/A"]), f(q["load/load_tf"]), f(q["first load/load_tf"]), f(q.get("cold first load/load_tf")), f(q["record_cpu/wall"]), f(q.get("A_cpu/wall")), mb("A"), mb("C"), mb("P")))
     widths = [max(len(row[k]) for row in rows) for k in range(len(cols))]
     lines = ["  ".join(c.rjust(w) for c, w in zip(row, widths)) for row in rows]
     lines.insert(1, "  ".join("-" * w for w in widths))

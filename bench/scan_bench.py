@@ -356,6 +356,8 @@ def combine(runs: list[dict]) -> dict:
     for k in ("shift_seconds", "induction_seconds", "record_seconds", "first_seconds"):
         if k in best:
             out[k] = min(r[k] for r in runs)
+    if any("first_from_cache" in r for r in runs):
+        out["first_from_cache_rounds"] = [r.get("first_from_cache") for r in runs]
     out["rounds"] = len(runs)
     return out
 

@@ -2,18 +2,21 @@
 
     python bench/probe_phases.py smol-a            # one probe of the SmolLM2-135M shape, phase by phase
     python bench/probe_phases.py smol-a --rounds 3  # the plain forward (case A) and the probe, interleaved
+    python bench/probe_phases.py smol-a --no-untrained   # the probe without its untrained copy (its memory)
 
 Prints, for one ``attnpos.probes.probe(subject, texts)`` with its defaults: the two recordings (trained model
 with the RoPE bands reduced in it, untrained copy), the untrained copy's random initialisation, the ridge fits of
 both, the number of ridge factorisations, and the time of one Cholesky factorisation and solve of the shape's
-hidden size on one thread (torch, float64, the call the probe makes). The phases are measured by wrapping the
-probe's own functions, so nothing but the timers is added. Writes nothing.
+hidden size on one thread (torch, float64, the call the probe makes), and the process's peak RSS after the
+plain forward and after the probes. The phases are measured by wrapping the probe's own functions, so nothing but
+the timers is added. Writes nothing.
 """
 
 from __future__ import annotations
 
 import argparse
 import os
+import resource
 import statistics
 import sys
 import time
@@ -68,6 +71,7 @@ def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("shape", nargs="?", default="smol-a", choices=sorted(real_shapes.SHAPES))
     ap.add_argument("--rounds", type=int, default=1, help="probe and plain forward interleaved this many times")
+    ap.add_argument("--no-untrained", action="store_true", help="probe without the untrained copy (untrained=False)")
     args = ap.parse_args()
 
     import torch
@@ -95,7 +99,10 @@ def main() -> int:
 
     probes._ridge_weights = counted
 
-    forward, total = [], []
+    def peak_mb():
+        return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+    forward, total, peaks = [], [], {}
     for r in range(args.rounds):
         with torch.no_grad():
             model(input_ids=ids[0][:, :64], use_cache=False)
@@ -103,12 +110,14 @@ def main() -> int:
             for x in ids:
                 model(input_ids=x, use_cache=False)
             forward.append(time.perf_counter() - t0)
+        peaks.setdefault("after the plain forward", peak_mb())
         calls["n"] = 0
         for v in phases.values():
             v.clear()
         t0 = time.perf_counter()
-        probes.probe(subject, texts, progress=False)
+        probes.probe(subject, texts, untrained=not args.no_untrained, progress=False)
         total.append(time.perf_counter() - t0)
+        peaks["after the probe" + (" (untrained=False)" if args.no_untrained else "")] = peak_mb()
         print(f"round {r + 1}: plain forward {forward[-1]:.2f} s, probe {total[-1]:.2f} s "
               f"(P/A {total[-1] / forward[-1]:.1f})")
     n_layers = subject.n_layers + 1
@@ -119,11 +128,13 @@ def main() -> int:
         print(f"  {name:<55} {sum(v):7.2f} s  = {sum(v) / a:5.2f} A")
     other = total[-1] - sum(sum(v) for v in phases.values())
     print(f"  {'the rest (texts, head tables, counting check)':<55} {other:7.2f} s  = {other / a:5.2f} A")
-    per = calls["n"] / (2 * n_layers)
+    n_probes = n_layers * (1 if args.no_untrained else 2)
+    per = calls["n"] / n_probes
     chol = cholesky_ms(s["hidden"])
-    print(f"  ridge factorisations: {calls['n']} ({per:.0f} per layer probe, {2 * n_layers} layer probes); one "
+    print(f"  ridge factorisations: {calls['n']} ({per:.0f} per layer probe, {n_probes} layer probes); one "
           f"Cholesky + solve at {s['hidden']} × {s['hidden']} on one thread: {chol:.2f} ms → "
           f"{calls['n'] * chol / 1e3:.1f} s of one core")
+    print("  peak RSS: " + ", ".join(f"{k} {v:.0f} MB" for k, v in peaks.items()))
     print(f"median over {args.rounds} round(s): A {statistics.median(forward):.2f} s, P {statistics.median(total):.2f} s, "
           f"P/A {statistics.median([p / f for p, f in zip(total, forward)]):.1f}")
     return 0

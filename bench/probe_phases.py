@@ -3,6 +3,7 @@
     python bench/probe_phases.py smol-a            # one probe of the SmolLM2-135M shape, phase by phase
     python bench/probe_phases.py smol-a --rounds 3  # the plain forward (case A) and the probe, interleaved
     python bench/probe_phases.py smol-a --no-untrained   # the probe without its untrained copy (its memory)
+    python bench/probe_phases.py smol-a --alpha 100      # one ridge penalty: no inner folds to choose it
 
 Prints, for one ``attnpos.probes.probe(subject, texts)`` with its defaults: the two recordings (trained model
 with the RoPE bands reduced in it, untrained copy), the untrained copy's random initialisation, the ridge fits of
@@ -72,6 +73,7 @@ def main() -> int:
     ap.add_argument("shape", nargs="?", default="smol-a", choices=sorted(real_shapes.SHAPES))
     ap.add_argument("--rounds", type=int, default=1, help="probe and plain forward interleaved this many times")
     ap.add_argument("--no-untrained", action="store_true", help="probe without the untrained copy (untrained=False)")
+    ap.add_argument("--alpha", type=float, default=None, help="one ridge penalty instead of the chosen one")
     args = ap.parse_args()
 
     import torch
@@ -89,7 +91,7 @@ def main() -> int:
     phases: dict[str, list[float]] = {}
     _timed(probes, "_record", phases, "recordings (hidden states; bands, weight statistics)")
     _timed(probes, "untrained_copy", phases, "untrained copy: build and initialise")
-    _timed(probes, "_probe_layers", phases, "ridge fits (nested cross-validation)")
+    _timed(probes, "_probe_layers", phases, "ridge fits (held out by text)")
     calls = {"n": 0}
     ridge = probes._ridge_weights
 
@@ -115,7 +117,7 @@ def main() -> int:
         for v in phases.values():
             v.clear()
         t0 = time.perf_counter()
-        probes.probe(subject, texts, untrained=not args.no_untrained, progress=False)
+        probes.probe(subject, texts, untrained=not args.no_untrained, alpha=args.alpha, progress=False)
         total.append(time.perf_counter() - t0)
         peaks["after the probe" + (" (untrained=False)" if args.no_untrained else "")] = peak_mb()
         print(f"round {r + 1}: plain forward {forward[-1]:.2f} s, probe {total[-1]:.2f} s "

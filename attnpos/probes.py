@@ -237,11 +237,12 @@ def _dataset(units, hidden: list[np.ndarray], seed: int):
     return X, np.concatenate(pos), np.concatenate(shuf), np.concatenate(unit_of)
 
 
-def untrained_copy(subject, seed: int = 0):
+def untrained_copy(subject, seed: int = 0, *, table=None):
     """The same architecture with fresh random weights (same config, same tokenizer), as a Subject.
 
     Built with the model's own class from a copy of its config under a fixed torch seed. A sinusoidal position
-    table is part of the architecture, not learned, so it is copied over."""
+    table is part of the architecture, not learned, so it is copied over (``table``: that table, when the
+    subject's own weights were released before, see :func:`release_weights`)."""
     from .subject import from_model
 
     model = subject.model
@@ -257,12 +258,29 @@ def untrained_copy(subject, seed: int = 0):
     if "sinusoidal" in subject.schemes:
         from .core.schemes import position_table
 
-        src, dst = position_table(model), position_table(fresh)
-        if src is not None and dst is not None and src.shape == dst.shape:
+        src, dst = (position_table(model) if table is None else table), position_table(fresh)
+        if src is not None and dst is not None and src.shape == dst.shape and src.device.type != "meta":
             with torch.no_grad():
                 dst.copy_(src)
     return from_model(fresh, subject.tokenizer, name=f"{subject.name} (untrained copy, seed {seed})",
                       scheme=[s.scheme for s in subject.sites], training_length=subject.training_length)
+
+
+def release_weights(subject):
+    """Free the subject's weights (every parameter and buffer moves to torch's ``meta`` device, which holds no
+    data): for a caller that owns the subject and needs nothing more of it, so that the probe's untrained copy
+    never sits in memory beside the trained model. Returns a copy of the model's sinusoidal position table (part
+    of the architecture, which the untrained copy keeps), or None. The subject cannot run afterwards."""
+    table = None
+    if "sinusoidal" in subject.schemes:
+        from .core.schemes import position_table
+
+        t = position_table(subject.model)
+        table = None if t is None else t.detach().clone()
+    subject.model.to("meta")
+    subject.notes.append("its weights were released after the probe recorded its hidden states "
+                         "(probe(..., release_model=True)); the subject cannot run any more.")
+    return table
 
 
 def _counting_heads(subject, weights) -> "Any":
@@ -390,7 +408,7 @@ def _probe_layers(X: np.ndarray, pos: np.ndarray, shuf: np.ndarray, groups: np.n
 
 def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, seed: int = 0, folds: int = FOLDS,
           untrained: bool = True, counting: bool = True, bands: bool = True, max_tokens: int | None = None,
-          heads=None, progress: bool | None = None) -> ProbeResult:
+          heads=None, release_model: bool = False, progress: bool | None = None) -> ProbeResult:
     """Fit ridge probes for absolute position on every hidden-state layer of ``subject``.
 
     Args:
@@ -407,6 +425,9 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
             trained on), else its context limit.
         heads: a head table (e.g. ``attnpos.scan(...).heads``) to take the counting heads from; by default they
             are measured here with the same criterion (:mod:`attnpos.roles`) from weight statistics alone.
+        release_model: free the subject's weights once its hidden states are recorded (:func:`release_weights`),
+            so the untrained copy never sits beside them: the probe's peak memory drops by the model's size, and
+            the subject cannot run afterwards. For a caller that owns the subject (the command line does this).
         progress: show progress bars (default: in a terminal or a notebook, see :mod:`attnpos.core.progress`).
     """
     from .subject import Subject, load
@@ -438,13 +459,14 @@ def probe(subject, texts=None, *, alpha: float | Sequence[float] | None = None, 
         band_run, band_texts = _band_reducer(units)
     rec = _record(subject, units, want_counting and heads is None, progress, bands=band_run)
     X, pos, shuf, unit_of = _dataset(units, rec.hidden, seed)
+    table = release_weights(subject) if release_model else None
     groups = groups_u[unit_of]
     layers = _probe_layers(X, pos, shuf, groups, alphas, folds, desc="ridge probes", show=progress)
     del X
     table_u = None
     if untrained:
         _progress.note("probe: the same on an untrained copy (the baseline)", progress)
-        fresh = untrained_copy(subject, seed=seed)
+        fresh = untrained_copy(subject, seed=seed, table=table)
         rec_u = _record(fresh, units, want_counting, progress)
         Xu, _, _, _ = _dataset(units, rec_u.hidden, seed)
         for r, ru in zip(layers, _probe_layers(Xu, pos, shuf, groups, alphas, folds, with_targets=False,

@@ -24,6 +24,8 @@ Cases, each in a fresh child process, in rounds:
   C        ``attnpos.scan(..., shift=False, induction=False)``: capture, split with 100 resamples, roles
   C+       ``attnpos.scan(...)`` with its defaults: C plus the shift test and the induction test
   P        ``attnpos.probes.probe`` with its defaults
+  P_cli    the same probe as the command line runs it (``attnpos probe FOLDER --text DIR``): the command owns the
+           subject and frees its weights before the untrained copy is built (``release_model=True``)
   L        ``attnpos.length.length(..., to=2T, training_length=T)`` with its defaults
 
 Load is excluded from every case's time but load_tf / load. C's child also times one ``record`` on its own with
@@ -40,10 +42,10 @@ import tempfile
 import time
 from pathlib import Path
 
-SHAPE_CASES = ("load_tf", "load", "load_cold", "A", "A_sdpa", "B", "C", "Cplus", "P", "L")
+SHAPE_CASES = ("load_tf", "load", "load_cold", "A", "A_sdpa", "B", "C", "Cplus", "P", "P_cli", "L")
 SHAPE_LABEL = {"load_tf": "load (transformers)", "load": "load (attnpos)", "load_cold": "load (attnpos, no cache)",
                "A": "A eager", "A_sdpa": "A' sdpa",
-               "B": "B by hand", "C": "C scan", "Cplus": "C+ full scan", "P": "P probe", "L": "L length"}
+               "B": "B by hand", "C": "C scan", "Cplus": "C+ full scan", "P": "P probe", "P_cli": "P probe (command line)", "L": "L length"}
 
 SMOL = dict(layers=30, heads=9, kv_heads=3, hidden=576, mlp=1536, vocab=49152, max_pos=8192, rope_theta=100000.0,
             tie=True, dtype="float32")
@@ -71,6 +73,7 @@ TARGETS = {
     "C/A <= 1.2 on smol-b": ("smol-b", "C/A", 1.2, "le"),
     "P/A <= 3 on smol-a": ("smol-a", "P/A", 3.0, "le"),
     "P peak RSS <= 1.5x A's on smol-a": ("smol-a", "P_rss/A_rss", 1.5, "le"),
+    "P (command line) peak RSS <= 1.5x A's on smol-a": ("smol-a", "P_cli_rss/A_rss", 1.5, "le"),
     "record CPU/wall >= 1.7 on smol-a": ("smol-a", "record_cpu/wall", 1.7, "ge"),
 }
 
@@ -187,7 +190,22 @@ def run_shape_case(case: str, shape: str, folder: Path, args, forward_case, rss_
                 "peak_rss_mb": peak_rss_mb(), "torch_threads": torch.get_num_threads(),
                 **({"first_from_cache": hits[0], "later_from_cache": hits[1:]} if hits else {})}
 
-    if case in ("A", "A_sdpa", "B"):
+    if case == "P_cli":
+        # the command loads the model itself (its load is in the time, unlike P's) and owns it; no other copy of the
+        # model lives in this process
+        from attnpos.cli import main as cli_main
+
+        text_dir = Path(tempfile.mkdtemp(prefix="attnpos-bench-texts-"))
+        for i, t in enumerate(texts):
+            (text_dir / f"t{i}.txt").write_text(t, encoding="utf-8")
+
+        def once():
+            code = cli_main(["probe", str(folder), "--text", str(text_dir), "--json", str(text_dir / "probe.json")])
+            assert code == 0, code
+
+        def warm():
+            pass
+    elif case in ("A", "A_sdpa", "B"):
         from transformers import AutoModelForCausalLM, AutoTokenizer
 
         model = AutoModelForCausalLM.from_pretrained(folder, dtype=dtype,
@@ -280,7 +298,7 @@ def shape_ratios(cases: dict, agreement) -> dict:
             "first load/load_tf": r(first("load"), first("load_tf")),
             "cold load/load_tf": r(sec("load_cold"), sec("load_tf")),
             "cold first load/load_tf": r(first("load_cold"), first("load_tf")), "P_rss/A_rss": r(rss("P"), rss("A")),
-            "C_rss/A_rss": r(rss("C"), rss("A")),
+            "C_rss/A_rss": r(rss("C"), rss("A")), "P_cli_rss/A_rss": r(rss("P_cli"), rss("A")),
             "record_cpu/wall": c.get("record_cpu_per_wall") if c.get("status") == "ok" else None,
             # the plain forward's own thread use: the floor the record's is compared with
             "A_cpu/wall": (cases.get("A") or {}).get("cpu_per_wall") if sec("A") is not None else None,

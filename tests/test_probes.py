@@ -399,3 +399,30 @@ def test_probe_bands_equal_a_recording_of_their_own():
         for band in b["removal"]:
             np.testing.assert_allclose(list(a["removal"][band].values()), list(b["removal"][band].values()),
                                        rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.parametrize("arch", ["llama", "sinusoidal"])
+def test_released_weights_give_the_same_probe_and_free_the_model(arch):
+    # release_model frees the trained weights before the untrained copy is built: every number equals the probe
+    # that keeps them (the copy is built from the config and the seed alone; a sinusoidal table is carried over)
+    s = _reference("sinusoidal") if arch == "sinusoidal" else tiny.subject("llama", layers=2, heads=4, hidden=64)
+    texts = TEXTS + ["The kettle sang twice before the baker noticed the rising loaves by the window."]
+    kept = probes.probe(s, texts).to_json()
+    released_subject = _reference("sinusoidal") if arch == "sinusoidal" else tiny.subject("llama", layers=2,
+                                                                                         heads=4, hidden=64)
+    released = probes.probe(released_subject, texts, release_model=True).to_json()
+    assert all(p.device.type == "meta" for p in released_subject.model.parameters())
+    for a, b in zip(kept["layers"], released["layers"]):
+        assert a == b
+    assert kept["counting"] == released["counting"]
+    bands = [{k: v for k, v in (r.get("bands") or {}).items() if k != "model"} for r in (kept, released)]
+    assert bands[0] == bands[1] and (arch == "sinusoidal" or bands[0])
+    assert "weights were released" in " ".join(released["model"]["notes"])
+    if arch == "sinusoidal":
+        # the untrained copy keeps the fixed table: it equals what a copy built from the kept model carries
+        from attnpos.core.schemes import position_table
+
+        table = probes.release_weights(_reference("sinusoidal"))
+        u = probes.untrained_copy(released_subject, seed=0, table=table)
+        want = position_table(probes.untrained_copy(_reference("sinusoidal"), seed=0).model)
+        assert torch.equal(position_table(u.model), want)

@@ -35,8 +35,10 @@ def starting(args) -> None:
 def run(args) -> int:
     from ..probes import probe
 
+    # the command owns the subject: its weights are freed once recorded, before the untrained copy is built
     res = probe(c.load_subject(args), args.raw_texts, alpha=args.alpha, seed=args.seed, folds=args.folds,
-                untrained=not args.no_untrained, bands=not args.no_bands, max_tokens=args.max_tokens)
+                untrained=not args.no_untrained, bands=not args.no_bands, max_tokens=args.max_tokens,
+                release_model=True)
     print(res.text())
     if args.json:
         c.write("probe JSON", args.json, lambda: res.save(args.json))

@@ -147,18 +147,8 @@ class BandEnergy(Reducer):
         acc = self.energy.setdefault(key_, np.zeros((self.H, P + 1)))
         hs = slice(cap.head0, cap.head0 + n)
         member = band_of_pairs(theta if theta is not None else np.full(P, np.nan))
-        # Σ_ij A_ij (q_ia k_ja + q_ib k_jb)² = Σ_i [q_ia² (A k_a²)_i + 2 q_ia q_ib (A k_a k_b)_i + q_ib² (A k_b²)_i]:
-        # one (T, T) @ (T, 3P) product per head instead of a (T, T) tensor per pair (in float64)
-        ia = torch.tensor([a for a, _ in pairs])
-        ib = torch.tensor([b for _, b in pairs])
-        qa, qb, ka, kb = q[..., ia].double(), q[..., ib].double(), k[..., ia].double(), k[..., ib].double()
-        ak = A.double() @ torch.cat([ka * ka, ka * kb, kb * kb], -1)                             # (n, T, 3P)
-        energy = (qa * qa * ak[..., :P] + 2 * qa * qb * ak[..., P:2 * P] + qb * qb * ak[..., 2 * P:]).sum(1)
-        acc[hs, :P] += energy.numpy()
-        parts = {}
-        for band in BANDS:     # Σ over a band's pairs of q_i^(m)·k_j^(m): one product over the band's dimensions
-            dims = [d_ for m, (a, b) in enumerate(pairs) if member[m] == band for d_ in (a, b)]
-            parts[band] = (q[..., dims] @ k[..., dims].transpose(-1, -2) if dims else torch.zeros(n, T, T))
+        energy, parts = self._pair_terms(q, k, pairs, member, A)
+        acc[hs, :P] += energy
         self._remove(cap, key_, hs, q, k, parts, A)
         if rd < d:
             c = q[:, :, rd:] @ k[:, :, rd:].transpose(-1, -2)
@@ -166,6 +156,27 @@ class BandEnergy(Reducer):
         if cap.head0 == 0:
             self.count[key_] = self.count.get(key_, 0.0) + float(A.sum())
         self.max_t = max(self.max_t, T)
+
+    @staticmethod
+    def _pair_terms(q: torch.Tensor, k: torch.Tensor, pairs, member, A: torch.Tensor):
+        """Per head and rotary pair m, Σ_ij A_ij (q_i^(m)·k_j^(m))² as an (n, P) float64 array, and per band the
+        (n, T, T) sum over its pairs of q_i^(m)·k_j^(m).
+
+        Σ_ij A_ij (q_ia k_ja + q_ib k_jb)² = Σ_i [q_ia² (A k_a²)_i + 2 q_ia q_ib (A k_a k_b)_i + q_ib² (A k_b²)_i]:
+        one (T, T) @ (T, 3P) product per head instead of a (T, T) tensor per pair (in float64); a band's part is one
+        product over its dimensions."""
+        n, T, _ = q.shape
+        P = len(pairs)
+        ia = torch.tensor([a for a, _ in pairs])
+        ib = torch.tensor([b for _, b in pairs])
+        qa, qb, ka, kb = q[..., ia].double(), q[..., ib].double(), k[..., ia].double(), k[..., ib].double()
+        ak = A.double() @ torch.cat([ka * ka, ka * kb, kb * kb], -1)                             # (n, T, 3P)
+        energy = (qa * qa * ak[..., :P] + 2 * qa * qb * ak[..., P:2 * P] + qb * qb * ak[..., 2 * P:]).sum(1)
+        parts = {}
+        for band in BANDS:
+            dims = [d_ for m, (a, b) in enumerate(pairs) if member[m] == band for d_ in (a, b)]
+            parts[band] = (q[..., dims] @ k[..., dims].transpose(-1, -2) if dims else torch.zeros(n, T, T))
+        return energy.numpy(), parts
 
     def _remove(self, cap: LayerCapture, key_, hs, q, k, parts: dict, A: torch.Tensor) -> None:
         """Remove each band's pairs from the scores and record how the weights change (see the module doc)."""

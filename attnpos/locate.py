@@ -367,7 +367,8 @@ def gguf_facts(file: Path) -> tuple[str, list[str]]:
     return arch, types
 
 
-# GGUF metadata value types of fixed size (type id → bytes), per the GGUF file layout of the ggml project
+# GGUF metadata value types of fixed size (type id → bytes), per the GGUF file layout of the ggml project (from
+# memory; tests/test_loading_paths.py checks the walk against the gguf package's reader)
 _GGUF_FIXED = {0: 1, 1: 1, 2: 2, 3: 2, 4: 4, 5: 4, 6: 4, 7: 1, 10: 8, 11: 8, 12: 8}
 _GGUF_STRING, _GGUF_ARRAY = 8, 9
 

@@ -125,7 +125,6 @@ def _support(rows: list[dict], causal: np.ndarray, resampled: dict | None) -> No
     cols = _Columns(rows, flat)
     causal_bn = np.broadcast_to(np.asarray(causal, dtype=bool)[None, :], (B, len(rows)))
     checked, holds = roles.criteria_arrays(cols, causal_bn, row_at=lambda idx: cols.row(*idx))
-    order = roles.names()
     none = ~holds.any(-1)                                                  # (B, N): the fallback
     first = np.where(none, len(checked), holds.argmax(-1))                 # the primary role's index
     n_hold = holds.sum(0)                                                  # (N, roles)
@@ -136,24 +135,33 @@ def _support(rows: list[dict], causal: np.ndarray, resampled: dict | None) -> No
         count = {name: int(n_hold[n, i]) for i, name in enumerate(checked)}
         count[roles.FALLBACK] = int(n_none[n])
         primaries = {name: int(n_first[n, i]) for i, name in enumerate(names) if n_first[n, i]}
-        role, tags = r["role"], r["tags"]
-        support = {name: count.get(name, 0) / B for name in order if count.get(name, 0) or name in tags}
-        r["tag_support"] = support
-        sure = next((name for name in order if support.get(name, 0.0) >= th.ROLE_SUPPORT), None)
-        if sure is not None:
-            if sure != role:
-                point = roles.criteria(r, bool(causal[n]))
-                r["evidence"] = point.get(sure) or f"criterion holds in {support[sure]:.0%} of resamples"
-                r["role"] = sure
-                if sure not in r["tags"]:
-                    r["tags"] = [sure] + [t for t in r["tags"] if t != roles.FALLBACK]
-                else:
-                    r["tags"] = [sure] + [t for t in r["tags"] if t != sure]
-            r["role_support"] = support[sure]
-            continue
-        r["role_support"] = support.get(role, 0.0)
-        top = sorted(primaries.items(), key=lambda kv: (-kv[1], order.index(kv[0])))[:2]
-        r["role_between"] = sorted((name for name, _ in top), key=order.index)
+        settle(r, count, primaries, B, bool(causal[n]))
+
+
+def settle(r: dict, count: dict, primaries: dict, B: int, causal: bool) -> None:
+    """A head's role from its resamples: ``count`` — resamples in which each criterion holds (the fallback's:
+    none holds), ``primaries`` — resamples in which each role comes first, of ``B``. A role holding in at least
+    ROLE_SUPPORT of them becomes the head's role (with its point-estimate evidence, or the share of resamples);
+    otherwise the point estimate's role stays, with its support and the two roles the resamples chose most."""
+    order = roles.names()
+    role, tags = r["role"], r["tags"]
+    support = {name: count.get(name, 0) / B for name in order if count.get(name, 0) or name in tags}
+    r["tag_support"] = support
+    sure = next((name for name in order if support.get(name, 0.0) >= th.ROLE_SUPPORT), None)
+    if sure is not None:
+        if sure != role:
+            point = roles.criteria(r, causal)
+            r["evidence"] = point.get(sure) or f"criterion holds in {support[sure]:.0%} of resamples"
+            r["role"] = sure
+            if sure not in r["tags"]:
+                r["tags"] = [sure] + [t for t in r["tags"] if t != roles.FALLBACK]
+            else:
+                r["tags"] = [sure] + [t for t in r["tags"] if t != sure]
+        r["role_support"] = support[sure]
+        return
+    r["role_support"] = support.get(role, 0.0)
+    top = sorted(primaries.items(), key=lambda kv: (-kv[1], order.index(kv[0])))[:2]
+    r["role_between"] = sorted((name for name, _ in top), key=order.index)
 
 
 def head_table(subject, weights: dict, fit=None, shift=None, induction=None) -> pd.DataFrame:

@@ -729,14 +729,15 @@ class WeightFiles:
 
     CHUNK = 8 << 20
 
-    def __init__(self, files: list, *, cache: "ReadCache | None" = None, known: WeightsRead | None = None) -> None:
+    def __init__(self, files: list, *, cache: "ReadCache | None" = None, known: WeightsRead | None = None,
+                 before: str | None = None) -> None:
         import threading
 
         self.files = list(files)
         self._stop = threading.Event()
         self._out: WeightsRead | None = known
         self._error: BaseException | None = None
-        self._cache = cache
+        self._cache, self._before = cache, before       # before: the files' status key, taken before reading
         self._thread = None
         if known is None:
             self._thread = threading.Thread(target=self._run, name="attnpos-weights", daemon=True)
@@ -746,8 +747,9 @@ class WeightFiles:
     def for_files(cls, files: list) -> "WeightFiles":
         """The reader of ``files``: the stored result when :data:`READ_CACHE` knows these files unchanged, else a
         thread that reads them (and stores what it found)."""
-        known = READ_CACHE.get(files)
-        return cls(files, known=known) if known is not None else cls(files, cache=READ_CACHE)
+        key = READ_CACHE.key(files)
+        known = READ_CACHE.get(files, key=key)
+        return cls(files, known=known) if known is not None else cls(files, cache=READ_CACHE, before=key)
 
     @property
     def from_cache(self) -> bool:
@@ -767,10 +769,9 @@ class WeightFiles:
 
     def _run(self) -> None:
         try:
-            before = self._cache.key(self.files) if self._cache is not None else None
             self._out = read_weight_files(self.files, stop=self._stop, chunk=self.CHUNK)
-            if before is not None:
-                self._cache.put(self.files, before, self._out)
+            if self._cache is not None and self._before is not None:
+                self._cache.put(self.files, self._before, self._out)
         except BaseException as exc:  # noqa: BLE001 - handed to the caller by result()
             self._error = exc
 
@@ -810,21 +811,30 @@ class ReadCache:
         return Path(base) / "weights-read.json"
 
     @staticmethod
-    def key(files) -> str | None:
-        """The files' identity and status as one key (None when a file cannot be looked at)."""
-        parts = []
+    def _status(files) -> list | None:
+        """Per file: path, device, inode, size, modification and status-change times in ns (None when a file
+        cannot be looked at)."""
         try:
-            for f in files:
-                st = os.stat(f)
-                parts.append([os.path.abspath(f), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns])
+            return [[os.path.abspath(f), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns]
+                    for f, st in ((f, os.stat(f)) for f in files)]
         except OSError:
             return None
-        return hashlib.sha256(json.dumps(parts).encode()).hexdigest()
 
-    def get(self, files) -> WeightsRead | None:
+    @classmethod
+    def key(cls, files) -> str | None:
+        """The files' identity and status as one key (None when a file cannot be looked at)."""
+        return cls._digest(cls._status(files))
+
+    @staticmethod
+    def _digest(status: list | None) -> str | None:
+        return None if status is None else hashlib.sha256(json.dumps(status).encode()).hexdigest()
+
+    def get(self, files, *, key: str | None = None) -> WeightsRead | None:
+        """What reading ``files`` found, if they were read before and are unchanged (``key``: their
+        :meth:`key`, when already at hand)."""
         if not self.enabled():
             return None
-        k = self.key(files)
+        k = key if key is not None else self.key(files)
         if k is None:
             return None
         with self._lock:
@@ -849,12 +859,10 @@ class ReadCache:
         settled."""
         import time
 
-        if not self.enabled() or self.key(files) != before:
+        status = self._status(files) if self.enabled() else None
+        if not status or self._digest(status) != before:
             return
-        try:
-            newest = max(max(os.stat(f).st_mtime, os.stat(f).st_ctime) for f in files)
-        except (OSError, ValueError):
-            return
+        newest = max(max(mtime, ctime) for *_, mtime, ctime in status) / 1e9
         if time.time() - newest < self.SETTLE:
             return
         with self._lock:

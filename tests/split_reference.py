@@ -1,6 +1,7 @@
 """The score split's fit as it was before the bootstrap was solved for all resamples at once (one resample, one
 solve per subset of parts, at a time), kept to compare the current :mod:`attnpos.split` with
-(``tests/test_fast_paths.py``). Not part of the package."""
+(``tests/test_fast_paths.py``). Not part of the package. No external check: the package's own previous
+implementation, itself checked against published formulas in ``tests/test_split_roles.py``."""
 
 from __future__ import annotations
 

@@ -126,7 +126,8 @@ def test_batched_record_equals_one_text_per_pass(arch, monkeypatch):
 
 @pytest.mark.parametrize("arch", ["llama", "bert"])
 def test_batched_maps_equal_eager_attention_of_each_text_alone(arch):
-    # transformers' eager attention with output_attentions, one text per call, is the reference implementation
+    # reference: transformers' eager attention with output_attentions, one text per call (the library's own
+    # implementation)
     s = tiny.subject(arch, layers=2, heads=4)
     rec = record(s, TEXTS, [WeightStats()], keep="all", batch=True)
     assert any(len(g) > 1 for g in batches([len(u) for u in rec.units]))

@@ -4,8 +4,9 @@ against its own pass, the role support decided for all heads and resamples at on
 per-resample reference (the previous implementation, kept below), and the split's bootstrap solved for all
 resamples at once against one resample at a time.
 
-No external check here: each fast path is compared with the package's own reference path (the statistics must not
-change beyond float tolerance).
+No external check here but one: each fast path is compared with the package's own reference path (the statistics
+must not change beyond float tolerance); the induction test's token pool is checked against transformers' own
+``batch_decode`` of every id (the tokenizer's decode, a function of the general-purpose library).
 """
 
 from collections import Counter
@@ -212,25 +213,8 @@ def _ref_decide(r, causal, samples, si, key, h):
         names = list(found) or [core_roles.FALLBACK]
         holds.update(names)
         primaries[names[0]] += 1
-    B = len(samples)
-    support = {name: holds[name] / B for name in core_roles.names() if holds[name] or name in tags}
-    r["tag_support"] = support
-    order = core_roles.names()
-    sure = next((name for name in order if support.get(name, 0.0) >= core_th.ROLE_SUPPORT), None)
-    if sure is not None:
-        if sure != role:
-            point = core_roles.criteria(r, causal)
-            r["evidence"] = point.get(sure) or f"criterion holds in {support[sure]:.0%} of resamples"
-            r["role"] = sure
-            if sure not in r["tags"]:
-                r["tags"] = [sure] + [t for t in r["tags"] if t != core_roles.FALLBACK]
-            else:
-                r["tags"] = [sure] + [t for t in r["tags"] if t != sure]
-        r["role_support"] = support[sure]
-        return
-    r["role_support"] = support.get(role, 0.0)
-    top = sorted(primaries.items(), key=lambda kv: (-kv[1], order.index(kv[0])))[:2]
-    r["role_between"] = sorted((name for name, _ in top), key=order.index)
+    # the counting above is the per-resample reference; the rule that settles a role from the counts is shared
+    roles.settle(r, holds, primaries, len(samples), causal)
 
 
 def _ref_head_table(subject, weights, fit, sh, ind):
@@ -416,6 +400,7 @@ def test_ordinary_pool_from_the_backend_equals_batch_decode(which, monkeypatch):
 
     tok = copy.deepcopy(tiny.tokenizer()) if which == "wordpiece" else _byte_level_tokenizer()   # changed below
     induction._POOLS.pop(tok, None)
+    # reference: transformers' PreTrainedTokenizer.batch_decode of each id alone (the library's own decode)
     want = _pool_by_batch_decode(tok)
     assert 100 < len(want) < len(tok)               # something is left out, most is kept
     assert induction.ordinary_pool(tok, 48) == want

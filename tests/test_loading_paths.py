@@ -128,7 +128,8 @@ def test_gguf_missing_or_damaged(tmp_path):
 def test_gguf_header_walk_equals_the_gguf_packages_reader(tmp_path):
     # reference: the gguf package's GGUFReader (the reader of the ggml project's file format, a general-purpose
     # library) on files written by its own GGUFWriter with metadata of every value type — scalars, bools, strings,
-    # arrays of numbers, of strings and of arrays — and tensors of several types; and on the real SmolLM2 file
+    # arrays of numbers, of strings and of arrays — and tensors of several types; and on the real SmolLM2 file.
+    # The layout walked is the GGUF file format of the ggml project (version 3; from memory, checked by this test)
     gguf = pytest.importorskip("gguf")
     from attnpos.locate import gguf_facts, gguf_header
 
@@ -368,7 +369,8 @@ def read_cache(tmp_path, monkeypatch):
 
 
 def test_unchanged_weight_files_are_not_read_again(tmp_path, read_cache):
-    # the cache's answer must equal reading the files (the fingerprint and the NaN/inf check), in this process and
+    # no external check: the cache is compared with reading the files (whose digest and NaN/inf check are checked
+    # against hashlib's SHA-256 and torch.isfinite above). The cache's answer must equal reading the files (the fingerprint and the NaN/inf check), in this process and
     # in the next (memory cleared: the cache file), and it must never answer for a file that changed
     from attnpos import subject as subj
 
@@ -388,7 +390,8 @@ def test_unchanged_weight_files_are_not_read_again(tmp_path, read_cache):
 
 def test_a_weight_file_changed_in_place_is_read_again_even_with_its_old_times(tmp_path, read_cache):
     # a NaN written into the bytes of one weight (same size) with the modification time put back: the status-change
-    # time still moves (POSIX: utime sets it too), so the file is read and the load refused, as without a cache
+    # time still moves (POSIX: a write and utimensat both mark st_ctime for update — from memory; the test checks
+    # it happens here), so the file is read and the load refused, as without a cache
     import torch
     from safetensors import safe_open
 
@@ -411,6 +414,7 @@ def test_a_weight_file_changed_in_place_is_read_again_even_with_its_old_times(tm
 
 
 def test_weights_cache_can_be_turned_off_and_survives_a_damaged_file(tmp_path, read_cache, monkeypatch):
+    # no external check: the cache's own switches, counted in reads of the files
     from attnpos import subject as subj
 
     d = _saved(tiny.build("llama", layers=1), tmp_path / "m")
